@@ -1,0 +1,1 @@
+//! Data-driven models (`shapley`, `markov`), fitted from closed paths.

@@ -1,0 +1,172 @@
+//! Attribution models (DESIGN.md, "Models").
+//!
+//! A [`Model`] turns an eligible path (non-empty, in time order) and the
+//! conversion time into one non-negative fraction per touch, summing to 1.
+//! The rule models live here; the data-driven ones (`shapley`, `markov`) are
+//! fitted from path statistics in [`crate::datadriven`] and implement the same
+//! trait, so the credit writer treats every model alike.
+
+use crate::journey::Touch;
+
+/// An attribution model.
+pub trait Model: Send + Sync {
+    /// The model's name as written in the contract (`last_touch`, ...).
+    fn name(&self) -> &str;
+
+    /// Snapshot id for fitted models; `None` for rule models.
+    fn version(&self) -> Option<&str> {
+        None
+    }
+
+    /// One fraction per touch of `path` (which is never empty), each >= 0,
+    /// summing to 1 within 1e-9.
+    fn credit(&self, path: &[Touch], conversion_ts: i64) -> Vec<f64>;
+}
+
+/// Names of the rule models, in the contract's order.
+pub const RULE_MODELS: [&str; 5] = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped"];
+/// Names of the data-driven models.
+pub const DATA_DRIVEN_MODELS: [&str; 2] = ["shapley", "markov"];
+
+/// `last_touch`: everything to the last touch.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct LastTouch;
+
+impl Model for LastTouch {
+    fn name(&self) -> &str {
+        "last_touch"
+    }
+    fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
+        let mut w = vec![0.0; path.len()];
+        if let Some(last) = w.last_mut() {
+            *last = 1.0;
+        }
+        w
+    }
+}
+
+/// `first_touch`: everything to the first touch.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct FirstTouch;
+
+impl Model for FirstTouch {
+    fn name(&self) -> &str {
+        "first_touch"
+    }
+    fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
+        let mut w = vec![0.0; path.len()];
+        if let Some(first) = w.first_mut() {
+            *first = 1.0;
+        }
+        w
+    }
+}
+
+/// `linear`: 1/n to each of n touches.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Linear;
+
+impl Model for Linear {
+    fn name(&self) -> &str {
+        "linear"
+    }
+    fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
+        let n = path.len();
+        vec![1.0 / n as f64; n]
+    }
+}
+
+/// `time_decay`: weight `2^(-(T - t_i) / half_life)`, normalized.
+#[derive(Debug, Clone, Copy)]
+pub struct TimeDecay {
+    /// Half-life in milliseconds (> 0).
+    pub half_life_ms: i64,
+}
+
+impl Model for TimeDecay {
+    fn name(&self) -> &str {
+        "time_decay"
+    }
+    fn credit(&self, path: &[Touch], conversion_ts: i64) -> Vec<f64> {
+        // Normalizing cancels any common factor, so weigh relative to the
+        // most recent touch: identical fractions, no underflow for old paths.
+        let newest = path.iter().map(|t| t.ts).max().unwrap_or(conversion_ts);
+        let h = self.half_life_ms.max(1) as f64;
+        let raw: Vec<f64> = path.iter().map(|t| (-((newest - t.ts) as f64) / h).exp2()).collect();
+        normalize(raw)
+    }
+}
+
+/// `u_shaped` (position-based): endpoints get fixed weights, the middle
+/// touches share the rest evenly.
+#[derive(Debug, Clone, Copy)]
+pub struct UShaped {
+    /// Weight of the first touch when n >= 3 (default 0.4).
+    pub first: f64,
+    /// Weight of the last touch when n >= 3 (default 0.4).
+    pub last: f64,
+}
+
+impl Default for UShaped {
+    fn default() -> Self {
+        UShaped { first: 0.4, last: 0.4 }
+    }
+}
+
+impl Model for UShaped {
+    fn name(&self) -> &str {
+        "u_shaped"
+    }
+    fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
+        let n = path.len();
+        match n {
+            0 => vec![],
+            1 => vec![1.0],
+            2 => vec![0.5, 0.5],
+            _ => {
+                let middle = (1.0 - self.first - self.last) / (n - 2) as f64;
+                let mut w = vec![middle; n];
+                w[0] = self.first;
+                w[n - 1] = self.last;
+                w
+            }
+        }
+    }
+}
+
+/// Scales non-negative weights to sum to 1 (equal shares if they sum to 0).
+pub fn normalize(mut w: Vec<f64>) -> Vec<f64> {
+    let sum: f64 = w.iter().sum();
+    if sum > 0.0 && sum.is_finite() {
+        for x in &mut w {
+            *x /= sum;
+        }
+    } else {
+        let n = w.len() as f64;
+        for x in &mut w {
+            *x = 1.0 / n;
+        }
+    }
+    w
+}
+
+/// Spreads per-channel shares over a path: each touch gets its channel's
+/// share divided by the number of touches of that channel in the path.
+pub fn split_by_channel(path: &[Touch], share: impl Fn(&str) -> f64) -> Vec<f64> {
+    let mut counts: std::collections::HashMap<&str, usize> = std::collections::HashMap::new();
+    for t in path {
+        *counts.entry(t.channel.as_str()).or_default() += 1;
+    }
+    path.iter().map(|t| share(&t.channel) / counts[t.channel.as_str()] as f64).collect()
+}
+
+/// Distinct channels of a path in order of first appearance.
+pub fn distinct_channels(path: &[Touch]) -> Vec<&str> {
+    let mut seen: Vec<&str> = Vec::new();
+    for t in path {
+        if !seen.contains(&t.channel.as_str()) {
+            seen.push(&t.channel);
+        }
+    }
+    seen
+}
