@@ -12,10 +12,12 @@
 //! - [`event`]: parse and validate one input event, with typed reject reasons.
 //! - [`pseudonym`]: HMAC-SHA256 user keys; raw ids go no further.
 //! - [`journey`]: per-user journey state and the rules that close it.
+//! - [`processor`]: applies events to journeys held in a [`processor::JourneyStore`].
 //! - [`model`]: the [`model::Model`] trait and the five rule models.
 //! - [`datadriven`]: path statistics, `shapley` and `markov`.
 //! - [`credit`]: credit rows and path rows of the output contract.
 //! - [`registry`]: builds the configured models by name.
+//! - [`replay`]: the replay loop (duplicates, watermark, end of input).
 //! - [`time_fmt`], [`duration`]: RFC 3339 times and `30d`-style spans.
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
@@ -26,8 +28,10 @@ pub mod duration;
 pub mod event;
 pub mod journey;
 pub mod model;
+pub mod processor;
 pub mod pseudonym;
 pub mod registry;
+pub mod replay;
 pub mod time_fmt;
 
 pub use credit::{credit_id, credit_rows, path_row, CreditRow, PathRow, UNATTRIBUTED};
@@ -36,3 +40,4 @@ pub use event::{parse_event, parse_event_limited, Event, EventKind, Interaction,
 pub use journey::{Conversion, Journey, Outcome, Rules, Touch};
 pub use model::Model;
 pub use pseudonym::{Pseudonymizer, UserKey};
+pub use processor::{Effect, JourneyStore, KeyedEvent, KeyedKind, MemStore, Processor};

@@ -1,0 +1,231 @@
+//! Applying events to journeys held in a [`JourneyStore`].
+//!
+//! [`Processor`] is the whole journey pipeline minus IO: it loads a user's
+//! journey from the store, applies the event, advances it to the watermark
+//! and saves it back with its next wake-up time. The store keeps a wake
+//! index ordered by time, so [`Processor::advance`] only visits journeys that
+//! have something due and never scans all users.
+//!
+//! The same processor serves `replay` (watermark = time of each event) and
+//! `serve` (watermark = max event time on the partition - allowed lateness);
+//! [`MemStore`] is the in-memory store used by tests and small runs, and the
+//! sled-backed store lives in the `apportion-store` crate.
+
+use std::collections::{BTreeMap, BTreeSet, HashMap};
+
+use crate::event::{Event, EventKind};
+use crate::journey::{Conversion, Journey, Outcome, Rules, Touch};
+use crate::pseudonym::UserKey;
+
+/// Persistent (or in-memory) journey state with a wake index.
+pub trait JourneyStore {
+    /// Error of the backing store.
+    type Error: std::error::Error + Send + Sync + 'static;
+
+    /// The user's journey, if one is open.
+    fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error>;
+    /// Stores the journey and its next wake-up time (`Journey::next_wake`);
+    /// an empty journey is removed.
+    fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), Self::Error>;
+    /// Keys whose wake time is at or before `watermark`, ordered by (wake, key).
+    fn due(&mut self, watermark: i64) -> Result<Vec<UserKey>, Self::Error>;
+    /// Every key with an open journey, in key order.
+    fn keys(&mut self) -> Result<Vec<UserKey>, Self::Error>;
+}
+
+/// An event ready for the journey rules: validated and pseudonymized.
+#[derive(Debug, Clone, PartialEq)]
+pub struct KeyedEvent {
+    /// Pseudonymous user key.
+    pub user_key: UserKey,
+    /// Arrival sequence (input line or partition offset).
+    pub seq: u64,
+    /// The event, with `user_id` already cleared.
+    pub kind: KeyedKind,
+}
+
+/// The part of an event the journey rules need.
+#[derive(Debug, Clone, PartialEq)]
+pub enum KeyedKind {
+    /// A touch.
+    Touch(Touch),
+    /// A conversion.
+    Conversion(Conversion),
+    /// Forget the user.
+    Erase {
+        /// Event time.
+        ts: i64,
+    },
+}
+
+impl KeyedEvent {
+    /// Builds the keyed form of a validated event. The raw `user_id` is not
+    /// carried over.
+    pub fn from_event(ev: Event, user_key: UserKey, seq: u64) -> Self {
+        let kind = match ev.kind {
+            EventKind::Touch => KeyedKind::Touch(Touch {
+                event_id: ev.event_id,
+                ts: ev.timestamp_ms,
+                seq,
+                channel: ev.channel,
+                campaign: ev.campaign,
+                interaction: ev.interaction,
+            }),
+            EventKind::Conversion => KeyedKind::Conversion(Conversion {
+                event_id: ev.event_id,
+                ts: ev.timestamp_ms,
+                seq,
+                goal: ev.goal,
+                value: ev.value,
+                currency: ev.currency,
+            }),
+            EventKind::Erase => KeyedKind::Erase { ts: ev.timestamp_ms },
+        };
+        KeyedEvent { user_key, seq, kind }
+    }
+
+    /// Event time.
+    pub fn ts(&self) -> i64 {
+        match &self.kind {
+            KeyedKind::Touch(t) => t.ts,
+            KeyedKind::Conversion(c) => c.ts,
+            KeyedKind::Erase { ts } => *ts,
+        }
+    }
+}
+
+/// What the processor reports.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Effect {
+    /// A journey outcome (conversion credited or path expired) for a user.
+    Journey {
+        /// User.
+        user_key: UserKey,
+        /// What happened.
+        outcome: Outcome,
+    },
+    /// The user's journey was erased (nothing is emitted for it).
+    Erased {
+        /// User.
+        user_key: UserKey,
+        /// Touches dropped.
+        touches: usize,
+        /// Pending conversions dropped.
+        conversions: usize,
+    },
+}
+
+/// Applies events under the journey rules.
+#[derive(Debug, Clone, Copy)]
+pub struct Processor {
+    /// Timing rules.
+    pub rules: Rules,
+}
+
+impl Processor {
+    /// A processor with the given rules.
+    pub fn new(rules: Rules) -> Self {
+        Processor { rules }
+    }
+
+    /// Advances every journey that has something due at `watermark`.
+    pub fn advance<S: JourneyStore>(&self, store: &mut S, watermark: i64) -> Result<Vec<Effect>, S::Error> {
+        let mut out = Vec::new();
+        for key in store.due(watermark)? {
+            let Some(mut j) = store.load(&key)? else { continue };
+            let outcomes = j.advance(watermark, &self.rules);
+            let wake = j.next_wake(&self.rules);
+            store.save(&key, j, wake)?;
+            out.extend(outcomes.into_iter().map(|outcome| Effect::Journey { user_key: key, outcome }));
+        }
+        Ok(out)
+    }
+
+    /// Applies one event, then advances its journey to `watermark`.
+    pub fn apply<S: JourneyStore>(
+        &self,
+        store: &mut S,
+        event: KeyedEvent,
+        watermark: i64,
+    ) -> Result<Vec<Effect>, S::Error> {
+        let key = event.user_key;
+        let mut j = store.load(&key)?.unwrap_or_default();
+        match event.kind {
+            KeyedKind::Touch(t) => j.add_touch(t),
+            KeyedKind::Conversion(c) => j.add_conversion(c),
+            KeyedKind::Erase { .. } => {
+                let effect = Effect::Erased { user_key: key, touches: j.touches.len(), conversions: j.pending.len() };
+                store.save(&key, Journey::default(), None)?;
+                return Ok(vec![effect]);
+            }
+        }
+        let outcomes = j.advance(watermark, &self.rules);
+        let wake = j.next_wake(&self.rules);
+        store.save(&key, j, wake)?;
+        Ok(outcomes.into_iter().map(|outcome| Effect::Journey { user_key: key, outcome }).collect())
+    }
+
+    /// End of input: credits every pending conversion and closes every open
+    /// journey as non-converting, in key order.
+    pub fn finish<S: JourneyStore>(&self, store: &mut S) -> Result<Vec<Effect>, S::Error> {
+        let mut out = Vec::new();
+        for key in store.keys()? {
+            let Some(mut j) = store.load(&key)? else { continue };
+            let outcomes = j.finish(&self.rules);
+            store.save(&key, Journey::default(), None)?;
+            out.extend(outcomes.into_iter().map(|outcome| Effect::Journey { user_key: key, outcome }));
+        }
+        Ok(out)
+    }
+}
+
+/// An in-memory [`JourneyStore`] (tests, demos, small inputs).
+#[derive(Debug, Default, Clone)]
+pub struct MemStore {
+    journeys: HashMap<UserKey, (Journey, Option<i64>)>,
+    wake: BTreeSet<(i64, UserKey)>,
+}
+
+impl MemStore {
+    /// Number of open journeys.
+    pub fn len(&self) -> usize {
+        self.journeys.len()
+    }
+
+    /// True when no journey is open.
+    pub fn is_empty(&self) -> bool {
+        self.journeys.is_empty()
+    }
+}
+
+impl JourneyStore for MemStore {
+    type Error = std::convert::Infallible;
+
+    fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error> {
+        Ok(self.journeys.get(key).map(|(j, _)| j.clone()))
+    }
+
+    fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), Self::Error> {
+        if let Some((_, Some(old))) = self.journeys.get(key) {
+            self.wake.remove(&(*old, *key));
+        }
+        if journey.is_empty() {
+            self.journeys.remove(key);
+            return Ok(());
+        }
+        if let Some(w) = wake {
+            self.wake.insert((w, *key));
+        }
+        self.journeys.insert(*key, (journey, wake));
+        Ok(())
+    }
+
+    fn due(&mut self, watermark: i64) -> Result<Vec<UserKey>, Self::Error> {
+        Ok(self.wake.range(..=(watermark, UserKey([0xff; 32]))).map(|(_, k)| *k).collect())
+    }
+
+    fn keys(&mut self) -> Result<Vec<UserKey>, Self::Error> {
+        let ordered: BTreeMap<_, _> = self.journeys.keys().map(|k| (*k, ())).collect();
+        Ok(ordered.into_keys().collect())
+    }
+}
