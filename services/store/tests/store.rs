@@ -1,0 +1,138 @@
+//! The sled store must behave exactly like the engine's in-memory store
+//! (the reference), across commits, cache eviction and reopening.
+
+use apportion_engine::journey::Rules;
+use apportion_engine::processor::{KeyedEvent, MemStore};
+use apportion_engine::replay::{effect_rows, Pushed, Replayer};
+use apportion_engine::registry::{rule_model, RuleParams};
+use apportion_engine::{parse_event, Journey, JourneyStore, Model, Pseudonymizer, UserKey};
+use apportion_store::{decode_journey, encode_journey, Store, StoreError};
+use proptest::prelude::*;
+
+const DAY: i64 = 86_400_000;
+
+fn lines(events: &[(u8, i64, bool, u8)]) -> Vec<String> {
+    events
+        .iter()
+        .enumerate()
+        .map(|(i, (u, t, conv, ch))| {
+            if *conv {
+                format!(r#"{{"type":"conversion","event_id":"e{i}","user_id":"u{u}","timestamp":{}}}"#, t * DAY / 3)
+            } else {
+                format!(r#"{{"type":"touch","event_id":"e{i}","user_id":"u{u}","timestamp":{},"channel":"c{ch}"}}"#, t * DAY / 3)
+            }
+        })
+        .collect()
+}
+
+fn run<S: JourneyStore>(store: S, lines: &[String], commit: &mut dyn FnMut(&mut S)) -> Vec<String>
+where
+    S::Error: std::fmt::Debug,
+{
+    let models: Vec<Box<dyn Model>> = vec![rule_model("linear", &RuleParams::default()).unwrap()];
+    let p = Pseudonymizer::new(b"k");
+    let mut evs: Vec<(u64, apportion_engine::Event)> =
+        lines.iter().enumerate().map(|(i, l)| (i as u64, parse_event(l.as_bytes()).unwrap())).collect();
+    evs.sort_by_key(|(i, e)| (e.timestamp_ms, *i));
+    let rules = Rules { lookback_ms: 5 * DAY, view_lookback_ms: 5 * DAY, expiry_ms: 4 * DAY };
+    let mut r = Replayer::new(rules, store);
+    let mut out = Vec::new();
+    for (n, (i, ev)) in evs.into_iter().enumerate() {
+        let id = ev.event_id.clone();
+        let key = p.key_for(&ev.user_id);
+        if let Pushed::Applied(effects) = r.push(KeyedEvent::from_event(ev, key, i), &id).unwrap() {
+            for e in effects {
+                let (rows, path) = effect_rows(&e, &models);
+                out.extend(rows.iter().map(|x| serde_json::to_string(x).unwrap()));
+                out.extend(path.iter().map(|x| serde_json::to_string(x).unwrap()));
+            }
+        }
+        if n % 3 == 0 {
+            commit(r.store_mut());
+        }
+    }
+    for e in r.finish().unwrap() {
+        let (rows, path) = effect_rows(&e, &models);
+        out.extend(rows.iter().map(|x| serde_json::to_string(x).unwrap()));
+        out.extend(path.iter().map(|x| serde_json::to_string(x).unwrap()));
+    }
+    out.sort();
+    out
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(48))]
+    #[test]
+    fn sled_store_matches_memory_store(
+        events in prop::collection::vec((0u8..5, 0i64..90, prop::bool::weighted(0.3), 0u8..3), 1..80),
+        budget in prop::sample::select(vec![0usize, 500, 1 << 20]),
+    ) {
+        let l = lines(&events);
+        let want = run(MemStore::default(), &l, &mut |_| {});
+        let store = Store::temporary().unwrap();
+        let part = store.partition("t/0", budget).unwrap();
+        let got = run(part, &l, &mut |s| s.commit(false).unwrap());
+        prop_assert_eq!(got, want);
+    }
+}
+
+#[test]
+fn state_survives_reopen_and_offsets_commit_with_it() {
+    let dir = tempfile::tempdir().unwrap();
+    let key = UserKey([7; 32]);
+    let mut j = Journey::default();
+    j.add_touch(apportion_engine::Touch {
+        event_id: "t1".into(),
+        ts: 10,
+        seq: 1,
+        channel: "email".into(),
+        campaign: Some("spring".into()),
+        interaction: apportion_engine::Interaction::Click,
+    });
+    {
+        let store = Store::open(dir.path()).unwrap();
+        let mut p = store.partition("events/0", 1 << 20).unwrap();
+        p.save(&key, j.clone(), Some(99)).unwrap();
+        p.stage_offset("events/0", 41);
+        // Not committed yet: nothing visible through a second handle.
+        let p2 = store.partition("events/0", 1 << 20).unwrap();
+        assert_eq!(p2.offset("events/0").unwrap(), None);
+        p.commit(true).unwrap();
+        assert_eq!(p.open_journeys(), 1);
+    }
+    let store = Store::open(dir.path()).unwrap();
+    let mut p = store.partition("events/0", 1 << 20).unwrap();
+    assert_eq!(p.offset("events/0").unwrap(), Some(41));
+    assert_eq!(p.load(&key).unwrap(), Some(j));
+    assert_eq!(p.due(98).unwrap(), vec![]);
+    assert_eq!(p.due(99).unwrap(), vec![key]);
+    assert_eq!(p.open_journeys(), 1);
+    assert_eq!(store.partitions(), vec!["events/0".to_string()]);
+}
+
+#[test]
+fn duplicate_detection_persists_and_prunes() {
+    let store = Store::temporary().unwrap();
+    let mut p = store.partition("x", 1 << 20).unwrap();
+    assert!(p.mark_seen(1, 100).unwrap());
+    assert!(!p.mark_seen(1, 100).unwrap());
+    p.commit(false).unwrap();
+    assert!(!p.mark_seen(1, 100).unwrap());
+    assert!(p.mark_seen(2, 500).unwrap());
+    p.commit(false).unwrap();
+    assert_eq!(p.prune_seen(200).unwrap(), 1);
+    assert!(p.mark_seen(1, 100).unwrap());
+    assert!(!p.mark_seen(2, 500).unwrap());
+}
+
+#[test]
+fn records_carry_a_version_byte() {
+    let j = Journey::default();
+    let bytes = encode_journey(Some(5), &j);
+    assert_eq!(bytes[0], 1);
+    assert_eq!(decode_journey(&bytes).unwrap().wake, Some(5));
+    let mut future = bytes.clone();
+    future[0] = 9;
+    assert!(matches!(decode_journey(&future), Err(StoreError::UnknownVersion { found: 9, expected: 1 })));
+    assert!(matches!(decode_journey(&[]), Err(StoreError::Corrupt { .. })));
+}
