@@ -1,5 +1,5 @@
 # Shared helpers for the dev/test server scripts in deploy/dev/. Sourced, not run.
-# shellcheck shell=bash
+# shellcheck shell=bash disable=SC2034 # DEV_CACHE_DIR, DEV_RUN_DIR, DEV_APT_UPDATED are used by the sourcing scripts
 
 DEV_DIR="$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)"
 # Downloaded jars and other reusable things (git-ignored).
@@ -41,21 +41,29 @@ tcp_answers() {
   (exec 3<>"/dev/tcp/127.0.0.1/$1") 2>/dev/null
 }
 
-# True when the pid in file $1 is a live process.
+# True when the pid in file $1 is a live process (a zombie, killed but not yet
+# reaped, does not count).
 pid_alive() {
-  local pid
+  local pid state
   [[ -s "$1" ]] || return 1
   pid="$(cat "$1")"
-  [[ "$pid" =~ ^[0-9]+$ ]] && kill -0 "$pid" 2>/dev/null
+  [[ "$pid" =~ ^[0-9]+$ ]] || return 1
+  kill -0 "$pid" 2>/dev/null || return 1
+  state="$(awk '{ print $3 }' "/proc/$pid/stat" 2>/dev/null || true)"
+  [[ -n "$state" && "$state" != Z && "$state" != X ]]
 }
 
 # Runs "$@" while holding an exclusive lock on file $1 (serialises start/stop).
+# Servers started under it must close DEV_LOCK_FD ({DEV_LOCK_FD}>&-) or they keep the lock.
 with_lock() {
   local lock="$1"
   shift
   mkdir -p "$(dirname "$lock")"
   exec {DEV_LOCK_FD}>"$lock"
-  flock -w 600 "$DEV_LOCK_FD" || die "timed out waiting for lock $lock"
+  if ! flock -n "$DEV_LOCK_FD"; then
+    say "waiting for another start/stop to finish (lock $lock)"
+    flock -w 300 "$DEV_LOCK_FD" || die "timed out after 300 s waiting for lock $lock"
+  fi
   "$@"
 }
 

@@ -1,0 +1,47 @@
+#!/usr/bin/env bash
+# The project's test command (README.md). Installs and starts what the tests
+# need on a fresh machine, runs every test, stops what it started.
+#   scripts/test.sh            everything (Kafka, PostgreSQL, promtool included)
+#   SKIP_SERVERS=1 scripts/test.sh   unit and binary tests only (no broker, no database)
+set -euo pipefail
+cd "$(dirname "$0")/.."
+root=$PWD
+
+if ! command -v cargo >/dev/null; then
+  echo "cargo not found: install Rust with rustup first" >&2
+  exit 1
+fi
+
+started=()
+cleanup() {
+  for s in "${started[@]}"; do
+    bash "deploy/dev/$s.sh" stop >/dev/null 2>&1 || true
+  done
+}
+trap cleanup EXIT
+
+if [[ -z "${SKIP_SERVERS:-}" ]]; then
+  echo "== promtool"
+  bash deploy/dev/promtool.sh
+  echo "== Kafka broker"
+  t0=$(date +%s)
+  bash deploy/dev/kafka.sh start
+  started+=(kafka)
+  eval "$(bash deploy/dev/kafka.sh env)"
+  echo "broker ready after $(( $(date +%s) - t0 ))s at $APPORTION_TEST_KAFKA"
+  echo "== PostgreSQL"
+  bash deploy/dev/postgres.sh start
+  started+=(postgres)
+  eval "$(bash deploy/dev/postgres.sh env)"
+  export APPORTION_TEST_KAFKA APPORTION_TEST_POSTGRES
+  export APPORTION_REQUIRE_SERVERS=1
+fi
+
+echo "== cargo test"
+cargo test --workspace --release 2>&1
+
+if [[ -z "${SKIP_SERVERS:-}" ]]; then
+  echo "== deploy checks"
+  bash deploy/check.sh
+fi
+echo "== all tests passed"
