@@ -229,3 +229,20 @@ impl JourneyStore for MemStore {
         Ok(ordered.into_keys().collect())
     }
 }
+
+impl<S: JourneyStore> JourneyStore for &mut S {
+    type Error = S::Error;
+
+    fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error> {
+        (**self).load(key)
+    }
+    fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), Self::Error> {
+        (**self).save(key, journey, wake)
+    }
+    fn due(&mut self, watermark: i64) -> Result<Vec<UserKey>, Self::Error> {
+        (**self).due(watermark)
+    }
+    fn keys(&mut self) -> Result<Vec<UserKey>, Self::Error> {
+        (**self).keys()
+    }
+}

@@ -1,0 +1,183 @@
+//! `apportion serve`: the long-running service.
+//!
+//! One processing thread runs [`run_loop`]: poll a batch from the source,
+//! apply it through the [`Pipeline`], write the output to every sink
+//! (retrying with backoff; a batch is never dropped), then commit state and
+//! offsets, then acknowledge to the source. The tokio runtime in `main`
+//! serves the admin and ingest HTTP endpoints and turns SIGTERM/SIGINT into
+//! the shutdown flag; shutdown finishes the current batch, flushes the store,
+//! commits and exits.
+
+pub mod embedded;
+pub mod kafka;
+pub mod pipeline;
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use anyhow::{bail, Result};
+use apportion_sinks::{OutputBatch, Sink};
+
+use crate::metrics::Metrics;
+use pipeline::{InMsg, MsgStatus, PartId, Pipeline};
+
+/// A source of input batches.
+pub trait Source: Send {
+    /// Waits up to `wait` for up to `max` messages; opens and closes
+    /// partitions on the pipeline as assignment changes.
+    fn poll(&mut self, pipeline: &mut Pipeline, max: usize, wait: Duration) -> Result<Vec<(PartId, Vec<InMsg>)>>;
+    /// The batch is durable (sinks written, state committed).
+    fn committed(&mut self, pipeline: &Pipeline, statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()>;
+    /// Refreshes lag gauges.
+    fn update_lag(&mut self, _metrics: &Metrics) {}
+    /// Total consumer lag, if known.
+    fn lag(&self) -> Option<u64> {
+        None
+    }
+    /// True once the source has its partitions.
+    fn ready(&self) -> bool;
+    /// Shutdown.
+    fn close(&mut self, _pipeline: &mut Pipeline) -> Result<()> {
+        Ok(())
+    }
+}
+
+/// State shared with the admin endpoints.
+#[derive(Debug, Default)]
+pub struct Shared {
+    /// Ready for traffic.
+    pub ready: bool,
+    /// Consumer lag (messages), if known.
+    pub lag: Option<u64>,
+    /// The fitted models as JSON (model endpoint).
+    pub models: serde_json::Value,
+    /// Set when the processing loop stopped with an error.
+    pub failed: Option<String>,
+}
+
+/// Writes `out` to every sink, retrying each with exponential backoff until
+/// it succeeds, a permanent error occurs, or shutdown is requested.
+pub fn write_sinks(sinks: &mut [Box<dyn Sink>], out: &OutputBatch, stop: &AtomicBool, metrics: &Metrics) -> Result<()> {
+    for sink in sinks.iter_mut() {
+        let mut backoff = Duration::from_millis(100);
+        loop {
+            match sink.write(out) {
+                Ok(()) => {
+                    let name = sink.name();
+                    metrics.sink_rows.with_label_values(&[name, "credit"]).inc_by(out.credit.len() as u64);
+                    metrics.sink_rows.with_label_values(&[name, "path"]).inc_by(out.paths.len() as u64);
+                    metrics.sink_rows.with_label_values(&[name, "dead_letter"]).inc_by(out.dead_letters.len() as u64);
+                    break;
+                }
+                Err(e) => {
+                    metrics.sink_errors.with_label_values(&[sink.name()]).inc();
+                    if !e.retryable {
+                        bail!("{e}");
+                    }
+                    if stop.load(Ordering::SeqCst) {
+                        bail!("shutdown while retrying: {e}; the batch will be re-delivered on restart");
+                    }
+                    tracing::warn!(error = %e, retry_in_ms = backoff.as_millis() as u64, "sink write failed; retrying the same batch");
+                    metrics.sink_retries.with_label_values(&[sink.name()]).inc();
+                    std::thread::sleep(backoff);
+                    backoff = (backoff * 2).min(Duration::from_secs(30));
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// The processing loop. Returns when `stop` is set (after finishing the
+/// current batch) or on a permanent error.
+pub fn run_loop(
+    mut pipeline: Pipeline,
+    mut source: Box<dyn Source>,
+    mut sinks: Vec<Box<dyn Sink>>,
+    stop: Arc<AtomicBool>,
+    metrics: Metrics,
+    shared: Arc<Mutex<Shared>>,
+) -> Result<()> {
+    let batch_size = pipeline.config().batch_size;
+    let max_ready_lag = pipeline.config().admin.max_ready_lag;
+    let mut last_lag = Instant::now() - Duration::from_secs(60);
+    publish_models(&pipeline, &shared);
+    let result = (|| -> Result<()> {
+        while !stop.load(Ordering::SeqCst) {
+            let batch = source.poll(&mut pipeline, batch_size, Duration::from_millis(200))?;
+            let started = Instant::now();
+            let had_input = !batch.is_empty();
+            let mut out = OutputBatch::default();
+            let mut statuses = Vec::with_capacity(batch.len());
+            for (id, msgs) in &batch {
+                statuses.push((id.clone(), pipeline.process(id, msgs, &mut out)?));
+            }
+            pipeline.tick(Instant::now(), &mut out)?;
+            if had_input || !out.is_empty() {
+                if let Err(e) = write_sinks(&mut sinks, &out, &stop, &metrics) {
+                    // Nothing of this batch is committed: it is re-delivered.
+                    pipeline.rollback()?;
+                    return Err(e);
+                }
+                pipeline.commit()?;
+                source.committed(&pipeline, statuses)?;
+                metrics.batch_duration.observe(started.elapsed().as_secs_f64());
+            }
+            let before = pipeline.models().iter().map(|m| m.version().map(str::to_string)).collect::<Vec<_>>();
+            pipeline.maybe_refit()?;
+            let after = pipeline.models().iter().map(|m| m.version().map(str::to_string)).collect::<Vec<_>>();
+            if before != after {
+                publish_models(&pipeline, &shared);
+            }
+            if last_lag.elapsed() >= Duration::from_secs(5) {
+                source.update_lag(&metrics);
+                pipeline.update_gauges();
+                update_disk(&pipeline, &metrics);
+                last_lag = Instant::now();
+            }
+            let lag = source.lag();
+            let ready = source.ready() && (max_ready_lag == 0 || lag.map_or(true, |l| l <= max_ready_lag));
+            metrics.ready.set(ready as i64);
+            let mut s = shared.lock().expect("shared state");
+            s.ready = ready;
+            s.lag = lag;
+        }
+        Ok(())
+    })();
+    metrics.ready.set(0);
+    shared.lock().expect("shared state").ready = false;
+    if let Err(e) = &result {
+        shared.lock().expect("shared state").failed = Some(format!("{e:#}"));
+        return result;
+    }
+    pipeline.flush()?;
+    for s in sinks.iter_mut() {
+        s.close()?;
+    }
+    source.close(&mut pipeline)?;
+    tracing::info!("processing stopped cleanly: batch finished, store flushed, offsets committed");
+    Ok(())
+}
+
+fn publish_models(pipeline: &Pipeline, shared: &Arc<Mutex<Shared>>) {
+    let models: Vec<serde_json::Value> = pipeline
+        .models()
+        .iter()
+        .map(|m| serde_json::json!({ "model": m.name(), "model_version": m.version() }))
+        .collect();
+    shared.lock().expect("shared state").models = serde_json::json!({ "models": models });
+}
+
+fn update_disk(pipeline: &Pipeline, metrics: &Metrics) {
+    if let Some(dir) = pipeline.config().data_dir() {
+        if let Ok(n) = fs_available(&dir) {
+            metrics.disk_available.set(n as i64);
+        }
+    }
+}
+
+/// Free bytes on the filesystem holding `dir`.
+fn fs_available(dir: &std::path::Path) -> Result<u64> {
+    Ok(fs2::available_space(dir)?)
+}

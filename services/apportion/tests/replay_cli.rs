@@ -1,0 +1,216 @@
+//! End-to-end tests of the `apportion replay` binary on a small fixture
+//! (tests/fixtures/small.ndjson) whose expected rows were worked out by hand
+//! from the contract (DESIGN.md). Time-decay values come from the formula
+//! 2^(-(T - t)/half_life), normalized (computed with a calculator:
+//! 2^(-3/7) : 2^(-1/7) and 2^(-2/7) : 2^(-1/7) : 1).
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use serde_json::Value;
+
+fn bin() -> PathBuf {
+    PathBuf::from(env!("CARGO_BIN_EXE_apportion"))
+}
+
+fn fixture(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures").join(name)
+}
+
+fn read_ndjson(p: &Path) -> Vec<Value> {
+    std::fs::read_to_string(p).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect()
+}
+
+struct Run {
+    rows: Vec<Value>,
+    paths: Vec<Value>,
+    rejected: Vec<Value>,
+    stderr: String,
+}
+
+fn replay(input: &Path, models: &str, extra: &[&str]) -> Run {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("credit.ndjson");
+    let paths = dir.path().join("paths.ndjson");
+    let rej = dir.path().join("rejected.ndjson");
+    let o = Command::new(bin())
+        .args(["replay", "--input"])
+        .arg(input)
+        .arg("--output")
+        .arg(&out)
+        .arg("--paths")
+        .arg(&paths)
+        .arg("--rejected")
+        .arg(&rej)
+        .args(["--models", models])
+        .args(extra)
+        .env_remove("APPORTION_PSEUDONYM_KEY")
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&o.stderr).into_owned();
+    assert!(o.status.success(), "replay failed: {stderr}");
+    Run { rows: read_ndjson(&out), paths: read_ndjson(&paths), rejected: read_ndjson(&rej), stderr }
+}
+
+fn by_key(rows: &[Value]) -> HashMap<(String, String, u64), Value> {
+    rows.iter()
+        .map(|r| {
+            (
+                (r["conversion_id"].as_str().unwrap().to_string(), r["model"].as_str().unwrap().to_string(), r["position"].as_u64().unwrap()),
+                r.clone(),
+            )
+        })
+        .collect()
+}
+
+fn close(v: &Value, want: f64) -> bool {
+    (v.as_f64().unwrap() - want).abs() < 1e-6
+}
+
+#[test]
+fn small_fixture_hand_checked() {
+    let run = replay(&fixture("small.ndjson"), "last_touch,linear,time_decay,u_shaped", &[]);
+    let rows = by_key(&run.rows);
+    // o-1: email (3 days before) then paid_search (1 day before), value 100 EUR.
+    // o-2: its only touch expired 30+ days earlier -> one unattributed row.
+    // o-3: display view, email, display (the last at the conversion's own
+    //      time, listed before it, so it counts).
+    let expect: Vec<(&str, &str, u64, &str, f64)> = vec![
+        ("o-1", "last_touch", 1, "email", 0.0),
+        ("o-1", "last_touch", 2, "paid_search", 1.0),
+        ("o-1", "linear", 1, "email", 0.5),
+        ("o-1", "linear", 2, "paid_search", 0.5),
+        ("o-1", "time_decay", 1, "email", 0.450651),
+        ("o-1", "time_decay", 2, "paid_search", 0.549349),
+        ("o-1", "u_shaped", 1, "email", 0.5),
+        ("o-1", "u_shaped", 2, "paid_search", 0.5),
+        ("o-2", "last_touch", 0, "unattributed", 1.0),
+        ("o-2", "linear", 0, "unattributed", 1.0),
+        ("o-2", "time_decay", 0, "unattributed", 1.0),
+        ("o-2", "u_shaped", 0, "unattributed", 1.0),
+        ("o-3", "last_touch", 1, "display", 0.0),
+        ("o-3", "last_touch", 2, "email", 0.0),
+        ("o-3", "last_touch", 3, "display", 1.0),
+        ("o-3", "linear", 1, "display", 1.0 / 3.0),
+        ("o-3", "linear", 2, "email", 1.0 / 3.0),
+        ("o-3", "linear", 3, "display", 1.0 / 3.0),
+        ("o-3", "time_decay", 1, "display", 0.300924),
+        ("o-3", "time_decay", 2, "email", 0.332247),
+        ("o-3", "time_decay", 3, "display", 0.366830),
+        ("o-3", "u_shaped", 1, "display", 0.4),
+        ("o-3", "u_shaped", 2, "email", 0.2),
+        ("o-3", "u_shaped", 3, "display", 0.4),
+    ];
+    assert_eq!(run.rows.len(), expect.len(), "{:#?}", run.rows);
+    for (conv, model, pos, channel, credit) in &expect {
+        let r = rows.get(&(conv.to_string(), model.to_string(), *pos)).unwrap_or_else(|| panic!("missing {conv} {model} {pos}"));
+        assert_eq!(r["channel"], *channel, "{r}");
+        assert!(close(&r["credit"], *credit), "{conv} {model} {pos}: {}", r["credit"]);
+    }
+    let r = &rows[&("o-1".into(), "time_decay".into(), 2)];
+    assert_eq!(r["touch_event_id"], "t-2");
+    assert_eq!(r["campaign"], "tents-generic");
+    assert_eq!(r["interaction"], "click");
+    assert_eq!(r["goal"], "purchase");
+    assert_eq!(r["path_length"], 2);
+    assert_eq!(r["touch_timestamp"], "2026-03-03T10:00:00.000Z");
+    assert_eq!(r["conversion_timestamp"], "2026-03-04T10:00:00.000Z");
+    assert!(close(&r["credited_value"], 54.9349));
+    assert_eq!(r["currency"], "EUR");
+    assert_eq!(r["model_version"], Value::Null);
+    let u = &rows[&("o-2".into(), "linear".into(), 0)];
+    assert_eq!(u["touch_event_id"], Value::Null);
+    assert_eq!(u["path_length"], 0);
+    assert!(close(&u["credited_value"], 40.5));
+    assert_eq!(u["goal"], "conversion");
+    let v = &rows[&("o-3".into(), "linear".into(), 1)];
+    assert_eq!(v["interaction"], "view");
+    assert_eq!(v["touch_timestamp"], "2026-03-02T10:00:00.000Z");
+    assert_eq!(v["credited_value"], Value::Null);
+    assert_eq!(v["goal"], "signup");
+
+    // credit_id: unique per (conversion, model, position), 32 hex characters.
+    let ids: std::collections::HashSet<&str> = run.rows.iter().map(|r| r["credit_id"].as_str().unwrap()).collect();
+    assert_eq!(ids.len(), run.rows.len());
+    assert!(ids.iter().all(|i| i.len() == 32 && i.chars().all(|c| c.is_ascii_hexdigit())));
+
+    // Rejected: line 6 (not JSON) and line 13 (negative value).
+    assert_eq!(run.rejected.len(), 2);
+    assert_eq!(run.rejected[0]["line"], 6);
+    assert_eq!(run.rejected[0]["reason"], "invalid_json");
+    assert_eq!(run.rejected[1]["line"], 13);
+    assert_eq!(run.rejected[1]["reason"], "invalid_value");
+
+    // Paths: two converting, two not (bo's expired touch, di's open journey at the end).
+    let mut paths: Vec<(bool, String)> = run
+        .paths
+        .iter()
+        .map(|p| (p["converted"].as_bool().unwrap(), p["channels"].as_array().unwrap().iter().map(|c| c.as_str().unwrap()).collect::<Vec<_>>().join(">")))
+        .collect();
+    paths.sort();
+    assert_eq!(
+        paths,
+        vec![(false, "affiliate".into()), (false, "social".into()), (true, "display>email>display".into()), (true, "email>paid_search".into())]
+    );
+
+    assert!(run.stderr.contains("3 conversions (1 unattributed), 2 rejected, 1 duplicates"), "{}", run.stderr);
+    assert!(run.stderr.contains("development key"), "{}", run.stderr);
+    // No raw user id anywhere in the outputs.
+    let all = format!("{:?}{:?}{:?}", run.rows, run.paths, run.rejected);
+    for raw in ["hiker-ann", "camper-bo", "climber-cy", "walker-di"] {
+        assert!(!all.contains(raw));
+    }
+}
+
+#[test]
+fn same_input_same_output_and_stdin_works() {
+    let a = replay(&fixture("small.ndjson"), "linear,u_shaped", &[]);
+    let b = replay(&fixture("small.ndjson"), "linear,u_shaped", &[]);
+    assert_eq!(a.rows, b.rows);
+    let o = Command::new(bin())
+        .args(["replay", "--input", "-", "--output", "-", "--models", "linear,u_shaped", "--quiet"])
+        .stdin(std::fs::File::open(fixture("small.ndjson")).unwrap())
+        .output()
+        .unwrap();
+    assert!(o.status.success());
+    let rows: Vec<Value> = String::from_utf8(o.stdout).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(rows, a.rows);
+}
+
+#[test]
+fn flags_change_the_rules() {
+    // A 2-day lookback drops o-1's email touch (3 days before).
+    let run = replay(&fixture("small.ndjson"), "linear", &["--lookback", "2d", "--expiry", "90d"]);
+    let o1: Vec<&Value> = run.rows.iter().filter(|r| r["conversion_id"] == "o-1").collect();
+    assert_eq!(o1.len(), 1);
+    assert_eq!(o1[0]["channel"], "paid_search");
+    // With a 90-day expiry, bo's January touch is still open but outside the 2-day lookback.
+    let o2: Vec<&Value> = run.rows.iter().filter(|r| r["conversion_id"] == "o-2").collect();
+    assert_eq!(o2[0]["channel"], "unattributed");
+}
+
+#[test]
+fn usage_errors_are_clear() {
+    let o = Command::new(bin()).args(["replay", "--input", "x", "--output", "-", "--models", "linear,magic"]).output().unwrap();
+    assert!(!o.status.success());
+    assert!(String::from_utf8_lossy(&o.stderr).contains("unknown model \"magic\""));
+    let o = Command::new(bin()).args(["replay", "--input", "/nonexistent/file", "--output", "-"]).output().unwrap();
+    assert_eq!(o.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("cannot open input /nonexistent/file"));
+    let o = Command::new(bin()).args(["replay", "--input", "x", "--output", "-", "--lookback", "3 weeks"]).output().unwrap();
+    assert_eq!(o.status.code(), Some(2));
+}
+
+#[test]
+fn print_default_config_parses() {
+    let o = Command::new(bin()).args(["config", "--print-default"]).output().unwrap();
+    assert!(o.status.success());
+    let text = String::from_utf8(o.stdout).unwrap();
+    assert!(text.contains("lookback = \"30d\""));
+    let dir = tempfile::tempdir().unwrap();
+    let f = dir.path().join("c.toml");
+    std::fs::write(&f, text).unwrap();
+    let o = Command::new(bin()).arg("--config").arg(&f).arg("config").output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+}

@@ -1,0 +1,7 @@
+//! End-to-end tests: the `apportion` binary against a real Apache Kafka
+//! broker (deploy/dev/kafka.sh), the embedded HTTP mode, and the metrics
+//! exposition checked by Prometheus' own promtool. All compile as one binary.
+
+mod embedded;
+mod kafka_stream;
+mod metrics_lint;

@@ -1,0 +1,274 @@
+//! `serve` on a real broker: streaming equals batch, restarts, repartition,
+//! bad messages, watermark-driven expiry.
+
+use std::collections::{BTreeMap, HashMap, HashSet};
+use std::time::Duration;
+
+use apportion_e2e::*;
+use serde_json::Value;
+
+const START: i64 = 1_780_000_000_000; // 2026-05-28, invented scenario time
+
+fn write_events(dir: &std::path::Path, events: &[GenEvent]) -> std::path::PathBuf {
+    let p = dir.join("events.ndjson");
+    let text: String = events.iter().map(|e| format!("{}\n", e.line)).collect();
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+fn conversions(events: &[GenEvent]) -> usize {
+    events.iter().filter(|e| e.conversion).count()
+}
+
+fn distinct_conversions(rows: &[Value]) -> usize {
+    rows.iter().map(|r| r["conversion_id"].as_str().unwrap().to_string()).collect::<HashSet<_>>().len()
+}
+
+/// Stream a scenario through serve and compare with replay on the same
+/// events: identical credit rows for every rule model.
+#[test]
+fn streaming_equals_replay() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("eq");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 4, &[]);
+    let mut events = scenario(400, 11, START);
+    events.sort_by_key(|e| e.ts);
+    shuffle_within(&mut events, 1500, 5);
+    let file = write_events(dir.path(), &events);
+    let want = replay(&file, &["--models", "last_touch,first_touch,linear,time_decay,u_shaped"]);
+    assert_eq!(distinct_conversions(&want), conversions(&events));
+
+    let msgs: Vec<_> = events.iter().map(|e| (Some(e.user.clone()), e.line.as_bytes().to_vec(), None)).collect();
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, true, "");
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| rows.len() >= want.len());
+    assert_eq!(got.len(), want.len(), "log: {}", std::fs::read_to_string(&s.log).unwrap());
+    assert_eq!(canonical(&got), canonical(&want));
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
+
+fn check_restart(sig: &str) {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique(&format!("rs{}", sig.to_lowercase()));
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 4, &[]);
+    let mut events = scenario(1500, 23, START);
+    events.sort_by_key(|e| e.ts);
+    let file = write_events(dir.path(), &events);
+    let want = replay(&file, &["--models", "last_touch,first_touch,linear,time_decay,u_shaped"]);
+    let msgs: Vec<_> = events.iter().map(|e| (Some(e.user.clone()), e.line.as_bytes().to_vec(), None)).collect();
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, true, "");
+    // Small batches so that the stop lands mid-stream.
+    let text = std::fs::read_to_string(&cfg).unwrap().replace("batch_size = 500", "batch_size = 50");
+    std::fs::write(&cfg, text).unwrap();
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    // Wait until some, but not all, credit has been produced.
+    let partial = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 200);
+    assert!(partial.len() < want.len(), "stream finished before the stop; make the scenario larger");
+    let status = s.signal(sig);
+    if sig == "TERM" {
+        assert_eq!(status.code(), Some(0), "graceful stop must exit 0: {}", std::fs::read_to_string(&s.log).unwrap());
+    }
+    drop(s);
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let want_ids: HashSet<String> = want.iter().map(|r| r["credit_id"].as_str().unwrap().to_string()).collect();
+    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(180), |rows| {
+        rows.iter().map(|r| r["credit_id"].as_str().unwrap()).collect::<HashSet<_>>().len() >= want_ids.len()
+    });
+    // No conversion missing; duplicates only as identical rows.
+    let mut by_id: HashMap<String, Value> = HashMap::new();
+    for r in &got {
+        let id = r["credit_id"].as_str().unwrap().to_string();
+        if let Some(prev) = by_id.get(&id) {
+            assert_eq!(prev, r, "credit_id {id} seen with two different values");
+        }
+        by_id.insert(id, r.clone());
+    }
+    let got_ids: HashSet<String> = by_id.keys().cloned().collect();
+    assert_eq!(got_ids, want_ids, "log: {}", std::fs::read_to_string(&s.log).unwrap());
+    let mut unique_rows: Vec<Value> = by_id.into_values().collect();
+    unique_rows.sort_by_key(|r| r.to_string());
+    assert_eq!(canonical(&unique_rows), canonical(&want));
+    if sig == "TERM" {
+        assert_eq!(got.len(), want.len(), "a graceful stop commits everything it produced: no duplicates expected");
+    }
+    eprintln!("restart after SIG{sig}: {} rows consumed for {} distinct", got.len(), want.len());
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
+
+#[test]
+fn restart_after_sigterm_loses_nothing() {
+    check_restart("TERM");
+}
+
+#[test]
+fn restart_after_sigkill_loses_nothing() {
+    check_restart("KILL");
+}
+
+/// Input keyed at random goes through the repartition topic and gives the
+/// same credit as input keyed by user.
+#[test]
+fn repartition_gives_the_same_credit() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("rp");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 3, &[]);
+    create_topics(&brokers, &[&format!("{prefix}-repart")], 4, &[]);
+    let mut events = scenario(300, 31, START);
+    events.sort_by_key(|e| e.ts);
+    let file = write_events(dir.path(), &events);
+    let want = replay(&file, &["--models", "last_touch,first_touch,linear,time_decay,u_shaped"]);
+    // Keys unrelated to the user, spread over 3 partitions: a user's events
+    // meet again only through the repartition topic. Every event time of a
+    // user is distinct, so their order does not depend on arrival.
+    let msgs: Vec<_> = events
+        .iter()
+        .enumerate()
+        .map(|(i, e)| (Some(format!("k{}", (i * 7919) % 1013)), e.line.as_bytes().to_vec(), Some((i % 3) as i32)))
+        .collect();
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+    let admin = free_port();
+    // Partitions are read in any interleaving: a lateness longer than the
+    // scenario keeps every event on time.
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, false, "");
+    let text = std::fs::read_to_string(&cfg).unwrap().replace("allowed_lateness = \"2s\"", "allowed_lateness = \"30d\"");
+    std::fs::write(&cfg, text).unwrap();
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    wait_accepted(&s, events.len() as u64, Duration::from_secs(120));
+    // Then move every watermark past the scenario with far-future touches of
+    // many other users (their keys land on every repartition partition).
+    let sentinels: Vec<_> = (0..64)
+        .map(|k| {
+            let line = format!(
+                r#"{{"type":"touch","event_id":"sentinel-{k}","user_id":"sentinel-{k}","timestamp":{},"channel":"none"}}"#,
+                START + 400 * 86_400_000
+            );
+            (Some(format!("s{k}")), line.into_bytes(), Some(k % 3))
+        })
+        .collect();
+    produce(&brokers, &format!("{prefix}-events"), &sentinels);
+    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| rows.len() >= want.len());
+    assert_eq!(canonical(&got), canonical(&want), "log: {}", std::fs::read_to_string(&s.log).unwrap());
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
+
+/// Waits until the service has accepted `n` events (from /metrics).
+fn wait_accepted(s: &Serve, n: u64, timeout: Duration) {
+    let start = std::time::Instant::now();
+    let mut seen = 0;
+    while start.elapsed() < timeout {
+        if let Some((200, m)) = s.get("/metrics") {
+            seen = m
+                .lines()
+                .filter(|l| l.starts_with("apportion_events_consumed_total{") && l.contains("outcome=\"accepted\""))
+                .filter_map(|l| l.rsplit(' ').next()?.parse::<f64>().ok())
+                .sum::<f64>() as u64;
+            if seen >= n {
+                return;
+            }
+        }
+        std::thread::sleep(Duration::from_millis(300));
+    }
+    panic!("only {seen} of {n} events accepted: {}", std::fs::read_to_string(&s.log).unwrap());
+}
+
+/// Bad messages land in the dead-letter topic with their reason; the good
+/// ones around them are credited.
+#[test]
+fn bad_messages_go_to_the_dead_letter_topic() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("bad");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 1, &[("max.message.bytes", "4000000")]);
+    let t = START;
+    let good1 = format!(r#"{{"type":"touch","event_id":"g1","user_id":"u1","timestamp":{t},"channel":"email"}}"#);
+    let good2 = format!(r#"{{"type":"conversion","event_id":"g2","user_id":"u1","timestamp":{},"value":5}}"#, t + 1000);
+    let big = format!(r#"{{"type":"touch","event_id":"big","user_id":"u2","timestamp":{t},"channel":"{}"}}"#, "x".repeat(2 << 20));
+    let far = format!(r#"{{"type":"touch","event_id":"later","user_id":"u9","timestamp":{},"channel":"email"}}"#, t + 60_000);
+    let msgs: Vec<(Option<String>, Vec<u8>, Option<i32>)> = vec![
+        (None, good1.into_bytes(), Some(0)),
+        (None, b"this is not json".to_vec(), Some(0)),
+        (None, format!(r#"{{"type":"touch","user_id":"u3","timestamp":{t},"channel":"email"}}"#).into_bytes(), Some(0)),
+        (None, format!(r#"{{"type":"touch","event_id":"x4","user_id":"u4","timestamp":"soon","channel":"email"}}"#).into_bytes(), Some(0)),
+        (None, format!(r#"{{"type":"conversion","event_id":"x5","user_id":"u5","timestamp":{t},"value":"ten"}}"#).into_bytes(), Some(0)),
+        (None, big.into_bytes(), Some(0)),
+        (None, good2.into_bytes(), Some(0)),
+        (None, far.into_bytes(), Some(0)),
+    ];
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, true, "");
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let dead = consume_until(&brokers, &format!("{prefix}-dead"), Duration::from_secs(60), |r| r.len() >= 5);
+    let reasons: BTreeMap<i64, String> =
+        dead.iter().map(|d| (d["offset"].as_i64().unwrap(), d["reason"].as_str().unwrap().to_string())).collect();
+    assert_eq!(
+        reasons,
+        BTreeMap::from([
+            (1, "invalid_json".to_string()),
+            (2, "missing_event_id".to_string()),
+            (3, "invalid_timestamp".to_string()),
+            (4, "invalid_value".to_string()),
+            (5, "too_large".to_string()),
+        ])
+    );
+    for d in &dead {
+        assert_eq!(d["source"], format!("{prefix}-events"));
+        assert_eq!(d["partition"], 0);
+        assert!(!d.to_string().contains("\"u"), "no raw user id in dead letters: {d}");
+    }
+    let credit = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 5);
+    assert_eq!(credit.len(), 5, "one row per rule model for g2");
+    assert!(credit.iter().all(|r| r["conversion_id"] == "g2" && r["touch_event_id"] == "g1"));
+    // The service is still alive and counted the rejections.
+    let (_, metrics) = s.get("/metrics").unwrap();
+    assert!(metrics.contains("apportion_events_rejected_total{reason=\"too_large\"} 1"), "{metrics}");
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
+
+/// A journey with no conversion closes as a non-converting path once the
+/// watermark passes its expiry, also on a partition that goes quiet.
+#[test]
+fn idle_partition_still_expires_journeys() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("idle");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 2, &[]);
+    let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64;
+    let msgs = vec![
+        (None, format!(r#"{{"type":"touch","event_id":"a1","user_id":"ua","timestamp":{now},"channel":"email"}}"#).into_bytes(), Some(0)),
+        (None, format!(r#"{{"type":"touch","event_id":"a2","user_id":"ua","timestamp":{},"channel":"social"}}"#, now + 100).into_bytes(), Some(0)),
+        (None, format!(r#"{{"type":"touch","event_id":"b1","user_id":"ub","timestamp":{now},"channel":"video"}}"#).into_bytes(), Some(1)),
+    ];
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, true, "expiry = \"3s\"");
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    // No more input: only the idle advance can move the watermarks.
+    let paths = consume_until(&brokers, &format!("{prefix}-paths"), Duration::from_secs(60), |r| r.len() >= 2);
+    let mut got: Vec<(bool, String)> = paths
+        .iter()
+        .map(|p| {
+            let chans: Vec<&str> = p["channels"].as_array().unwrap().iter().map(|c| c.as_str().unwrap()).collect();
+            (p["converted"].as_bool().unwrap(), chans.join(">"))
+        })
+        .collect();
+    got.sort();
+    assert_eq!(got, vec![(false, "email>social".to_string()), (false, "video".to_string())]);
+    let (_, metrics) = s.get("/metrics").unwrap();
+    assert!(metrics.contains("apportion_journeys_closed_total{reason=\"expired\"} 2"), "{metrics}");
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
