@@ -9,6 +9,7 @@
 //! - `config.rs` (+ `default_config.toml`): typed configuration.
 //! - `replay.rs`: `apportion replay`, batch credit of an NDJSON file.
 //! - `demo.rs`: `apportion demo`, the invented shop scenario.
+//! - `explain.rs`: `apportion explain`, the fitted models and one conversion's terms.
 //! - `models.rs`: builds the configured models.
 //! - `output.rs`: atomic output files and the rejected-lines file.
 //! - `serve/`: the streaming service: `pipeline.rs` (partitions, watermarks,
@@ -21,6 +22,7 @@
 mod admin;
 mod config;
 mod demo;
+mod explain;
 mod metrics;
 mod models;
 mod output;
@@ -56,6 +58,8 @@ enum Command {
     Replay(ReplayArgs),
     /// Run an invented shop's scenario and print credit per channel and model.
     Demo(DemoArgs),
+    /// Show the fitted shapley and markov models, and why one conversion got its credit.
+    Explain(ExplainArgs),
     /// Run the streaming service (Kafka, or embedded HTTP/file input without a [kafka] section).
     Serve,
     /// Show or check the configuration.
@@ -110,6 +114,21 @@ struct ReplayArgs {
     /// No progress bar and no summary.
     #[arg(long)]
     quiet: bool,
+    #[command(flatten)]
+    flags: ModelFlags,
+}
+
+#[derive(Args, Debug)]
+struct ExplainArgs {
+    /// NDJSON input file, or - for stdin.
+    #[arg(long, value_name = "PATH|-")]
+    input: String,
+    /// Explain this conversion (its event_id) under every model.
+    #[arg(long, value_name = "ID")]
+    conversion: Option<String>,
+    /// Machine-readable JSON on stdout.
+    #[arg(long)]
+    json: bool,
     #[command(flatten)]
     flags: ModelFlags,
 }
@@ -224,6 +243,19 @@ fn run(cli: Cli) -> Result<()> {
             Ok(())
         }
         Command::Demo(a) => run_demo(cli.config.as_ref(), a),
+        Command::Explain(a) => {
+            let mut cfg = load_config(cli.config.as_ref())?;
+            if a.flags.models.is_none() {
+                cfg.models = apportion_engine::model::RULE_MODELS
+                    .iter()
+                    .chain(apportion_engine::model::DATA_DRIVEN_MODELS.iter())
+                    .map(|s| s.to_string())
+                    .collect();
+            }
+            apply_flags(&mut cfg, &a.flags)?;
+            let pseudo = pseudonymizer(&cfg);
+            explain::run(&a.input, a.conversion.as_deref(), a.json, &cfg, &pseudo)
+        }
         Command::Serve => service::serve(load_config(cli.config.as_ref())?),
         Command::Health { url } => service::health(&url),
     }

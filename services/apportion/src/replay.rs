@@ -72,7 +72,7 @@ struct Rec {
 }
 
 /// The input file with an index of its valid events.
-struct Indexed {
+pub(crate) struct Indexed {
     file: File,
     recs: Vec<Rec>,
     _spool: Option<tempfile::NamedTempFile>,
@@ -123,7 +123,7 @@ impl<'a> LineReader<'a> {
     }
 }
 
-fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut Summary) -> Result<Indexed> {
+pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut Summary) -> Result<Indexed> {
     let (file, spool) = if io.input == "-" {
         let mut spool = tempfile::NamedTempFile::new().context("creating a spool file for stdin")?;
         std::io::copy(&mut std::io::stdin().lock(), spool.as_file_mut()).context("reading stdin")?;
@@ -174,7 +174,7 @@ fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut Sum
 }
 
 /// Applies every indexed event once. `emit` receives each effect.
-fn apply_all(
+pub(crate) fn apply_all(
     idx: &Indexed,
     cfg: &Config,
     pseudo: &Pseudonymizer,

@@ -116,7 +116,7 @@ fn small_fixture_hand_checked() {
     assert_eq!(r["path_length"], 2);
     assert_eq!(r["touch_timestamp"], "2026-03-03T10:00:00.000Z");
     assert_eq!(r["conversion_timestamp"], "2026-03-04T10:00:00.000Z");
-    assert!(close(&r["credited_value"], 54.9349));
+    assert!(close(&r["credited_value"], 54.934933));
     assert_eq!(r["currency"], "EUR");
     assert_eq!(r["model_version"], Value::Null);
     let u = &rows[&("o-2".into(), "linear".into(), 0)];
@@ -213,4 +213,66 @@ fn print_default_config_parses() {
     std::fs::write(&f, text).unwrap();
     let o = Command::new(bin()).arg("--config").arg(&f).arg("config").output().unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+}
+
+/// The worked example of the data-driven models: closed paths A>B>C
+/// (converting), A>C (converting), B>A>B (not), C (converting), A>B (not).
+///
+/// markov, first order (Anderl et al. 2016; absorbing chains as in Kemeny
+/// and Snell 1960), derived by hand: P = 0.6; P without A = 0.25, without B =
+/// 0.35, without C = 0; removal effects 7/12, 5/12, 1; for the conversion of
+/// A>B>C the shares are 7/24, 5/24, 1/2.
+///
+/// shapley (Shapley 1953, the definition in DESIGN.md), derived by hand:
+/// v({A,B,C}) = 1, v({A,C}) = 1, v({C}) = 1, v({A,B}) = 0, unseen sets 0.
+/// phi(A) = 1/3 * (v(ABC) - v(BC)) = 1/3; phi(B) = 1/6 * (v(BC) - v(C)) = -1/6;
+/// phi(C) = 1/3 + 1/6 + 1/3 = 5/6 (they sum to v(ABC) = 1). Clamping B to 0
+/// and normalizing: A 2/7, B 0, C 5/7.
+#[test]
+fn data_driven_worked_example_through_replay_and_explain() {
+    let run = replay(&fixture("worked_example.ndjson"), "shapley,markov", &[]);
+    let rows = by_key(&run.rows);
+    let check = |model: &str, pos: u64, want: f64| {
+        let r = &rows[&("c1".to_string(), model.to_string(), pos)];
+        assert!(close(&r["credit"], want), "{model} {pos}: {} want {want}", r["credit"]);
+        assert!(r["model_version"].as_str().unwrap().starts_with(model));
+    };
+    check("markov", 1, 7.0 / 24.0);
+    check("markov", 2, 5.0 / 24.0);
+    check("markov", 3, 0.5);
+    check("shapley", 1, 2.0 / 7.0);
+    check("shapley", 2, 0.0);
+    check("shapley", 3, 5.0 / 7.0);
+    // One snapshot for the whole replay: every row of a model has the same version.
+    for model in ["shapley", "markov"] {
+        let versions: std::collections::HashSet<&str> =
+            run.rows.iter().filter(|r| r["model"] == model).map(|r| r["model_version"].as_str().unwrap()).collect();
+        assert_eq!(versions.len(), 1);
+    }
+
+    let o = Command::new(bin())
+        .args(["explain", "--json", "--conversion", "c1", "--input"])
+        .arg(fixture("worked_example.ndjson"))
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let v: Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["paths"], 5);
+    assert_eq!(v["conversions"], 3);
+    assert!(close(&v["markov_conversion_probability"], 0.6));
+    let re: HashMap<String, f64> = v["channels"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| (c["channel"].as_str().unwrap().to_string(), c["removal_effect"].as_f64().unwrap()))
+        .collect();
+    assert!((re["A"] - 7.0 / 12.0).abs() < 1e-9 && (re["B"] - 5.0 / 12.0).abs() < 1e-9 && (re["C"] - 1.0).abs() < 1e-9, "{re:?}");
+    let m = &v["conversion"]["markov"]["channels"];
+    assert!(close(&m[0]["conversion_probability_without"], 0.25));
+    assert!(close(&m[1]["conversion_probability_without"], 0.35));
+    let s = &v["conversion"]["shapley"]["channels"];
+    assert!(close(&s[0]["phi"], 1.0 / 3.0) && close(&s[1]["phi"], -1.0 / 6.0) && close(&s[2]["phi"], 5.0 / 6.0), "{s}");
+    let o = Command::new(bin()).args(["explain", "--conversion", "nope", "--input"]).arg(fixture("worked_example.ndjson")).output().unwrap();
+    assert!(!o.status.success());
+    assert!(String::from_utf8_lossy(&o.stderr).contains("\"nope\" was not found"));
 }
