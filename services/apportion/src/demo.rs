@@ -43,8 +43,8 @@ impl Rng {
     }
 }
 
-/// Generates the demo events as NDJSON lines.
-pub fn generate(users: u32, seed: u64) -> Vec<String> {
+/// Generates the demo events with their event times (ms).
+pub fn generate_timed(users: u32, seed: u64) -> Vec<(i64, String)> {
     let mut rng = Rng(seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1);
     let start: i64 = 1_772_323_200_000; // 2026-03-01T00:00:00Z
     let day = 86_400_000i64;
@@ -69,13 +69,13 @@ pub fn generate(users: u32, seed: u64) -> Vec<String> {
             let campaign = ch.2[rng.below(ch.2.len() as u64) as usize];
             let view = ch.0 == "display" || (ch.0 == "video" && rng.unit() < 0.7);
             n += 1;
-            lines.push(format!(
+            lines.push((t, format!(
                 r#"{{"type":"touch","event_id":"rt-{n}","user_id":"{user}","timestamp":"{}","channel":"{}","campaign":"{}","interaction":"{}"}}"#,
                 format_ms(t),
                 ch.0,
                 campaign,
                 if view { "view" } else { "click" }
-            ));
+            )));
             // Invented effects, for the demo only.
             lift += match ch.0 {
                 "email" => 0.10,
@@ -90,25 +90,101 @@ pub fn generate(users: u32, seed: u64) -> Vec<String> {
         if rng.unit() < (0.04 + lift).min(0.9) {
             n += 1;
             let value = 20.0 + (rng.unit() * 380.0 * 100.0).round() / 100.0;
-            lines.push(format!(
+            let at = t + (rng.unit() * day as f64) as i64;
+            lines.push((at, format!(
                 r#"{{"type":"conversion","event_id":"order-{n}","user_id":"{user}","timestamp":"{}","goal":"purchase","value":{value:.2},"currency":"EUR"}}"#,
-                format_ms(t + (rng.unit() * day as f64) as i64)
-            ));
+                format_ms(at)
+            )));
         }
     }
     lines
 }
 
-/// Writes the demo events to `dir/events.ndjson`.
-pub fn write_events(dir: &Path, users: u32, seed: u64) -> Result<PathBuf> {
+/// Writes the demo events to `dir/events.ndjson`, in event-time order (as
+/// a pipeline would deliver them), and returns them.
+pub fn write_events(dir: &Path, users: u32, seed: u64) -> Result<(PathBuf, Vec<String>)> {
     std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
     let path = dir.join("events.ndjson");
+    let mut events = generate_timed(users, seed);
+    events.sort_by_key(|(t, _)| *t);
+    let lines: Vec<String> = events.into_iter().map(|(_, l)| l).collect();
     let mut f = std::io::BufWriter::new(std::fs::File::create(&path)?);
-    for l in generate(users, seed) {
+    for l in &lines {
         writeln!(f, "{l}")?;
     }
     f.flush()?;
-    Ok(path)
+    Ok((path, lines))
+}
+
+/// What the in-process service run produced.
+pub struct ServeRun {
+    /// Credit rows.
+    pub rows: Vec<CreditRow>,
+    /// Closed paths.
+    pub paths: usize,
+    /// Distinct model snapshots of the data-driven models.
+    pub snapshots: usize,
+}
+
+/// Runs the events through the streaming service's pipeline in-process
+/// (embedded mode: file partition, rotating NDJSON output in `out_dir`),
+/// refitting the data-driven models as paths close, and drains it at the end.
+pub fn run_through_serve(
+    cfg: &crate::config::Config,
+    pseudo: apportion_engine::Pseudonymizer,
+    lines: &[String],
+    out_dir: &Path,
+) -> Result<ServeRun> {
+    use crate::serve::pipeline::{InMsg, PartId, Payload, Pipeline};
+    use apportion_sinks::{ndjson::NdjsonSink, OutputBatch, Sink};
+    let mut cfg = cfg.clone();
+    cfg.allowed_lateness = apportion_engine::Span(0);
+    cfg.refit_interval = apportion_engine::Span(0);
+    let store = apportion_store::Store::temporary()?;
+    let metrics = crate::metrics::Metrics::new(prometheus::Registry::new());
+    let mut pipeline = Pipeline::new(cfg, pseudo, store, metrics)?;
+    let id = PartId::new("file", 0);
+    pipeline.open_partition(&id, Payload::Event(crate::config::Format::Json))?;
+    for old in std::fs::read_dir(out_dir)? {
+        let p = old?.path();
+        let name = p.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+        if ["credit-", "paths-", "dead-letter-"].iter().any(|s| name.starts_with(s)) {
+            std::fs::remove_file(&p)?;
+        }
+    }
+    let mut sink = NdjsonSink::open(out_dir, 64 << 20)?;
+    let mut snapshots = std::collections::BTreeSet::new();
+    let mut paths = 0;
+    let now = std::time::Instant::now();
+    let mut offset = 0i64;
+    let mut write = |pipeline: &mut Pipeline, out: OutputBatch| -> Result<()> {
+        for r in out.credit.iter().filter_map(|r| r.model_version.clone()) {
+            snapshots.insert(r);
+        }
+        paths += out.paths.len();
+        sink.write(&out)?;
+        pipeline.commit()?;
+        pipeline.refit()?;
+        Ok(())
+    };
+    for chunk in lines.chunks(250) {
+        let msgs: Vec<InMsg> = chunk
+            .iter()
+            .map(|l| {
+                offset += 1;
+                InMsg { offset, payload: l.as_bytes().to_vec(), arrived: now }
+            })
+            .collect();
+        let mut out = OutputBatch::default();
+        pipeline.process(&id, &msgs, &mut out)?;
+        write(&mut pipeline, out)?;
+    }
+    let mut out = OutputBatch::default();
+    pipeline.drain(&mut out)?;
+    write(&mut pipeline, out)?;
+    sink.close()?;
+    let rows = apportion_sinks::ndjson::read_credit_rows(out_dir)?;
+    Ok(ServeRun { rows, paths, snapshots: snapshots.len() })
 }
 
 /// Totals per (channel, model) from credit rows.

@@ -34,7 +34,7 @@ mod wire;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use anyhow::{Context, Result};
+use anyhow::Result;
 use apportion_engine::{Pseudonymizer, Span};
 use clap::{Args, Parser, Subcommand};
 
@@ -271,28 +271,28 @@ fn run_demo(config: Option<&PathBuf>, a: DemoArgs) -> Result<()> {
     };
     cfg.validate()?;
     let pseudo = pseudonymizer(&cfg);
-    let events = demo::write_events(&a.out_dir, a.users, a.seed)?;
-    let credit = a.out_dir.join("credit.ndjson");
-    let paths = a.out_dir.join("paths.ndjson");
-    let io = replay::ReplayIo {
-        input: events.to_string_lossy().into_owned(),
-        output: credit.to_string_lossy().into_owned(),
-        paths: Some(paths.clone()),
-        rejected: None,
-        progress: false,
-    };
-    let s = replay::run(&io, &cfg, &pseudo)?;
-    let text = std::fs::read_to_string(&credit).context("reading the demo credit rows back")?;
-    let rows: Vec<apportion_engine::CreditRow> =
-        text.lines().map(serde_json::from_str).collect::<Result<_, _>>().context("parsing credit rows")?;
+    let (events, lines) = demo::write_events(&a.out_dir, a.users, a.seed)?;
+    let run = demo::run_through_serve(&cfg, pseudo, &lines, &a.out_dir)?;
+    let conversions: std::collections::BTreeSet<&str> = run.rows.iter().map(|r| r.conversion_id.as_str()).collect();
+    let unattributed = run.rows.iter().filter(|r| r.path_length == 0).map(|r| r.conversion_id.as_str()).collect::<std::collections::BTreeSet<_>>().len();
     println!(
         "Ridgeline Outfitters (an invented outdoor-gear shop): {} shoppers, {} events, {} orders ({} with no eligible touch)",
-        a.users, s.events, s.conversions, s.unattributed
+        a.users,
+        lines.len(),
+        conversions.len(),
+        unattributed
     );
-    print!("{}", demo::table(&rows, &cfg.models));
+    println!("Run through the streaming service's pipeline in-process (embedded mode, events in time order).");
+    print!("{}", demo::table(&run.rows, &cfg.models));
+    if run.snapshots > 0 {
+        println!(
+            "\nshapley and markov were refitted after every batch as paths closed ({} snapshots, named in model_version);\n`apportion replay` instead fits once on all paths first.",
+            run.snapshots
+        );
+    }
     println!("\nevents:      {}", events.display());
-    println!("credit rows: {} ({} rows)", credit.display(), s.rows);
-    println!("paths:       {} ({} closed paths)", paths.display(), s.paths);
+    println!("credit rows: {}/credit-*.ndjson ({} rows)", a.out_dir.display(), run.rows.len());
+    println!("paths:       {}/paths-*.ndjson ({} closed paths)", a.out_dir.display(), run.paths);
     println!("\nCredit is correlational: it is not proof that a channel caused a sale.");
     Ok(())
 }

@@ -17,8 +17,6 @@ use apportion_engine::RejectReason;
 pub const EVENT_TYPES: [&str; 4] = ["touch", "conversion", "erase", "unknown"];
 /// Event outcomes used as label values.
 pub const OUTCOMES: [&str; 5] = ["accepted", "rejected", "duplicate", "late_dropped", "late_applied"];
-/// Sink names used as label values.
-pub const SINKS: [&str; 4] = ["kafka", "file", "postgres", "parquet"];
 
 /// The service's metrics.
 #[derive(Clone)]

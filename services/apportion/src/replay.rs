@@ -9,9 +9,9 @@
 //! credit with that one snapshot (DESIGN.md, "Fitting").
 
 use std::fs::File;
-use std::io::{BufRead, BufReader, BufWriter, IsTerminal, Read, Write};
+use std::io::{BufRead, BufReader, IsTerminal, Read, Write};
 use std::os::unix::fs::FileExt;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::time::Instant;
 
 use anyhow::{Context, Result};
@@ -317,10 +317,3 @@ impl Progress {
     }
 }
 
-/// Path of a file argument, or None for `-`.
-pub fn file_arg(s: &str) -> Option<&Path> {
-    (s != "-").then(|| Path::new(s))
-}
-
-#[allow(dead_code)]
-fn _assert_writer(_: &mut BufWriter<File>) {}

@@ -276,3 +276,36 @@ fn data_driven_worked_example_through_replay_and_explain() {
     assert!(!o.status.success());
     assert!(String::from_utf8_lossy(&o.stderr).contains("\"nope\" was not found"));
 }
+
+/// The demo runs the events through the streaming pipeline in-process; for
+/// the rule models its rows must equal replay's on the same events.
+#[test]
+fn demo_through_serve_pipeline_equals_replay_for_rule_models() {
+    let dir = tempfile::tempdir().unwrap();
+    let o = Command::new(bin())
+        .args(["demo", "--users", "400", "--seed", "3", "--out-dir"])
+        .arg(dir.path())
+        .env_remove("APPORTION_PSEUDONYM_KEY")
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(text.contains("Ridgeline Outfitters") && text.contains("markov"), "{text}");
+    let mut demo_rows: Vec<Value> = Vec::new();
+    for e in std::fs::read_dir(dir.path()).unwrap() {
+        let p = e.unwrap().path();
+        if p.file_name().unwrap().to_string_lossy().starts_with("credit-") {
+            demo_rows.extend(read_ndjson(&p));
+        }
+    }
+    let rule = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped"];
+    let demo_rule: Vec<Value> = demo_rows.into_iter().filter(|r| rule.contains(&r["model"].as_str().unwrap())).collect();
+    let run = replay(&dir.path().join("events.ndjson"), &rule.join(","), &[]);
+    let canon = |v: &[Value]| {
+        let mut s: Vec<String> = v.iter().map(|r| r.to_string()).collect();
+        s.sort();
+        s
+    };
+    assert!(!run.rows.is_empty());
+    assert_eq!(canon(&demo_rule), canon(&run.rows));
+}

@@ -17,7 +17,7 @@ use apportion_engine::event::parse_event_limited;
 use apportion_engine::replay::{effect_rows, event_id_digest};
 use apportion_engine::time_fmt::format_ms;
 use apportion_engine::{
-    Effect, Event, EventKind, JourneyStore, KeyedEvent, Model, Outcome, Processor, Pseudonymizer, RejectReason,
+    Effect, Event, EventKind, KeyedEvent, Model, Outcome, Processor, Pseudonymizer, RejectReason,
     Rejection, UserKey,
 };
 use apportion_sinks::{DeadLetter, OutputBatch};
@@ -143,11 +143,6 @@ impl Pipeline {
     /// Current models (for the model endpoint).
     pub fn models(&self) -> &[Box<dyn Model>] {
         &self.models
-    }
-
-    /// Partitions currently open.
-    pub fn partitions(&self) -> Vec<PartId> {
-        self.parts.keys().cloned().collect()
     }
 
     /// Opens a partition's state (on assignment); returns its committed offset.
@@ -482,16 +477,18 @@ impl Pipeline {
         Ok(())
     }
 
-    /// Open journeys of a partition (tests and admin).
-    pub fn open_journeys(&self) -> u64 {
-        self.parts.values().map(|p| p.store.open_journeys()).sum()
-    }
-
-    /// Number of keys due at the partition's watermark (diagnostics).
-    pub fn due_now(&mut self, id: &PartId) -> Result<usize> {
-        let Some(p) = self.parts.get_mut(id) else { return Ok(0) };
-        let wm = p.watermark;
-        Ok(p.store.due(wm)?.len())
+    /// End of a finite input (the demo): moves every partition's watermark
+    /// to the end of time, which credits every pending conversion and closes
+    /// every open journey, as replay does at the end of its input.
+    pub fn drain(&mut self, out: &mut OutputBatch) -> Result<()> {
+        let ids: Vec<PartId> = self.parts.keys().cloned().collect();
+        for id in ids {
+            let part = self.parts.get_mut(&id).expect("listed");
+            part.watermark = i64::MAX;
+            let effects = self.processor.advance(&mut part.store, i64::MAX)?;
+            self.emit(&id, effects, out);
+        }
+        Ok(())
     }
 }
 
