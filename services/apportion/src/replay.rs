@@ -8,6 +8,7 @@
 //! events are applied twice: first to fit on every closed path, then to
 //! credit with that one snapshot (DESIGN.md, "Fitting").
 
+use std::collections::HashSet;
 use std::fs::File;
 use std::io::{BufRead, BufReader, IsTerminal, Read, Write};
 use std::os::unix::fs::FileExt;
@@ -18,7 +19,7 @@ use anyhow::{Context, Result};
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::event::parse_event_limited;
 use apportion_engine::processor::KeyedEvent;
-use apportion_engine::replay::{effect_rows, Pushed, Replayer};
+use apportion_engine::replay::{event_id_digest, effect_rows, Pushed, Replayer};
 use apportion_engine::{EventKind, Model, Outcome, Pseudonymizer};
 use apportion_store::Store;
 
@@ -138,6 +139,7 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
     let mut offset = 0u64;
     let mut line = 0u64;
     let mut progress = Progress::new(io.progress, "reading", total);
+    let mut seen: HashSet<u128> = HashSet::new();
     loop {
         buf.clear();
         let n = reader.read_until(b'\n', &mut buf).context("reading input")?;
@@ -160,7 +162,15 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
         }
         summary.lines += 1;
         match parse_event_limited(body, cfg.max_event_bytes) {
-            Ok(ev) => recs.push(Rec { ts: ev.timestamp_ms, line, offset: start, len: body.len() as u32 }),
+            Ok(ev) => {
+                // Duplicates: the first occurrence in input order wins, as
+                // the first arrival does in the streaming service.
+                if ev.kind != EventKind::Erase && !seen.insert(event_id_digest(&ev.event_id)) {
+                    summary.duplicates += 1;
+                } else {
+                    recs.push(Rec { ts: ev.timestamp_ms, line, offset: start, len: body.len() as u32 });
+                }
+            }
             Err(r) => {
                 summary.rejected += 1;
                 rejected.write(line, &r)?;
@@ -169,6 +179,7 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
         progress.tick(offset);
     }
     progress.done();
+    drop(seen);
     recs.sort_by_key(|r| (r.ts, r.line));
     Ok(Indexed { file, recs, _spool: spool })
 }
@@ -195,8 +206,8 @@ pub(crate) fn apply_all(
             .map_err(|e| anyhow::anyhow!("input line {} changed while replaying: {e}", rec.line))?;
         let key = pseudo.key_for(&ev.user_id);
         ev.user_id.clear();
-        let id = if ev.kind == EventKind::Erase { String::new() } else { ev.event_id.clone() };
-        match replayer.push(KeyedEvent::from_event(ev, key, rec.line), &id)? {
+        // Duplicates were dropped while indexing: no second id set here.
+        match replayer.push(KeyedEvent::from_event(ev, key, rec.line), "")? {
             Pushed::Duplicate => dups += 1,
             Pushed::Applied(effects) => {
                 events += 1;
@@ -282,7 +293,7 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
         p.commit()?;
     }
     summary.events = events;
-    summary.duplicates = dups;
+    summary.duplicates += dups;
     summary.seconds = started.elapsed().as_secs_f64();
     Ok(summary)
 }

@@ -309,3 +309,25 @@ fn demo_through_serve_pipeline_equals_replay_for_rule_models() {
     assert!(!run.rows.is_empty());
     assert_eq!(canon(&demo_rule), canon(&run.rows));
 }
+
+/// Duplicate event ids: the first occurrence in input order wins (as the
+/// first arrival does in the streaming service), even when a later copy
+/// carries an earlier timestamp (contract: duplicates are dropped).
+#[test]
+fn first_occurrence_of_a_duplicate_wins() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("dups.ndjson");
+    std::fs::write(
+        &input,
+        concat!(
+            r#"{"type":"touch","event_id":"t1","user_id":"u","timestamp":"2026-04-02T00:00:00Z","channel":"email"}"#, "\n",
+            r#"{"type":"touch","event_id":"t1","user_id":"u","timestamp":"2026-04-01T00:00:00Z","channel":"social"}"#, "\n",
+            r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":"2026-04-03T00:00:00Z"}"#, "\n",
+        ),
+    )
+    .unwrap();
+    let run = replay(&input, "linear", &[]);
+    assert_eq!(run.rows.len(), 1);
+    assert_eq!(run.rows[0]["channel"], "email");
+    assert!(run.stderr.contains("1 duplicates"), "{}", run.stderr);
+}
