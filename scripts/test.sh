@@ -38,7 +38,7 @@ if [[ -z "${SKIP_SERVERS:-}" ]]; then
 fi
 
 echo "== cargo test"
-cargo test --workspace --release 2>&1
+cargo test --workspace --release --no-fail-fast 2>&1
 
 if [[ -z "${SKIP_SERVERS:-}" ]]; then
   echo "== deploy checks"
