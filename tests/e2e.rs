@@ -1,7 +1,9 @@
 //! End-to-end tests: the `apportion` binary against a real Apache Kafka
-//! broker (deploy/dev/kafka.sh), the embedded HTTP mode, and the metrics
+//! broker (deploy/dev/kafka.sh), a real PostgreSQL (deploy/dev/postgres.sh),
+//! the embedded HTTP mode, and the metrics
 //! exposition checked by Prometheus' own promtool. All compile as one binary.
 
 mod embedded;
 mod kafka_stream;
 mod metrics_lint;
+mod warehouse;

@@ -50,6 +50,10 @@ fn promtool_accepts_the_exposition() {
     assert!(o.status.success() && report.trim().is_empty(), "promtool check metrics: {report}");
     let (_, models) = s.get("/v1/models").unwrap();
     let v: serde_json::Value = serde_json::from_str(&models).unwrap();
-    assert!(v["models"].as_array().unwrap().iter().any(|m| m["model"] == "markov"), "{models}");
+    let markov = v["models"].as_array().unwrap().iter().find(|m| m["model"] == "markov").expect("markov listed").clone();
+    // The fitted weights: one converting path email -> removal effect 1.
+    assert_eq!(markov["removal_effects"][0]["channel"], "email", "{models}");
+    assert_eq!(markov["removal_effects"][0]["removal_effect"], 1.0, "{models}");
+    assert!(markov["model_version"].as_str().unwrap().starts_with("markov-o1-"));
     assert_eq!(s.signal("TERM").code(), Some(0));
 }

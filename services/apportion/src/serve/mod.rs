@@ -58,7 +58,24 @@ pub struct Shared {
 
 /// Writes `out` to every sink, retrying each with exponential backoff until
 /// it succeeds, a permanent error occurs, or shutdown is requested.
-pub fn write_sinks(sinks: &mut [Box<dyn Sink>], out: &OutputBatch, stop: &AtomicBool, metrics: &Metrics) -> Result<()> {
+///
+/// Sinks are written in order (the primary output first); a sink that fails
+/// is retried before the next one is tried, so a paused sink holds the
+/// batch and nothing commits. On shutdown during the retries the batch is
+/// given up uncommitted: sinks written before may hold its rows already,
+/// and its re-delivery writes them again (at least once; rows carry
+/// deterministic ids). The backoff sleep wakes up for shutdown at once; a
+/// `write()` in progress (e.g. the PostgreSQL sink's own retries) is not
+/// interrupted.
+pub fn write_sinks(
+    sinks: &mut [Box<dyn Sink>],
+    out: &OutputBatch,
+    stop: &AtomicBool,
+    metrics: &Metrics,
+    shared: &Mutex<Shared>,
+) -> Result<()> {
+    const MAX_BACKOFF: Duration = Duration::from_secs(30);
+    const SLICE: Duration = Duration::from_millis(50);
     for sink in sinks.iter_mut() {
         let mut backoff = Duration::from_millis(100);
         loop {
@@ -67,7 +84,9 @@ pub fn write_sinks(sinks: &mut [Box<dyn Sink>], out: &OutputBatch, stop: &Atomic
                     let name = sink.name();
                     metrics.sink_rows.with_label_values(&[name, "credit"]).inc_by(out.credit.len() as u64);
                     metrics.sink_rows.with_label_values(&[name, "path"]).inc_by(out.paths.len() as u64);
-                    metrics.sink_rows.with_label_values(&[name, "dead_letter"]).inc_by(out.dead_letters.len() as u64);
+                    if keeps_dead_letters(name) {
+                        metrics.sink_rows.with_label_values(&[name, "dead_letter"]).inc_by(out.dead_letters.len() as u64);
+                    }
                     break;
                 }
                 Err(e) => {
@@ -75,18 +94,35 @@ pub fn write_sinks(sinks: &mut [Box<dyn Sink>], out: &OutputBatch, stop: &Atomic
                     if !e.retryable {
                         bail!("{e}");
                     }
+                    let shutdown = || bail!("shutdown while retrying: {e}; the batch was not committed and will be re-delivered on restart (HTTP clients got no 202 and must resend)");
                     if stop.load(Ordering::SeqCst) {
-                        bail!("shutdown while retrying: {e}; the batch will be re-delivered on restart");
+                        return shutdown();
                     }
-                    tracing::warn!(error = %e, retry_in_ms = backoff.as_millis() as u64, "sink write failed; retrying the same batch");
+                    tracing::warn!(sink = sink.name(), error = %e, retry_in_ms = backoff.as_millis() as u64, "sink write failed; retrying the same batch");
                     metrics.sink_retries.with_label_values(&[sink.name()]).inc();
-                    std::thread::sleep(backoff);
-                    backoff = (backoff * 2).min(Duration::from_secs(30));
+                    // Not ready while a sink holds the batch (backpressure).
+                    metrics.ready.set(0);
+                    shared.lock().expect("shared state").ready = false;
+                    let until = Instant::now() + backoff;
+                    while Instant::now() < until {
+                        if stop.load(Ordering::SeqCst) {
+                            return shutdown();
+                        }
+                        std::thread::sleep(SLICE.min(until.saturating_duration_since(Instant::now())));
+                    }
+                    backoff = (backoff * 2).min(MAX_BACKOFF);
                 }
             }
         }
     }
     Ok(())
+}
+
+/// Whether a sink stores dead letters (the Parquet and PostgreSQL sinks do
+/// not), so that `apportion_sink_rows_total{kind="dead_letter"}` counts only
+/// rows a sink kept.
+fn keeps_dead_letters(sink: &str) -> bool {
+    !matches!(sink, "postgres" | "parquet")
 }
 
 /// The processing loop. Returns when `stop` is set (after finishing the
@@ -115,7 +151,7 @@ pub fn run_loop(
             }
             pipeline.tick(Instant::now(), &mut out)?;
             if had_input || !out.is_empty() {
-                if let Err(e) = write_sinks(&mut sinks, &out, &stop, &metrics) {
+                if let Err(e) = write_sinks(&mut sinks, &out, &stop, &metrics, &shared) {
                     // Nothing of this batch is committed: it is re-delivered.
                     pipeline.rollback()?;
                     return Err(e);
@@ -161,12 +197,7 @@ pub fn run_loop(
 }
 
 fn publish_models(pipeline: &Pipeline, shared: &Arc<Mutex<Shared>>) {
-    let models: Vec<serde_json::Value> = pipeline
-        .models()
-        .iter()
-        .map(|m| serde_json::json!({ "model": m.name(), "model_version": m.version() }))
-        .collect();
-    shared.lock().expect("shared state").models = serde_json::json!({ "models": models });
+    shared.lock().expect("shared state").models = pipeline.models_json();
 }
 
 fn update_disk(pipeline: &Pipeline, metrics: &Metrics) {

@@ -105,6 +105,7 @@ pub struct Pipeline {
     last_fit: Instant,
     arrivals: HashMap<String, Instant>,
     metrics: Metrics,
+    models_json: serde_json::Value,
 }
 
 const META_CLOCK: &str = "clock";
@@ -130,6 +131,7 @@ impl Pipeline {
             last_fit: Instant::now(),
             arrivals: HashMap::new(),
             metrics,
+            models_json: serde_json::Value::Null,
         };
         p.refit()?;
         Ok(p)
@@ -140,9 +142,17 @@ impl Pipeline {
         &self.cfg
     }
 
-    /// Current models (for the model endpoint).
+    /// Current models.
     pub fn models(&self) -> &[Box<dyn Model>] {
         &self.models
+    }
+
+    /// The current snapshot as JSON for the read-only model endpoint: every
+    /// model's name and version, and for the data-driven ones the fitted
+    /// weights (Shapley value per channel in the game over all channels,
+    /// Markov conversion probability and removal effect per channel).
+    pub fn models_json(&self) -> serde_json::Value {
+        self.models_json.clone()
     }
 
     /// Opens a partition's state (on assignment); returns its committed offset.
@@ -422,6 +432,7 @@ impl Pipeline {
     pub fn refit(&mut self) -> Result<()> {
         self.last_fit = Instant::now();
         if !self.data_driven {
+            self.models_json = self.weights_json(&PathStats::new(self.cfg.markov_order));
             return Ok(());
         }
         let started = Instant::now();
@@ -432,6 +443,7 @@ impl Pipeline {
         match build_models(&self.cfg, Some(&all)) {
             Ok(m) => {
                 self.models = m;
+                self.models_json = self.weights_json(&all);
                 let secs = started.elapsed().as_secs_f64();
                 let now = now_ms() as f64 / 1000.0;
                 for name in ["shapley", "markov"] {
@@ -452,6 +464,36 @@ impl Pipeline {
             }
         }
         Ok(())
+    }
+
+    fn weights_json(&self, stats: &PathStats) -> serde_json::Value {
+        use apportion_engine::datadriven::{MarkovModel, ShapleyModel};
+        let models: Vec<serde_json::Value> = self
+            .models
+            .iter()
+            .map(|m| {
+                let mut v = serde_json::json!({ "model": m.name(), "model_version": m.version() });
+                match m.name() {
+                    "shapley" => {
+                        let g = ShapleyModel::fit(stats).global_values(crate::explain::GLOBAL_SEED);
+                        v["channels"] = serde_json::to_value(&g.channels).unwrap_or_default();
+                        v["method"] = serde_json::to_value(g.method).unwrap_or_default();
+                    }
+                    "markov" => {
+                        let mk = MarkovModel::fit(stats);
+                        v["conversion_probability"] = serde_json::json!(mk.conversion_probability());
+                        v["removal_effects"] = mk
+                            .removal_effects()
+                            .into_iter()
+                            .map(|(c, r)| serde_json::json!({ "channel": c, "removal_effect": r }))
+                            .collect();
+                    }
+                    _ => {}
+                }
+                v
+            })
+            .collect();
+        serde_json::json!({ "paths": stats.paths(), "conversions": stats.conversions(), "models": models })
     }
 
     /// Updates store gauges.
