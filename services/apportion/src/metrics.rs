@@ -99,7 +99,7 @@ impl Metrics {
                 "apportion_processing_latency_seconds",
                 "Time from the arrival of a conversion event to its credit rows being produced.",
             )
-            .buckets(vec![0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0]),
+            .buckets(vec![0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 120.0, 300.0]),
         )
         .expect("valid metric");
         r.register(Box::new(latency.clone())).expect("registered once");
@@ -224,6 +224,20 @@ mod tests {
         }
         for d in &documented {
             assert!(exposed.contains(d), "{d} is in docs/telemetry.md but not exposed");
+        }
+        // Histogram buckets as written in the spec.
+        for (name, line) in [
+            ("apportion_processing_latency_seconds", spec.lines().skip_while(|l| !l.contains("### `apportion_processing_latency_seconds`")).find(|l| l.starts_with("- buckets:"))),
+            ("apportion_batch_duration_seconds", spec.lines().skip_while(|l| !l.contains("### `apportion_batch_duration_seconds`")).find(|l| l.starts_with("- buckets:"))),
+        ] {
+            let line = line.unwrap_or_else(|| panic!("no buckets line for {name} in the spec"));
+            let want: Vec<String> = line.trim_start_matches("- buckets:").split(',').map(|b| b.trim().to_string()).collect();
+            let got: Vec<String> = text
+                .lines()
+                .filter(|l| l.starts_with(&format!("{name}_bucket{{le=")) && !l.contains("+Inf"))
+                .map(|l| l.split('"').nth(1).unwrap().to_string())
+                .collect();
+            assert_eq!(got, want, "{name} buckets differ from docs/telemetry.md");
         }
     }
 }
