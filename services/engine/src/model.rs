@@ -162,11 +162,6 @@ pub fn split_by_channel(path: &[Touch], share: impl Fn(&str) -> f64) -> Vec<f64>
 
 /// Distinct channels of a path in order of first appearance.
 pub fn distinct_channels(path: &[Touch]) -> Vec<&str> {
-    let mut seen: Vec<&str> = Vec::new();
-    for t in path {
-        if !seen.contains(&t.channel.as_str()) {
-            seen.push(&t.channel);
-        }
-    }
-    seen
+    let mut set = std::collections::HashSet::with_capacity(path.len());
+    path.iter().map(|t| t.channel.as_str()).filter(|c| set.insert(*c)).collect()
 }
