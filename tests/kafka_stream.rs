@@ -272,3 +272,50 @@ fn idle_partition_still_expires_journeys() {
     assert!(metrics.contains("apportion_journeys_closed_total{reason=\"expired\"} 2"), "{metrics}");
     assert_eq!(s.signal("TERM").code(), Some(0));
 }
+
+/// Topics in the protobuf encoding (proto/apportion/v1): the same events
+/// give the same credit as JSON replay.
+#[test]
+fn protobuf_topics_give_the_same_credit() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("pb");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 2, &[]);
+    let mut events = scenario(150, 41, START);
+    events.sort_by_key(|e| e.ts);
+    let file = write_events(dir.path(), &events);
+    let want = replay(&file, &["--models", "last_touch,first_touch,linear,time_decay,u_shaped"]);
+    let mut msgs: Vec<_> = events
+        .iter()
+        .map(|e| (Some(e.user.clone()), apportion_wire::encode_event_protobuf(&e.line).unwrap(), None))
+        .collect();
+    msgs.push((None, b"\xff\xff not protobuf".to_vec(), Some(0)));
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, true, "");
+    let text = std::fs::read_to_string(&cfg).unwrap().replace(
+        "input_keyed_by_user = true",
+        "input_keyed_by_user = true\ninput_format = \"protobuf\"\noutput_format = \"protobuf\"",
+    );
+    std::fs::write(&cfg, text).unwrap();
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let decode = |b: &[u8]| serde_json::to_value(apportion_wire::decode_credit_protobuf(b).expect("protobuf credit row")).unwrap();
+    let got = consume_until_with(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), decode, |rows| rows.len() >= want.len());
+    let (g, w) = (canonical(&got), canonical(&want));
+    let only_got: Vec<&String> = g.iter().filter(|r| !w.contains(r)).take(2).collect();
+    let only_want: Vec<&String> = w.iter().filter(|r| !g.contains(r)).take(2).collect();
+    assert!(only_got.is_empty() && only_want.is_empty() && g.len() == w.len(), "only in stream: {only_got:?}\nonly in replay: {only_want:?}");
+    let dead = consume_until_with(
+        &brokers,
+        &format!("{prefix}-dead"),
+        Duration::from_secs(30),
+        |b| serde_json::to_value(apportion_wire::decode_dead_letter_protobuf(b).expect("protobuf dead letter")).unwrap(),
+        |r| !r.is_empty(),
+    );
+    assert_eq!(dead.len(), 1);
+    // Undecodable bytes: rejected with a contract reason, not a crash.
+    let reason = dead[0]["reason"].as_str().unwrap();
+    assert!(["invalid_json", "missing_type"].contains(&reason), "{reason}");
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}

@@ -138,7 +138,18 @@ pub fn produce(brokers: &str, topic: &str, msgs: &[(Option<String>, Vec<u8>, Opt
 
 /// Reads every message of `topic` from the beginning until `done` says so
 /// or `timeout` passes. Returns the JSON payloads.
-pub fn consume_until(brokers: &str, topic: &str, timeout: Duration, mut done: impl FnMut(&[Value]) -> bool) -> Vec<Value> {
+pub fn consume_until(brokers: &str, topic: &str, timeout: Duration, done: impl FnMut(&[Value]) -> bool) -> Vec<Value> {
+    consume_until_with(brokers, topic, timeout, |b| serde_json::from_slice(b).expect("JSON message"), done)
+}
+
+/// Like [`consume_until`], with a payload decoder.
+pub fn consume_until_with(
+    brokers: &str,
+    topic: &str,
+    timeout: Duration,
+    decode: impl Fn(&[u8]) -> Value,
+    mut done: impl FnMut(&[Value]) -> bool,
+) -> Vec<Value> {
     let c: BaseConsumer = ClientConfig::new()
         .set("bootstrap.servers", brokers)
         .set("group.id", unique("reader"))
@@ -167,7 +178,7 @@ pub fn consume_until(brokers: &str, topic: &str, timeout: Duration, mut done: im
     let mut out = Vec::new();
     while start.elapsed() < timeout {
         match c.poll(Duration::from_millis(200)) {
-            Some(Ok(m)) => out.push(serde_json::from_slice(m.payload().unwrap_or_default()).expect("JSON message")),
+            Some(Ok(m)) => out.push(decode(m.payload().unwrap_or_default())),
             Some(Err(e)) => eprintln!("consumer error: {e}"),
             None => {
                 if done(&out) {
