@@ -216,8 +216,8 @@ pub(crate) fn apply_all(
                 }
             }
         }
-        if i % 50_000 == 49_999 {
-            replayer.store_mut().commit(false)?;
+        if i % 10_000 == 9_999 {
+            replayer.store_mut().spill_if_over_budget()?;
         }
         progress.tick(i as u64 + 1);
     }

@@ -260,6 +260,18 @@ impl PartitionStore {
         Ok(())
     }
 
+    /// Writes the cached changes to sled only when the cache has grown past
+    /// its byte budget (then evicts). For `replay`, which needs no
+    /// durability between events: journeys stay in memory while they fit,
+    /// and the store bounds memory when they do not.
+    pub fn spill_if_over_budget(&mut self) -> Result<bool, StoreError> {
+        if self.bytes > self.budget {
+            self.commit(false)?;
+            return Ok(true);
+        }
+        Ok(false)
+    }
+
     /// Drops uncommitted changes (after a failed batch).
     pub fn rollback(&mut self) {
         self.cache.clear();
@@ -339,14 +351,16 @@ impl JourneyStore for PartitionStore {
     }
 
     fn keys(&mut self) -> Result<Vec<UserKey>, StoreError> {
-        self.commit(false)?;
-        let mut out = Vec::new();
+        // Persisted keys plus cached ones; a key whose cached state is
+        // "removed" may still be listed and loads as None.
+        let mut out: std::collections::BTreeSet<UserKey> =
+            self.cache.iter().filter(|(_, c)| c.journey.is_some()).map(|(k, _)| *k).collect();
         for item in self.tree.scan_prefix([J]) {
             let (k, _) = item?;
             if let Ok(a) = k[1..].try_into() {
-                out.push(UserKey(a));
+                out.insert(UserKey(a));
             }
         }
-        Ok(out)
+        Ok(out.into_iter().collect())
     }
 }
