@@ -189,9 +189,19 @@ impl PartitionStore {
     /// Writes every change since the last commit in one atomic batch. With
     /// `durable`, also waits until sled has it on disk.
     pub fn commit(&mut self, durable: bool) -> Result<(), StoreError> {
+        self.commit_inner(durable, usize::MAX)
+    }
+
+    fn commit_inner(&mut self, durable: bool, chunk: usize) -> Result<(), StoreError> {
         let mut batch = sled::Batch::default();
+        let mut in_batch = 0usize;
         let mut delta: i64 = 0;
         for (key, c) in self.cache.iter_mut().filter(|(_, c)| c.dirty) {
+            if in_batch >= chunk {
+                self.tree.apply_batch(std::mem::take(&mut batch))?;
+                in_batch = 0;
+            }
+            in_batch += 1;
             if let Some(w) = c.persisted_wake {
                 batch.remove(wkey(w, key));
             }
@@ -266,7 +276,9 @@ impl PartitionStore {
     /// and the store bounds memory when they do not.
     pub fn spill_if_over_budget(&mut self) -> Result<bool, StoreError> {
         if self.bytes > self.budget {
-            self.commit(false)?;
+            // No durability needed here: smaller sled batches keep sled's
+            // own memory small.
+            self.commit_inner(false, 10_000)?;
             return Ok(true);
         }
         Ok(false)
