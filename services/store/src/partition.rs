@@ -15,14 +15,30 @@ const F: u8 = b'f';
 const O: u8 = b'o';
 const M: u8 = b'm';
 
+/// One cached user: the encoded journey record (the same bytes sled holds,
+/// so memory is counted exactly and spilling needs no re-encoding).
 #[derive(Debug, Clone)]
 struct Cached {
-    journey: Option<Journey>,
+    /// Encoded journey (version, wake, body); `None`: no open journey.
+    record: Option<Box<[u8]>>,
     wake: Option<i64>,
     persisted_wake: Option<i64>,
     persisted_exists: bool,
     dirty: bool,
-    bytes: usize,
+    /// Access clock value of the last load or save (least recently used
+    /// entries are evicted first).
+    last_used: u64,
+}
+
+/// Bytes of one cache entry besides its record: the map slot (key and
+/// [`Cached`]), the hash table's control byte and spare capacity, the
+/// allocator's header of the record, and the wake index entry.
+const ENTRY_OVERHEAD: usize = 256;
+
+impl Cached {
+    fn bytes(&self) -> usize {
+        ENTRY_OVERHEAD + self.record.as_ref().map_or(0, |r| r.len())
+    }
 }
 
 /// The state of one input partition. Implements the engine's
@@ -30,6 +46,13 @@ struct Cached {
 /// since the last commit (plus the offsets and metadata staged with
 /// [`PartitionStore::stage_offset`] / [`PartitionStore::stage_meta`]) in one
 /// atomic sled batch.
+///
+/// Memory: cached journeys are kept encoded and counted against the byte
+/// budget; above it, the least recently used entries are evicted (after
+/// [`PartitionStore::commit`], or written to sled first by
+/// [`PartitionStore::spill_if_over_budget`]) until a quarter of the budget
+/// is free again. sled's own memory grows with the number of records it
+/// holds, so only the overflow goes there.
 pub struct PartitionStore {
     tree: sled::Tree,
     db: sled::Db,
@@ -40,7 +63,11 @@ pub struct PartitionStore {
     bytes: usize,
     budget: usize,
     scanned_upto: i64,
+    /// Journeys persisted in sled (committed state).
     open_journeys: u64,
+    clock: u64,
+    evictions: u64,
+    spilled: u64,
 }
 
 fn jkey(k: &UserKey) -> Vec<u8> {
@@ -58,16 +85,6 @@ fn wkey(wake: i64, k: &UserKey) -> Vec<u8> {
     v
 }
 
-fn journey_bytes(j: &Journey) -> usize {
-    let t: usize = j
-        .touches
-        .iter()
-        .map(|t| 96 + t.event_id.len() + t.channel.len() + t.campaign.as_ref().map_or(0, |c| c.len()))
-        .sum();
-    let c: usize = j.pending.iter().map(|c| 112 + c.event_id.len() + c.goal.len()).sum();
-    160 + t + c
-}
-
 impl PartitionStore {
     pub(crate) fn new(tree: sled::Tree, db: sled::Db, budget: usize) -> Result<Self, StoreError> {
         let open_journeys = tree.scan_prefix([J]).count() as u64;
@@ -82,6 +99,9 @@ impl PartitionStore {
             budget,
             scanned_upto: i64::MIN,
             open_journeys,
+            clock: 0,
+            evictions: 0,
+            spilled: 0,
         })
     }
 
@@ -89,7 +109,7 @@ impl PartitionStore {
     pub fn open_journeys(&self) -> u64 {
         let mut n = self.open_journeys as i64;
         for c in self.cache.values().filter(|c| c.dirty) {
-            match (c.persisted_exists, c.journey.is_some()) {
+            match (c.persisted_exists, c.record.is_some()) {
                 (false, true) => n += 1,
                 (true, false) => n -= 1,
                 _ => {}
@@ -98,29 +118,39 @@ impl PartitionStore {
         n.max(0) as u64
     }
 
-    /// Bytes held by cached journeys (approximate).
+    /// Bytes held by cached journeys (records plus a fixed per-entry overhead).
     pub fn cached_bytes(&self) -> usize {
         self.bytes
     }
 
+    /// Cache entries evicted so far, and how many of them had to be written
+    /// to sled first because they held uncommitted changes.
+    pub fn eviction_counts(&self) -> (u64, u64) {
+        (self.evictions, self.spilled)
+    }
+
     fn entry(&mut self, key: &UserKey) -> Result<&mut Cached, StoreError> {
+        self.clock += 1;
+        let clock = self.clock;
         if !self.cache.contains_key(key) {
-            let (journey, wake) = match self.tree.get(jkey(key))? {
+            // Nothing persisted yet: no need to ask sled (the common case
+            // of a replay whose journeys fit in memory).
+            let stored = if self.open_journeys == 0 { None } else { self.tree.get(jkey(key))? };
+            let (record, wake) = match stored {
                 Some(v) => {
-                    let s = decode_journey(&v)?;
-                    (Some(s.journey), s.wake)
+                    let wake = decode_journey(&v)?.wake;
+                    (Some(v.to_vec().into_boxed_slice()), wake)
                 }
                 None => (None, None),
             };
-            let bytes = journey.as_ref().map_or(64, journey_bytes);
-            self.bytes += bytes;
-            let exists = journey.is_some();
-            self.cache.insert(
-                *key,
-                Cached { journey, wake, persisted_wake: wake, persisted_exists: exists, dirty: false, bytes },
-            );
+            let exists = record.is_some();
+            let c = Cached { record, wake, persisted_wake: wake, persisted_exists: exists, dirty: false, last_used: clock };
+            self.bytes += c.bytes();
+            self.cache.insert(*key, c);
         }
-        Ok(self.cache.get_mut(key).expect("just inserted"))
+        let c = self.cache.get_mut(key).expect("just inserted");
+        c.last_used = clock;
+        Ok(c)
     }
 
     /// Returns true if `digest` (of an event id) was not seen before, and
@@ -186,42 +216,60 @@ impl PartitionStore {
         Ok(self.tree.get(k)?.map(|v| v.to_vec()))
     }
 
+    /// Adds the writes that persist `key`'s cached state to `batch`, and
+    /// marks the entry clean. Returns the change in persisted journeys.
+    fn persist_into(&mut self, key: &UserKey, batch: &mut sled::Batch) -> i64 {
+        let Some(c) = self.cache.get_mut(key) else { return 0 };
+        if !c.dirty {
+            return 0;
+        }
+        let mut delta = 0;
+        if let Some(w) = c.persisted_wake {
+            batch.remove(wkey(w, key));
+        }
+        match &c.record {
+            Some(r) => {
+                batch.insert(jkey(key), &r[..]);
+                if let Some(w) = c.wake {
+                    batch.insert(wkey(w, key), &[][..]);
+                    // A wake the index scan has already passed must be seen
+                    // again by the next `due`.
+                    if w <= self.scanned_upto {
+                        self.scanned_upto = w - 1;
+                    }
+                    self.pending_wake.remove(&(w, *key));
+                }
+                if !c.persisted_exists {
+                    delta += 1;
+                }
+            }
+            None => {
+                batch.remove(jkey(key));
+                if c.persisted_exists {
+                    delta -= 1;
+                }
+            }
+        }
+        c.dirty = false;
+        c.persisted_wake = c.wake;
+        c.persisted_exists = c.record.is_some();
+        delta
+    }
+
+    fn remove_entry(&mut self, key: &UserKey) {
+        if let Some(c) = self.cache.remove(key) {
+            self.bytes -= c.bytes();
+        }
+    }
+
     /// Writes every change since the last commit in one atomic batch. With
     /// `durable`, also waits until sled has it on disk.
     pub fn commit(&mut self, durable: bool) -> Result<(), StoreError> {
-        self.commit_inner(durable, usize::MAX)
-    }
-
-    fn commit_inner(&mut self, durable: bool, chunk: usize) -> Result<(), StoreError> {
         let mut batch = sled::Batch::default();
-        let mut in_batch = 0usize;
-        let mut delta: i64 = 0;
-        for (key, c) in self.cache.iter_mut().filter(|(_, c)| c.dirty) {
-            if in_batch >= chunk {
-                self.tree.apply_batch(std::mem::take(&mut batch))?;
-                in_batch = 0;
-            }
-            in_batch += 1;
-            if let Some(w) = c.persisted_wake {
-                batch.remove(wkey(w, key));
-            }
-            match &c.journey {
-                Some(j) => {
-                    batch.insert(jkey(key), encode_journey(c.wake, j));
-                    if let Some(w) = c.wake {
-                        batch.insert(wkey(w, key), &[][..]);
-                    }
-                    if !c.persisted_exists {
-                        delta += 1;
-                    }
-                }
-                None => {
-                    batch.remove(jkey(key));
-                    if c.persisted_exists {
-                        delta -= 1;
-                    }
-                }
-            }
+        let dirty: Vec<UserKey> = self.cache.iter().filter(|(_, c)| c.dirty).map(|(k, _)| *k).collect();
+        let mut delta = 0;
+        for key in &dirty {
+            delta += self.persist_into(key, &mut batch);
         }
         for (digest, ts) in &self.pending_seen {
             let d = digest.to_be_bytes();
@@ -246,39 +294,65 @@ impl PartitionStore {
         self.open_journeys = (self.open_journeys as i64 + delta).max(0) as u64;
         self.pending_seen.clear();
         self.pending_wake.clear();
-        let mut removed = Vec::new();
-        for (key, c) in self.cache.iter_mut() {
-            if c.dirty {
-                c.dirty = false;
-                c.persisted_wake = c.wake;
-                c.persisted_exists = c.journey.is_some();
-                if c.journey.is_none() {
-                    removed.push(*key);
-                }
-            }
-        }
-        for k in removed {
-            if let Some(c) = self.cache.remove(&k) {
-                self.bytes -= c.bytes;
+        for key in &dirty {
+            if self.cache.get(key).is_some_and(|c| c.record.is_none()) {
+                self.remove_entry(key);
             }
         }
         if self.bytes > self.budget {
-            // All entries are clean now: drop them; hot users come back on demand.
-            self.cache.clear();
-            self.bytes = 0;
+            // Everything is clean now: evicting only drops memory.
+            self.evict_lru(usize::MAX)?;
         }
         Ok(())
     }
 
-    /// Writes the cached changes to sled only when the cache has grown past
-    /// its byte budget (then evicts). For `replay`, which needs no
-    /// durability between events: journeys stay in memory while they fit,
-    /// and the store bounds memory when they do not.
+    /// Evicts least recently used entries until a quarter of the budget is
+    /// free, writing those with uncommitted changes to sled first (in
+    /// batches of `chunk` entries; not atomic as a whole).
+    fn evict_lru(&mut self, chunk: usize) -> Result<(), StoreError> {
+        let target = self.budget - self.budget / 4;
+        let mut order: Vec<(u64, UserKey)> = self.cache.iter().map(|(k, c)| (c.last_used, *k)).collect();
+        order.sort_unstable();
+        let mut victims = Vec::new();
+        let mut left = self.bytes;
+        for (_, key) in order {
+            if left <= target {
+                break;
+            }
+            left -= self.cache[&key].bytes();
+            victims.push(key);
+        }
+        for part in victims.chunks(chunk.max(1)) {
+            let mut batch = sled::Batch::default();
+            let mut delta = 0;
+            let mut written = 0;
+            for key in part {
+                if self.cache[key].dirty {
+                    delta += self.persist_into(key, &mut batch);
+                    written += 1;
+                }
+            }
+            if written > 0 {
+                self.tree.apply_batch(batch)?;
+                self.open_journeys = (self.open_journeys as i64 + delta).max(0) as u64;
+                self.spilled += written;
+            }
+            for key in part {
+                self.remove_entry(key);
+            }
+            self.evictions += part.len() as u64;
+        }
+        Ok(())
+    }
+
+    /// For `replay`, which needs no durability between events: journeys stay
+    /// in memory while they fit the byte budget; above it, the least
+    /// recently used ones are written to sled and evicted. Returns true if
+    /// anything was evicted.
     pub fn spill_if_over_budget(&mut self) -> Result<bool, StoreError> {
         if self.bytes > self.budget {
-            // No durability needed here: smaller sled batches keep sled's
-            // own memory small.
-            self.commit_inner(false, 10_000)?;
+            // Smaller sled batches keep sled's own memory small.
+            self.evict_lru(10_000)?;
             return Ok(true);
         }
         Ok(false)
@@ -299,37 +373,49 @@ impl JourneyStore for PartitionStore {
     type Error = StoreError;
 
     fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
-        Ok(self.entry(key)?.journey.clone())
+        match &self.entry(key)?.record {
+            Some(r) => Ok(Some(decode_journey(r)?.journey)),
+            None => Ok(None),
+        }
     }
 
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), StoreError> {
-        let (old_wake, old_dirty, old_bytes) = {
+        let (old_wake, old_dirty, persisted_exists) = {
             let c = self.entry(key)?;
-            (c.wake, c.dirty, c.bytes)
+            (c.wake, c.dirty, c.persisted_exists)
         };
         if old_dirty {
             if let Some(w) = old_wake {
                 self.pending_wake.remove(&(w, *key));
             }
         }
+        if journey.is_empty() && !persisted_exists {
+            // Nothing in sled to delete: forget the user right away.
+            self.remove_entry(key);
+            return Ok(());
+        }
         let present = !journey.is_empty();
-        let bytes = if present { journey_bytes(&journey) } else { 64 };
         let wake = if present { wake } else { None };
         if let Some(w) = wake {
             self.pending_wake.insert((w, *key));
         }
+        let record = present.then(|| encode_journey(wake, &journey).into_boxed_slice());
         let c = self.cache.get_mut(key).expect("entry loaded");
-        c.journey = present.then_some(journey);
+        let old_bytes = c.bytes();
+        c.record = record;
         c.wake = wake;
         c.dirty = true;
-        c.bytes = bytes;
-        self.bytes = self.bytes + bytes - old_bytes;
+        let new_bytes = c.bytes();
+        self.bytes = self.bytes + new_bytes - old_bytes;
         Ok(())
     }
 
     fn due(&mut self, watermark: i64) -> Result<Vec<UserKey>, StoreError> {
         let mut found: BTreeSet<(i64, UserKey)> = BTreeSet::new();
-        if watermark > self.scanned_upto {
+        if self.open_journeys == 0 {
+            // Nothing persisted, so no wake keys in sled.
+            self.scanned_upto = self.scanned_upto.max(watermark);
+        } else if watermark > self.scanned_upto {
             let mut start = vec![W];
             start.extend_from_slice(&ordered_i64(self.scanned_upto.saturating_add(1)));
             let mut end = vec![W];
@@ -366,7 +452,7 @@ impl JourneyStore for PartitionStore {
         // Persisted keys plus cached ones; a key whose cached state is
         // "removed" may still be listed and loads as None.
         let mut out: std::collections::BTreeSet<UserKey> =
-            self.cache.iter().filter(|(_, c)| c.journey.is_some()).map(|(k, _)| *k).collect();
+            self.cache.iter().filter(|(_, c)| c.record.is_some()).map(|(k, _)| *k).collect();
         for item in self.tree.scan_prefix([J]) {
             let (k, _) = item?;
             if let Ok(a) = k[1..].try_into() {

@@ -61,11 +61,13 @@ where
 }
 
 proptest! {
-    #![proptest_config(ProptestConfig::with_cases(48))]
+    #![proptest_config(ProptestConfig::with_cases(96))]
     #[test]
     fn sled_store_matches_memory_store(
         events in prop::collection::vec((0u8..5, 0i64..90, prop::bool::weighted(0.3), 0u8..3), 1..80),
-        budget in prop::sample::select(vec![0usize, 500, 1 << 20]),
+        // 0 and 500: every entry is evicted; 1500 and 4000: a few stay, the
+        // least recently used go (partial eviction); 1 MiB: nothing spills.
+        budget in prop::sample::select(vec![0usize, 500, 1500, 4000, 1 << 20]),
     ) {
         let l = lines(&events);
         let want = run(MemStore::default(), &l, &mut |_| {});
@@ -75,8 +77,14 @@ proptest! {
         prop_assert_eq!(&got, &want);
         // The replay policy: write to sled only when over the byte budget.
         let part = store.partition("t/1", budget).unwrap();
-        let got = run(part, &l, &mut |s| { s.spill_if_over_budget().unwrap(); });
+        let mut over = 0usize;
+        let got = run(part, &l, &mut |s| {
+            s.spill_if_over_budget().unwrap();
+            // Right after a spill the cache is within its budget.
+            over = over.max(s.cached_bytes().saturating_sub(budget));
+        });
         prop_assert_eq!(got, want);
+        prop_assert_eq!(over, 0);
     }
 }
 
