@@ -252,6 +252,12 @@ fn run(cli: Cli) -> Result<()> {
                     "replay: {} lines, {} events applied, {} conversions ({} unattributed), {} rejected, {} duplicates, {} credit rows, {} paths in {:.2}s",
                     s.lines, s.events, s.conversions, s.unattributed, s.rejected, s.duplicates, s.rows, s.paths, s.seconds
                 );
+                if s.spilled > 0 {
+                    eprintln!(
+                        "replay: open journeys outgrew cache_bytes ({} bytes): {} journey writes went to the sled store (slower; raise cache_bytes if memory allows)",
+                        cfg.cache_bytes, s.spilled
+                    );
+                }
             }
             Ok(())
         }

@@ -1,12 +1,16 @@
 //! `apportion replay`: credit a whole NDJSON input in event-time order.
 //!
 //! Memory stays bounded for large inputs: the first pass validates every
-//! line and keeps only (time, line number, byte offset, length) of valid
-//! events (32 bytes each); after a stable sort the events are read back by
-//! offset, applied through the engine's replay loop, and open journeys live
-//! in the sled store behind a byte-bounded cache. With data-driven models the
-//! events are applied twice: first to fit on every closed path, then to
-//! credit with that one snapshot (DESIGN.md, "Fitting").
+//! line and keeps only (time, byte offset, length) of valid events (24 bytes
+//! each); after sorting by (time, offset), which is (time, input order), the
+//! events are read back by offset and applied through the engine's replay
+//! loop. Open journeys live in the sled store behind a byte-bounded cache
+//! (`cache_bytes`): they stay in memory while they fit, and the least
+//! recently used ones are written to sled when they do not. With data-driven
+//! models the events are applied twice: first to fit on every closed path,
+//! then to credit with that one snapshot (DESIGN.md, "Fitting").
+//!
+//! Measured figures (10M events) are in load/RESULTS.md.
 
 use std::collections::HashSet;
 use std::fs::File;
@@ -60,14 +64,18 @@ pub struct Summary {
     pub rows: u64,
     /// Closed paths.
     pub paths: u64,
+    /// Journey writes to sled because open journeys did not fit
+    /// `cache_bytes` (credit pass); 0 when everything stayed in memory.
+    pub spilled: u64,
     /// Seconds taken.
     pub seconds: f64,
 }
 
+/// One valid event of the input: where to read it back. The byte offset
+/// also serves as the arrival sequence (it grows with the line number).
 #[derive(Clone, Copy)]
 struct Rec {
     ts: i64,
-    line: u64,
     offset: u64,
     len: u32,
 }
@@ -98,7 +106,12 @@ impl<'a> LineReader<'a> {
         let len = len as usize;
         let end = offset + len as u64;
         if offset < self.block_start || end > self.block_start + self.block.len() as u64 {
-            if len > Self::BLOCK {
+            // Only a read at or just past the current block (input in time
+            // order) refills the block; a jump elsewhere (unsorted input)
+            // reads just its line, so it does not copy a whole block per event.
+            let next = self.block_start + self.block.len() as u64;
+            let sequential = self.block.is_empty() || (offset >= self.block_start && offset <= next + Self::BLOCK as u64);
+            if len > Self::BLOCK || !sequential {
                 buf.resize(len, 0);
                 return self.file.read_exact_at(buf, offset);
             }
@@ -134,12 +147,15 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
     };
     let total = file.metadata().map(|m| m.len()).unwrap_or(0);
     let mut reader = BufReader::with_capacity(1 << 20, (&file).take(u64::MAX));
-    let mut recs = Vec::new();
+    let mut recs: Vec<Rec> = Vec::new();
     let mut buf = Vec::with_capacity(4096);
     let mut offset = 0u64;
     let mut line = 0u64;
     let mut progress = Progress::new(io.progress, "reading", total);
     let mut seen: HashSet<u128> = HashSet::new();
+    // Sized once from the first lines' average length, so that neither the
+    // index nor the id set doubles (and briefly holds both copies) at scale.
+    let mut sized = false;
     loop {
         buf.clear();
         let n = reader.read_until(b'\n', &mut buf).context("reading input")?;
@@ -161,6 +177,12 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
             continue;
         }
         summary.lines += 1;
+        if !sized && (summary.lines == 4096 || offset >= total) {
+            sized = true;
+            let estimate = (total as f64 / offset.max(1) as f64 * summary.lines as f64 * 1.05) as usize;
+            recs.reserve_exact(estimate.saturating_sub(recs.len()));
+            seen.reserve(estimate.saturating_sub(seen.len()));
+        }
         match parse_event_limited(body, cfg.max_event_bytes) {
             Ok(ev) => {
                 // Duplicates: the first occurrence in input order wins, as
@@ -168,7 +190,9 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
                 if ev.kind != EventKind::Erase && !seen.insert(event_id_digest(&ev.event_id)) {
                     summary.duplicates += 1;
                 } else {
-                    recs.push(Rec { ts: ev.timestamp_ms, line, offset: start, len: body.len() as u32 });
+                    // parse_event_limited bounds the length by max_event_bytes (< 4 GiB).
+                    let len = u32::try_from(body.len()).context("event longer than 4 GiB")?;
+                    recs.push(Rec { ts: ev.timestamp_ms, offset: start, len });
                 }
             }
             Err(r) => {
@@ -180,8 +204,21 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
     }
     progress.done();
     drop(seen);
-    recs.sort_by_key(|r| (r.ts, r.line));
+    // Offsets are unique, so an unstable (in-place) sort keeps ties in
+    // input order.
+    recs.sort_unstable_by_key(|r| (r.ts, r.offset));
+    recs.shrink_to_fit();
     Ok(Indexed { file, recs, _spool: spool })
+}
+
+/// What one pass over the indexed events did.
+pub(crate) struct Applied {
+    /// Events applied.
+    pub events: u64,
+    /// Duplicates dropped (none after indexing, which drops them already).
+    pub duplicates: u64,
+    /// Journeys written to sled because the cache was over `cache_bytes`.
+    pub spilled: u64,
 }
 
 /// Applies every indexed event once. `emit` receives each effect.
@@ -193,7 +230,7 @@ pub(crate) fn apply_all(
     pass: &str,
     show: bool,
     mut emit: impl FnMut(&apportion_engine::Effect) -> Result<()>,
-) -> Result<(u64, u64)> {
+) -> Result<Applied> {
     let mut part = store.partition(pass, cfg.cache_bytes)?;
     let mut replayer = Replayer::new(cfg.rules(), &mut part);
     let mut reader = LineReader::new(&idx.file);
@@ -202,12 +239,13 @@ pub(crate) fn apply_all(
     let mut progress = Progress::new(show, pass, idx.recs.len() as u64);
     for (i, rec) in idx.recs.iter().enumerate() {
         reader.read(rec.offset, rec.len, &mut buf).context("reading input back")?;
-        let mut ev = parse_event_limited(&buf, usize::MAX)
-            .map_err(|e| anyhow::anyhow!("input line {} changed while replaying: {e}", rec.line))?;
+        let mut ev = parse_event_limited(&buf, usize::MAX).map_err(|e| {
+            anyhow::anyhow!("the input changed while replaying (event at byte offset {}): {e}", rec.offset)
+        })?;
         let key = pseudo.key_for(&ev.user_id);
         ev.user_id.clear();
         // Duplicates were dropped while indexing: no second id set here.
-        match replayer.push(KeyedEvent::from_event(ev, key, rec.line), "")? {
+        match replayer.push(KeyedEvent::from_event(ev, key, rec.offset), "")? {
             Pushed::Duplicate => dups += 1,
             Pushed::Applied(effects) => {
                 events += 1;
@@ -216,9 +254,9 @@ pub(crate) fn apply_all(
                 }
             }
         }
-        if i % 50_000 == 49_999 {
-            // Bounded sled batches; the cache evicts above its byte budget.
-            replayer.store_mut().commit(false)?;
+        if i % 1024 == 1023 {
+            // No durability needed: write to sled only what does not fit.
+            replayer.store_mut().spill_if_over_budget()?;
         }
         progress.tick(i as u64 + 1);
     }
@@ -227,9 +265,10 @@ pub(crate) fn apply_all(
     }
     progress.done();
     drop(replayer);
+    let (_, spilled) = part.eviction_counts();
     drop(part);
     store.drop_partition(pass)?;
-    Ok((events, dups))
+    Ok(Applied { events, duplicates: dups, spilled })
 }
 
 /// Runs replay; returns the summary.
@@ -267,7 +306,7 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
         Some(p) => Some(AtomicFile::create(&p.to_string_lossy())?),
         None => None,
     };
-    let (events, dups) = apply_all(&idx, cfg, pseudo, &store, "credit", io.progress, |e| {
+    let applied = apply_all(&idx, cfg, pseudo, &store, "credit", io.progress, |e| {
         if let apportion_engine::Effect::Journey { outcome: Outcome::Converted { path, .. }, .. } = e {
             summary.conversions += 1;
             if path.is_empty() {
@@ -293,8 +332,9 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
     if let Some(p) = paths_out {
         p.commit()?;
     }
-    summary.events = events;
-    summary.duplicates += dups;
+    summary.events = applied.events;
+    summary.duplicates += applied.duplicates;
+    summary.spilled = applied.spilled;
     summary.seconds = started.elapsed().as_secs_f64();
     Ok(summary)
 }
