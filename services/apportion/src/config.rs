@@ -425,7 +425,8 @@ fn merge(base: &mut toml::Value, over: toml::Value) {
 
 /// `APPORTION_*` variables of the test and development scripts, not
 /// configuration fields (prefixes).
-const NOT_CONFIG: [&str; 5] = ["APPORTION_TEST_", "APPORTION_REQUIRE_SERVERS", "APPORTION_CHECK_", "APPORTION_DEV_", "APPORTION_BIN"];
+const NOT_CONFIG: [&str; 6] =
+    ["APPORTION_TEST_", "APPORTION_REQUIRE_SERVERS", "APPORTION_CHECK_", "APPORTION_DEV_", "APPORTION_BIN", "APPORTION_LOAD_"];
 
 /// Applies `APPORTION_<PATH>` variables, where PATH is a field path joined by
 /// `_` in capitals (e.g. `APPORTION_LOOKBACK`, `APPORTION_KAFKA_BROKERS`,
@@ -601,6 +602,8 @@ mod tests {
             ("APPORTION_PARQUET_ROLL_AFTER".to_string(), "5m".to_string()),
             ("APPORTION_TEST_POSTGRES".to_string(), "ignored".to_string()),
             ("APPORTION_REQUIRE_SERVERS".to_string(), "1".to_string()),
+            // load/bench/replay_scale.sh
+            ("APPORTION_LOAD_BIN".to_string(), "ignored".to_string()),
         ];
         let c = Config::load(None, env).unwrap();
         let p = c.postgres.expect("postgres section from the environment");
