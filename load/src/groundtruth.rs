@@ -265,14 +265,16 @@ impl Report {
             self.method
         );
         let col = |f: &dyn Fn(&Run) -> f64| -> Vec<f64> { self.runs.iter().map(f).collect() };
-        let _ = writeln!(s, "Per run: events, conversions, expected conversions, expected without any channel effect{multi}:\n");
-        let _ = writeln!(s, "| events | conversions | expected conversions | expected without marketing |");
-        let _ = writeln!(s, "| --- | --- | --- | --- |");
+        let _ = writeln!(s, "Per run: events, conversions, conversions whose path has only do-nothing channels (their credit must go to those), expected conversions, expected without any channel effect{multi}:\n");
+        let _ = writeln!(s, "| events | conversions | of which no effective channel on the path | expected conversions | expected without marketing |");
+        let _ = writeln!(s, "| --- | --- | --- | --- | --- |");
         let _ = writeln!(
             s,
-            "| {} | {} | {} | {} |\n",
+            "| {} | {} | {} ({} of conversions) | {} | {} |\n",
             fmt_stat(&col(&|r| r.truth.events as f64), 0),
             fmt_stat(&col(&|r| r.truth.conversions as f64), 0),
+            fmt_stat(&col(&|r| r.truth.conversions_without_effective_channel as f64), 0),
+            fmt_stat(&col(&|r| r.truth.conversions_without_effective_channel as f64 / r.truth.conversions.max(1) as f64), 3),
             fmt_stat(&col(&|r| r.truth.expected_conversions), 1),
             fmt_stat(&col(&|r| r.truth.expected_conversions_without_marketing), 1),
         );
@@ -389,6 +391,10 @@ mod tests {
             let rho = s.spearman.expect("shares vary across channels");
             assert!((-1.0..=1.0).contains(&rho));
             assert!((s.null_share() - (s.untargeted_null_share + s.targeted_null_share)).abs() < 1e-15);
+            // A conversion with only do-nothing channels on its path gives
+            // them all of its credit, under any model whose fractions sum to 1.
+            let floor = truth.conversions_without_effective_channel as f64 / truth.conversions as f64;
+            assert!(s.null_share() >= floor - 1e-9, "{name}: {} < {floor}", s.null_share());
         }
         let report = Report { runs: vec![Run { truth, scores, cross_check_max_abs_diff: None }], method: "test".into() };
         let md = report.markdown();

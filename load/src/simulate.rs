@@ -83,6 +83,9 @@ pub struct Truth {
     pub touches: u64,
     /// Conversions drawn.
     pub conversions: u64,
+    /// Conversions of users exposed to no channel with an effect: every
+    /// model has to give all of their credit to channels that do nothing.
+    pub conversions_without_effective_channel: u64,
     /// Sum of every user's conversion probability.
     pub expected_conversions: f64,
     /// Sum of every user's conversion probability with no channel effect at
@@ -114,6 +117,8 @@ pub struct TruthAccumulator {
     users: u64,
     touches: u64,
     conversions: u64,
+    conversions_null_only: u64,
+    effective_mask: u64,
     expected: f64,
     expected_without: f64,
 }
@@ -127,6 +132,13 @@ impl TruthAccumulator {
             users: 0,
             touches: 0,
             conversions: 0,
+            conversions_null_only: 0,
+            effective_mask: scenario
+                .channels
+                .iter()
+                .enumerate()
+                .filter(|(_, c)| c.logit_effect != 0.0)
+                .fold(0u64, |m, (i, _)| m | 1 << i),
             expected: 0.0,
             expected_without: 0.0,
         }
@@ -137,6 +149,7 @@ impl TruthAccumulator {
         self.users += 1;
         self.touches += j.touches.len() as u64;
         self.conversions += j.converted as u64;
+        self.conversions_null_only += (j.converted && j.exposed & self.effective_mask == 0) as u64;
         let full = self.scenario.logit(j.base_logit, j.exposed);
         self.expected += sigmoid(full);
         self.expected_without += sigmoid(j.base_logit);
@@ -185,6 +198,7 @@ impl TruthAccumulator {
             events,
             touches: self.touches,
             conversions: self.conversions,
+            conversions_without_effective_channel: self.conversions_null_only,
             expected_conversions: self.expected,
             expected_conversions_without_marketing: self.expected_without,
             channels,
@@ -307,6 +321,8 @@ mod tests {
         let sd = (t.expected_conversions).sqrt(); // >= sqrt(sum p(1-p))
         assert!((t.conversions as f64 - t.expected_conversions).abs() < 5.0 * sd, "{t:?}");
         assert!(t.expected_conversions > t.expected_conversions_without_marketing);
+        assert!(t.conversions_without_effective_channel > 0);
+        assert!(t.conversions_without_effective_channel < t.conversions / 2);
     }
 
     #[test]
