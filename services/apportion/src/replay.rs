@@ -215,8 +215,6 @@ pub(crate) fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summar
 pub(crate) struct Applied {
     /// Events applied.
     pub events: u64,
-    /// Duplicates dropped (none after indexing, which drops them already).
-    pub duplicates: u64,
     /// Journeys written to sled because the cache was over `cache_bytes`.
     pub spilled: u64,
 }
@@ -235,7 +233,7 @@ pub(crate) fn apply_all(
     let mut replayer = Replayer::new(cfg.rules(), &mut part);
     let mut reader = LineReader::new(&idx.file);
     let mut buf = Vec::new();
-    let (mut events, mut dups) = (0u64, 0u64);
+    let mut events = 0u64;
     let mut progress = Progress::new(show, pass, idx.recs.len() as u64);
     for (i, rec) in idx.recs.iter().enumerate() {
         reader.read(rec.offset, rec.len, &mut buf).context("reading input back")?;
@@ -244,9 +242,10 @@ pub(crate) fn apply_all(
         })?;
         let key = pseudo.key_for(&ev.user_id);
         ev.user_id.clear();
-        // Duplicates were dropped while indexing: no second id set here.
+        // Duplicates were dropped while indexing: no second id set here, so
+        // nothing comes back as a duplicate.
         match replayer.push(KeyedEvent::from_event(ev, key, rec.offset), "")? {
-            Pushed::Duplicate => dups += 1,
+            Pushed::Duplicate => {}
             Pushed::Applied(effects) => {
                 events += 1;
                 for e in &effects {
@@ -265,10 +264,10 @@ pub(crate) fn apply_all(
     }
     progress.done();
     drop(replayer);
-    let (_, spilled) = part.eviction_counts();
+    let spilled = part.spilled();
     drop(part);
     store.drop_partition(pass)?;
-    Ok(Applied { events, duplicates: dups, spilled })
+    Ok(Applied { events, spilled })
 }
 
 /// Runs replay; returns the summary.
@@ -333,7 +332,6 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
         p.commit()?;
     }
     summary.events = applied.events;
-    summary.duplicates += applied.duplicates;
     summary.spilled = applied.spilled;
     summary.seconds = started.elapsed().as_secs_f64();
     Ok(summary)

@@ -66,7 +66,7 @@ pub struct PartitionStore {
     /// Journeys persisted in sled (committed state).
     open_journeys: u64,
     clock: u64,
-    evictions: u64,
+    /// Journeys written to sled because they were evicted with changes.
     spilled: u64,
 }
 
@@ -100,7 +100,6 @@ impl PartitionStore {
             scanned_upto: i64::MIN,
             open_journeys,
             clock: 0,
-            evictions: 0,
             spilled: 0,
         })
     }
@@ -123,10 +122,10 @@ impl PartitionStore {
         self.bytes
     }
 
-    /// Cache entries evicted so far, and how many of them had to be written
-    /// to sled first because they held uncommitted changes.
-    pub fn eviction_counts(&self) -> (u64, u64) {
-        (self.evictions, self.spilled)
+    /// Evicted entries that had to be written to sled first because they
+    /// held uncommitted changes (only `spill_if_over_budget` evicts those).
+    pub fn spilled(&self) -> u64 {
+        self.spilled
     }
 
     fn entry(&mut self, key: &UserKey) -> Result<&mut Cached, StoreError> {
@@ -324,23 +323,16 @@ impl PartitionStore {
         }
         for part in victims.chunks(chunk.max(1)) {
             let mut batch = sled::Batch::default();
-            let mut delta = 0;
-            let mut written = 0;
-            for key in part {
-                if self.cache[key].dirty {
-                    delta += self.persist_into(key, &mut batch);
-                    written += 1;
-                }
-            }
-            if written > 0 {
+            let dirty: Vec<&UserKey> = part.iter().filter(|k| self.cache[*k].dirty).collect();
+            if !dirty.is_empty() {
+                let delta: i64 = dirty.iter().map(|k| self.persist_into(k, &mut batch)).sum();
                 self.tree.apply_batch(batch)?;
                 self.open_journeys = (self.open_journeys as i64 + delta).max(0) as u64;
-                self.spilled += written;
+                self.spilled += dirty.len() as u64;
             }
             for key in part {
                 self.remove_entry(key);
             }
-            self.evictions += part.len() as u64;
         }
         Ok(())
     }
