@@ -1,5 +1,7 @@
 //! `serve` without Kafka: HTTP ingest, rotating NDJSON output, per-line
 //! errors, graceful shutdown. No server needed.
+//! Check values: the rows of `apportion replay` on the same events, and
+//! per-line reasons derived by hand from docs/contract.md "Reject reasons".
 
 use std::time::Duration;
 

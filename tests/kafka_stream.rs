@@ -1,5 +1,8 @@
 //! `serve` on a real broker: streaming equals batch, restarts, repartition,
 //! bad messages, watermark-driven expiry.
+//! Check values: the rows of `apportion replay` on the same events (the
+//! contract, docs/contract.md "Determinism"), the number of conversions the
+//! generator wrote, and reasons derived by hand from "Reject reasons".
 
 use std::collections::{BTreeMap, HashMap, HashSet};
 use std::time::Duration;

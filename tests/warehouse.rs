@@ -11,7 +11,7 @@
 //!
 //! Check values: every conversion's credit sums to 1 under each model (the
 //! efficiency property of a fractional credit: Shapley 1953 for `shapley`;
-//! for the rule models common practice, no source; DESIGN.md fixes the 1e-9
+//! for the rule models common practice, no source; docs/contract.md ("Models") fixes the 1e-9
 //! tolerance). Row identity is the deterministic `credit_id` / `path_id` of
 //! the output contract, compared against the service's own NDJSON files.
 

@@ -6,7 +6,7 @@
 With no flag, runs both. For each engine it:
   1. runs the DDL (duckdb.sql or postgres.sql) in a fresh database,
   2. checks the credit table's columns (names and order) against the credit
-     output contract (shared design notes, "Credit output") and their types and
+     output contract (docs/contract.md, "Credit rows") and their types and
      nullability against the types chosen for the warehouse, and that every
      column has a comment,
   3. loads sample_credit.ndjson and sample_paths.ndjson the way the comments
@@ -21,7 +21,7 @@ directory, Unix socket only, no TCP port) and stops it afterwards. Needs the
 PostgreSQL server binaries (Debian package `postgresql`) and psql.
 DuckDB: needs the `duckdb` Python package.
 
-The sample data is invented (Ridgeline Outfitters, an online outdoor-gear shop).
+The sample data is invented (the example trail shop, an online outdoor-gear shop).
 Its credit_id and user_key values were computed with the service's formulas
 (SHA-256 of conversion_id/model/position; HMAC-SHA256 with the development key).
 """
@@ -44,7 +44,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 TOL = 1e-9
 
-# The credit output contract, in order (shared design notes, "Credit output").
+# The credit output contract, in order (docs/contract.md, "Credit rows").
 CONTRACT_FIELDS = [
     "credit_id", "conversion_id", "user_key", "model", "model_version", "goal",
     "touch_event_id", "channel", "campaign", "interaction", "position",
@@ -178,21 +178,18 @@ def check_columns(engine: str, table: str, got: list[tuple[str, str, bool]], wan
     print(f"  ok   {engine}: {table} columns, types and nullability")
 
 
-def check_design_notes() -> None:
-    """If the shared design notes are beside the repository, re-read the
-    contract's field list from them (they are the source of CONTRACT_FIELDS)."""
-    for cand in (HERE.parents[2] / "shared" / "DESIGN.md", Path("/work/shared/DESIGN.md")):
-        if cand.is_file():
-            text = cand.read_text()
-            m = re.search(r"## Credit output.*?\n\|[^\n]*\n\|[-| ]+\n((?:\|[^\n]*\n)+)", text, re.S)
-            if not m:
-                raise CheckError(f"cannot find the Credit output table in {cand}")
-            fields = re.findall(r"^\| `([a-z_]+)` \|", m.group(1), re.M)
-            if fields != CONTRACT_FIELDS:
-                raise CheckError(f"{cand} lists credit fields {fields}; the checker has {CONTRACT_FIELDS}")
-            print(f"  ok   contract fields match {cand}")
-            return
-    print("  skip design notes not found beside the repository; using the field list in this file")
+def check_contract() -> None:
+    """Re-read the credit row fields from the project's contract,
+    docs/contract.md ("Credit rows"), the source of CONTRACT_FIELDS."""
+    path = HERE.parents[1] / "docs" / "contract.md"
+    text = path.read_text()
+    m = re.search(r"## Credit rows.*?\n\|[^\n]*\n\|[-| ]+\n((?:\|[^\n]*\n)+)", text, re.S)
+    if not m:
+        raise CheckError(f"cannot find the Credit rows table in {path}")
+    fields = re.findall(r"^\| `([a-z_]+)` \|", m.group(1), re.M)
+    if fields != CONTRACT_FIELDS:
+        raise CheckError(f"{path} lists credit fields {fields}; the checker has {CONTRACT_FIELDS}")
+    print("  ok   contract fields match docs/contract.md")
 
 
 # ------------------------------------------------------------------ DuckDB
@@ -398,7 +395,7 @@ def main() -> int:
     args = ap.parse_args()
     both = not (args.duckdb or args.postgres)
     try:
-        check_design_notes()
+        check_contract()
         if args.duckdb or both:
             run_duckdb()
         if args.postgres or both:

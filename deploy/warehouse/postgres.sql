@@ -1,8 +1,8 @@
 -- apportion output tables for PostgreSQL (tested with PostgreSQL 15).
 -- Load: psql -v ON_ERROR_STOP=1 -f deploy/warehouse/postgres.sql
 --
--- credit: one row per credit row of the service (shared design notes, "Credit
--- output", a contract). credit_id is deterministic, so loading the same rows
+-- credit: one row per credit row of the service (docs/contract.md, "Credit
+-- rows"). credit_id is deterministic, so loading the same rows
 -- twice is harmless with ON CONFLICT (credit_id) DO NOTHING.
 -- paths: one row per closed path (the paths topic).
 

@@ -6,7 +6,8 @@
 #        load/bench/replay_scale.sh WORKDIR EVENTS --record ORDER MODELS LOG LOADAVG
 #   ORDER:  sorted | unsorted
 #   MODELS: rules (the five rule models) | datadriven (shapley,markov) | a model list
-# example: load/bench/replay_scale.sh /work/loadbench 10000000 sorted rules unsorted rules
+# example: load/bench/replay_scale.sh "$BENCH" 10000000 sorted rules unsorted rules
+#   (BENCH: any scratch directory outside the repository)
 #
 # Inputs are kept in WORKDIR (gen-<order>-<events>.ndjson, reused when
 # present); credit output goes to WORKDIR/credit.ndjson and is deleted after

@@ -252,7 +252,7 @@ mod tests {
 
     fn gen(opts: &GenOptions) -> (Vec<u8>, GenSummary) {
         let mut buf = Vec::new();
-        let s = generate(&Scenario::ridgeline(), opts, &mut buf).unwrap();
+        let s = generate(&Scenario::example_shop(), opts, &mut buf).unwrap();
         (buf, s)
     }
 

@@ -368,7 +368,7 @@ mod tests {
 
     fn small_run(users: u64, seed: u64) -> (Truth, CreditTotals, Vec<ModelScore>) {
         let mut buf = Vec::new();
-        let truth = simulate(&Scenario::ridgeline(), &SimOptions::new(users, seed), &mut buf).unwrap();
+        let truth = simulate(&Scenario::example_shop(), &SimOptions::new(users, seed), &mut buf).unwrap();
         let text = String::from_utf8(buf).unwrap();
         let lines: Vec<&str> = text.lines().collect();
         let totals = credit_in_process(&lines, &ALL_MODELS);
@@ -409,7 +409,7 @@ mod tests {
         // gives 1/n to each of its n touches, so the channel totals can be
         // recomputed from the events themselves.
         let mut buf = Vec::new();
-        simulate(&Scenario::ridgeline(), &SimOptions::new(1500, 4), &mut buf).unwrap();
+        simulate(&Scenario::example_shop(), &SimOptions::new(1500, 4), &mut buf).unwrap();
         let text = String::from_utf8(buf).unwrap();
         let lines: Vec<&str> = text.lines().collect();
         let mut per_user: BTreeMap<String, (Vec<String>, bool)> = BTreeMap::new();

@@ -1,4 +1,4 @@
-//! Writing input events (DESIGN.md, "Input events") as NDJSON lines.
+//! Writing input events (docs/contract.md, "Input events") as NDJSON lines.
 //!
 //! The generators write millions of lines, so this formats straight into the
 //! output buffer: no `serde_json` value, no string per event. Names are

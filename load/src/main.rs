@@ -129,7 +129,7 @@ fn groundtruth(
     if !in_process && !bin.exists() {
         bail!("{} not found: build it with `cargo build --release -p apportion` or pass --bin", bin.display());
     }
-    let scenario = Scenario::ridgeline();
+    let scenario = Scenario::example_shop();
     let mut report = Report {
         runs: Vec::new(),
         method: if in_process {
@@ -198,7 +198,7 @@ fn run(cli: Cli) -> Result<()> {
         Cmd::Simulate { users, seed, out, truth, days } => {
             let started = Instant::now();
             let mut w = create(&out)?;
-            let t = simulate(&Scenario::ridgeline(), &SimOptions { days, ..SimOptions::new(users, seed) }, &mut w)?;
+            let t = simulate(&Scenario::example_shop(), &SimOptions { days, ..SimOptions::new(users, seed) }, &mut w)?;
             w.into_inner().map_err(|e| e.into_error())?;
             if let Some(p) = truth {
                 std::fs::write(&p, serde_json::to_vec_pretty(&t)?).with_context(|| format!("writing {}", p.display()))?;
@@ -220,7 +220,7 @@ fn run(cli: Cli) -> Result<()> {
             let started = Instant::now();
             let opts = GenOptions { unsorted, days, dup_rate, ..GenOptions::new(events, users, seed) };
             let mut w = create(&out)?;
-            let s = generate(&Scenario::ridgeline(), &opts, &mut w)?;
+            let s = generate(&Scenario::example_shop(), &opts, &mut w)?;
             w.into_inner().map_err(|e| e.into_error())?;
             let secs = started.elapsed().as_secs_f64();
             let bytes = std::fs::metadata(&out).map(|m| m.len()).unwrap_or(0);

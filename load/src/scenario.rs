@@ -125,7 +125,7 @@ pub struct Scenario {
 const HOUR: i64 = 3_600_000;
 const DAY: i64 = 24 * HOUR;
 
-/// The contract's default lookback (DESIGN.md, "Journey semantics"): a
+/// The contract's default lookback (docs/contract.md, "Journey rules"): a
 /// scenario keeps every touch of a journey inside it, so the eligible path of
 /// a conversion is always the whole journey and the truth needs no windowing.
 pub const DEFAULT_LOOKBACK_MS: i64 = 30 * DAY;
@@ -149,17 +149,17 @@ fn channel(
 }
 
 impl Scenario {
-    /// Ridgeline Outfitters, an invented online shop for outdoor gear.
+    /// The example trail shop, an invented online shop for outdoor gear.
     ///
     /// Four channels work (`paid_search`, `affiliate`, `email`, `video`), two
     /// are shown often and do nothing (`social`, `display`), and `push` does
     /// nothing but goes mostly to high-intent shoppers near the end of their
     /// journey. All numbers are invented for this simulation.
-    pub fn ridgeline() -> Scenario {
+    pub fn example_shop() -> Scenario {
         use Exposure::Mix;
         use Position::*;
         Scenario {
-            name: "Ridgeline Outfitters (invented online outdoor-gear shop)".into(),
+            name: "Example Trail Shop (invented online outdoor-gear shop)".into(),
             baseline_logit: -3.0,
             intent_coef: 1.0,
             extra_touches_mean: 2.5,
@@ -177,7 +177,7 @@ impl Scenario {
                 channel("affiliate", 0.90, Mix { weight: 7.0 }, Late, 0.0, &["hiking-blogs", "review-sites"]),
                 channel("email", 0.35, Mix { weight: 16.0 }, Anywhere, 0.0, &["newsletter-weekly", "trail-club"]),
                 channel("video", 0.20, Mix { weight: 9.0 }, Early, 0.7, &["gear-reviews", "trail-guides"]),
-                channel("social", 0.0, Mix { weight: 26.0 }, Early, 0.5, &["summit-stories", "gear-reels"]),
+                channel("social", 0.0, Mix { weight: 26.0 }, Early, 0.5, &["summit-stories", "gear-clips"]),
                 channel("display", 0.0, Mix { weight: 22.0 }, Early, 1.0, &["camping-season", "new-arrivals"]),
                 channel(
                     "push",
@@ -408,23 +408,23 @@ mod tests {
     use rand_chacha::ChaCha8Rng;
 
     #[test]
-    fn ridgeline_is_valid() {
-        Scenario::ridgeline().validate().unwrap();
+    fn example_shop_is_valid() {
+        Scenario::example_shop().validate().unwrap();
     }
 
     #[test]
     fn validation_rejects_journeys_longer_than_the_lookback() {
-        let mut s = Scenario::ridgeline();
+        let mut s = Scenario::example_shop();
         s.journey_max_ms = 29 * DAY;
         assert!(s.validate().is_err());
-        let mut s = Scenario::ridgeline();
+        let mut s = Scenario::example_shop();
         s.channels[1].name = "paid_search".into();
         assert!(s.validate().is_err());
     }
 
     #[test]
     fn journeys_stay_inside_the_lookback_and_in_time_order() {
-        let s = Scenario::ridgeline();
+        let s = Scenario::example_shop();
         let mut rng = ChaCha8Rng::seed_from_u64(3);
         for _ in 0..5000 {
             let j = s.journey(&mut rng);

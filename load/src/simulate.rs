@@ -259,7 +259,7 @@ mod tests {
 
     fn run(users: u64, seed: u64) -> (Vec<u8>, Truth) {
         let mut buf = Vec::new();
-        let truth = simulate(&Scenario::ridgeline(), &SimOptions::new(users, seed), &mut buf).unwrap();
+        let truth = simulate(&Scenario::example_shop(), &SimOptions::new(users, seed), &mut buf).unwrap();
         (buf, truth)
     }
 
@@ -275,7 +275,7 @@ mod tests {
 
     #[test]
     fn truth_file_matches_the_configured_effects() {
-        let scenario = Scenario::ridgeline();
+        let scenario = Scenario::example_shop();
         let (_, truth) = run(20_000, 7);
         let dir = tempfile::tempdir().unwrap();
         let path = dir.path().join("truth.json");

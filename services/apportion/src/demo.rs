@@ -1,6 +1,6 @@
 //! `apportion demo`: an invented business, end to end.
 //!
-//! Ridgeline Outfitters is a made-up online shop for outdoor gear. The demo
+//! The example trail shop is a made-up online shop for outdoor gear. The demo
 //! generates two months of its marketing touches and orders (seeded, so the
 //! same seed gives the same numbers), runs them through the same engine and
 //! store as `replay`, and prints what each model credits per channel, side by
@@ -19,7 +19,7 @@ use apportion_engine::CreditRow;
 const CHANNELS: &[(&str, u32, &[&str])] = &[
     ("paid_search", 30, &["brand-terms", "tents-generic", "boots-generic"]),
     ("email", 20, &["newsletter-weekly", "abandoned-cart", "trail-club"]),
-    ("social", 18, &["summit-stories", "gear-reels"]),
+    ("social", 18, &["summit-stories", "gear-clips"]),
     ("display", 14, &["retarget-30d", "camping-season"]),
     ("affiliate", 8, &["hiking-blogs", "review-sites"]),
     ("video", 10, &["gear-reviews", "trail-guides"]),

@@ -295,7 +295,7 @@ fn run_demo(config: Option<&PathBuf>, a: DemoArgs) -> Result<()> {
     let conversions: std::collections::BTreeSet<&str> = run.rows.iter().map(|r| r.conversion_id.as_str()).collect();
     let unattributed = run.rows.iter().filter(|r| r.path_length == 0).map(|r| r.conversion_id.as_str()).collect::<std::collections::BTreeSet<_>>().len();
     println!(
-        "Ridgeline Outfitters (an invented outdoor-gear shop): {} shoppers, {} events, {} orders ({} with no eligible touch)",
+        "The example trail shop (an invented outdoor-gear shop): {} shoppers, {} events, {} orders ({} with no eligible touch)",
         a.users,
         lines.len(),
         conversions.len(),

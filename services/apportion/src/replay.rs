@@ -8,7 +8,7 @@
 //! (`cache_bytes`): they stay in memory while they fit, and the least
 //! recently used ones are written to sled when they do not. With data-driven
 //! models the events are applied twice: first to fit on every closed path,
-//! then to credit with that one snapshot (DESIGN.md, "Fitting").
+//! then to credit with that one snapshot (docs/contract.md, "Models" (Fitting)).
 //!
 //! Measured figures (10M events) are in load/RESULTS.md.
 

@@ -1,6 +1,6 @@
 //! End-to-end tests of the `apportion replay` binary on a small fixture
 //! (tests/fixtures/small.ndjson) whose expected rows were worked out by hand
-//! from the contract (DESIGN.md). Time-decay values come from the formula
+//! from the contract (docs/contract.md). Time-decay values come from the formula
 //! 2^(-(T - t)/half_life), normalized (computed with a calculator:
 //! 2^(-3/7) : 2^(-1/7) and 2^(-2/7) : 2^(-1/7) : 1).
 
@@ -223,7 +223,7 @@ fn print_default_config_parses() {
 /// 0.35, without C = 0; removal effects 7/12, 5/12, 1; for the conversion of
 /// A>B>C the shares are 7/24, 5/24, 1/2.
 ///
-/// shapley (Shapley 1953, the definition in DESIGN.md), derived by hand:
+/// shapley (Shapley 1953, the definition in docs/contract.md, "Models"), derived by hand:
 /// v({A,B,C}) = 1, v({A,C}) = 1, v({C}) = 1, v({A,B}) = 0, unseen sets 0.
 /// phi(A) = 1/3 * (v(ABC) - v(BC)) = 1/3; phi(B) = 1/6 * (v(BC) - v(C)) = -1/6;
 /// phi(C) = 1/3 + 1/6 + 1/3 = 5/6 (they sum to v(ABC) = 1). Clamping B to 0
@@ -290,7 +290,7 @@ fn demo_through_serve_pipeline_equals_replay_for_rule_models() {
         .unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let text = String::from_utf8_lossy(&o.stdout);
-    assert!(text.contains("Ridgeline Outfitters") && text.contains("markov"), "{text}");
+    assert!(text.contains("example trail shop") && text.contains("markov"), "{text}");
     let mut demo_rows: Vec<Value> = Vec::new();
     for e in std::fs::read_dir(dir.path()).unwrap() {
         let p = e.unwrap().path();

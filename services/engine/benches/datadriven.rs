@@ -1,7 +1,7 @@
 //! Data-driven model benchmarks.
 //!
 //! Run: `cargo bench -p apportion-engine --bench datadriven -- --sample-size 10`
-//! Targets (DESIGN/brief): exact global Shapley with 16 channels over 1M
+//! Targets (the project's own orientation figures, load/RESULTS.md): exact global Shapley with 16 channels over 1M
 //! paths (fit + global values) under 1 s; a first-order Markov fit with 200
 //! channels (every removal effect included) under 1 s.
 //!

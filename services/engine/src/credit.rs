@@ -1,4 +1,4 @@
-//! Credit rows and path rows (DESIGN.md, "Credit output").
+//! Credit rows and path rows (docs/contract.md, "Credit rows" and "Path rows").
 
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};

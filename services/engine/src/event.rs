@@ -1,6 +1,6 @@
 //! The input contract: parsing and validating one event.
 //!
-//! Every rule of the input contract (DESIGN.md, "Input events") is checked
+//! Every rule of the input contract (docs/contract.md, "Input events") is checked
 //! here and nowhere else. A line that breaks a rule yields a [`Rejection`]
 //! with a stable, machine-readable [`RejectReason`] and a human detail; the
 //! caller routes it to the dead-letter output and carries on.

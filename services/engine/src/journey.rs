@@ -1,4 +1,4 @@
-//! Journey rules (DESIGN.md, "Journey semantics").
+//! Journey rules (docs/contract.md, "Journey rules").
 //!
 //! A [`Journey`] holds one pseudonymous user's open touches and the
 //! conversions not yet credited, both in event-time order (ties by arrival

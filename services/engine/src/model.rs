@@ -1,4 +1,4 @@
-//! Attribution models (DESIGN.md, "Models").
+//! Attribution models (docs/contract.md, "Models").
 //!
 //! A [`Model`] turns an eligible path (non-empty, in time order) and the
 //! conversion time into one non-negative fraction per touch, summing to 1.

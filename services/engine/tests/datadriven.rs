@@ -5,7 +5,7 @@
 //! removal-effect worked example in the manner of Anderl et al. 2016
 //! solved by hand as an absorbing chain (Kemeny and Snell 1960), and
 //! independent exact re-implementations in rational arithmetic
-//! (num-rational `BigRational`) of the definitions in DESIGN.md.
+//! (num-rational `BigRational`) of the definitions in docs/contract.md ("Models").
 
 use std::collections::{BTreeMap, BTreeSet};
 
@@ -130,12 +130,52 @@ fn weighted_voting_games() {
     );
 }
 
+/// Exact Shapley value of a weighted voting game `[quota; weights]` by
+/// enumerating every coalition in rationals (the definition, Shapley 1953):
+/// an independent check of the values quoted below.
+fn exact_voting_power(quota: u32, weights: &[u32]) -> Vec<BigRational> {
+    let n = weights.len();
+    let fact = |k: usize| (1..=k as i64).fold(BigInt::one(), |a, b| a * b);
+    (0..n)
+        .map(|i| {
+            let mut phi = BigRational::zero();
+            for m in 0u64..(1 << n) {
+                if m >> i & 1 == 1 {
+                    continue;
+                }
+                let w: u32 = (0..n).filter(|j| m >> j & 1 == 1).map(|j| weights[j]).sum();
+                if w < quota && w + weights[i] >= quota {
+                    let k = m.count_ones() as usize;
+                    phi += BigRational::new(fact(k) * fact(n - k - 1), fact(n));
+                }
+            }
+            phi
+        })
+        .collect()
+}
+
 #[test]
-fn security_council_game() {
-    // UN Security Council, Shapley and Shubik 1954: [39; 7 x 5, 1 x 10]
-    // (five permanent members with veto, ten others, nine votes needed):
-    // 421/2145 per permanent member, 4/2145 per other member.
+fn security_council_games() {
+    // Shapley and Shubik (1954), "A method for evaluating the distribution
+    // of power in a committee system": the Security Council of the time,
+    // [27; 5 x 5, 1 x 6] (five permanent members with veto, six others,
+    // seven votes needed): 76/385 per permanent member, 1/462 per other.
+    const W11: [u32; 11] = [5, 5, 5, 5, 5, 1, 1, 1, 1, 1, 1];
+    let exact = exact_voting_power(27, &W11);
+    for (i, v) in exact.iter().enumerate() {
+        assert_eq!(*v, if i < 5 { q(76, 385) } else { q(1, 462) }, "member {i}");
+    }
+    let want: Vec<f64> = (0..11).map(|i| if i < 5 { 76.0 / 385.0 } else { 1.0 / 462.0 }).collect();
+    assert_all_close(&shapley_values(11, weighted_voting(27, &W11)), &want, 1e-12);
+
+    // The council after 1965, [39; 7 x 5, 1 x 10] (ten others, nine votes
+    // needed): 421/2145 per permanent member, 4/2145 per other member (from
+    // memory; confirmed by the exact enumeration here).
     const W: [u32; 15] = [7, 7, 7, 7, 7, 1, 1, 1, 1, 1, 1, 1, 1, 1, 1];
+    let exact = exact_voting_power(39, &W);
+    for (i, v) in exact.iter().enumerate() {
+        assert_eq!(*v, if i < 5 { q(421, 2145) } else { q(4, 2145) }, "member {i}");
+    }
     let want: Vec<f64> = (0..15).map(|i| if i < 5 { 421.0 / 2145.0 } else { 4.0 / 2145.0 }).collect();
     assert_all_close(&shapley_values(15, weighted_voting(39, &W)), &want, 1e-12);
 
@@ -257,7 +297,7 @@ fn monte_carlo_lands_within_standard_errors() {
 
 // ------------------------------------------- Shapley model vs exact rational
 
-/// Independent exact implementation of DESIGN.md's `shapley` for one
+/// Independent exact implementation of docs/contract.md's `shapley` for one
 /// conversion: the literal subset sum with rational weights.
 fn exact_shapley(paths: &[(Vec<&str>, bool)], conv: &[&str]) -> Vec<BigRational> {
     let mut counts: BTreeMap<BTreeSet<&str>, (i64, i64)> = BTreeMap::new();
@@ -501,7 +541,7 @@ fn markov_second_order_worked_example() {
 
 // ------------------------------------------- Markov: exact rational solver
 
-/// Independent exact implementation of DESIGN.md's `markov` (order k):
+/// Independent exact implementation of docs/contract.md's `markov` (order k):
 /// builds the chain from the raw paths, solves with rational Gaussian
 /// elimination, removes c by dropping every transition into a state whose
 /// last channel is c (the mass goes to NULL). Returns P and P_-c by channel.

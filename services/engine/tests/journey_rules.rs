@@ -1,6 +1,6 @@
-//! Journey rules of DESIGN.md ("Journey semantics"), checked through the
-//! replay loop on small hand-written inputs. The expected values follow
-//! from the rules themselves (contract of this project, DESIGN.md).
+//! Journey rules of docs/contract.md ("Journey rules"), checked through the
+//! replay loop on small hand-written inputs. Every expected value is derived
+//! by hand from those rules (the contract of this project; no outside source).
 
 use apportion_engine::registry::{rule_model, RuleParams};
 use apportion_engine::replay::{replay_lines, ReplayResult};

@@ -2,6 +2,8 @@
 //! model, output independent of input order (ties keep their order), and
 //! coarse watermarks (the streaming service) give the same outcomes as
 //! replay's per-event watermark.
+//! The invariants are those of docs/contract.md ("Models": fractions >= 0
+//! summing to 1 within 1e-9; "Journey rules": path order; "Determinism").
 
 use apportion_engine::journey::{Conversion, Journey, Outcome, Rules, Touch};
 use apportion_engine::model::{FirstTouch, LastTouch, Linear, Model, TimeDecay, UShaped};

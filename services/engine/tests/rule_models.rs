@@ -49,7 +49,7 @@ fn u_shaped_split() {
     for (a, b) in w.iter().zip(want) {
         assert!(close(*a, b, 1e-12), "{w:?}");
     }
-    // n = 1 gives 1, n = 2 gives 1/2 each (DESIGN.md contract).
+    // n = 1 gives 1, n = 2 gives 1/2 each (docs/contract.md, "Models").
     assert_eq!(UShaped::default().credit(&p[..1], 100 * DAY), vec![1.0]);
     assert_eq!(UShaped::default().credit(&p[..2], 100 * DAY), vec![0.5, 0.5]);
     // Configured endpoints: 0.3 / 0.4 split / 0.3 over three touches (arithmetic of the rule).

@@ -51,7 +51,7 @@
 //!
 //! ## Columns
 //!
-//! One column per contract field (DESIGN.md, "Credit output"): strings as
+//! One column per contract field (docs/contract.md, "Credit rows" and "Path rows"): strings as
 //! UTF-8, nullable where the contract allows null, `position`,
 //! `path_length` and `touch_count` as INT32 (as in
 //! `deploy/warehouse/postgres.sql`), `credit` and `credited_value` as

@@ -16,7 +16,7 @@
 //! | `m` | name | metadata blob (e.g. path statistics) |
 //!
 //! Why a write-back cache: one sled write per event is far slower than the
-//! engine (see DESIGN.md performance notes). [`PartitionStore`] keeps recently
+//! engine (it costs more than all the rest of the work an event needs). [`PartitionStore`] keeps recently
 //! used journeys in memory, coalesces every change of a batch into one write
 //! per user, and evicts clean entries when its byte budget is exceeded.
 //!

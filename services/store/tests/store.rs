@@ -1,5 +1,7 @@
 //! The sled store must behave exactly like the engine's in-memory store
 //! (the reference), across commits, cache eviction and reopening.
+//! Check values of the small unit tests (wake times, offsets, duplicate
+//! horizons) are derived by hand from the store's documented behaviour.
 
 use apportion_engine::journey::Rules;
 use apportion_engine::processor::{KeyedEvent, MemStore};

@@ -2,7 +2,7 @@
 //!
 //! The protobuf encoding of apportion's wire schema of record,
 //! `proto/apportion/v1/apportion.proto`, next to the JSON contract of
-//! DESIGN.md that mirrors it field by field.
+//! docs/contract.md that mirrors it field by field.
 //!
 //! ## Why it looks like this
 //! - **One validator for both encodings.** A protobuf [`pb::InputEvent`] is

@@ -1,6 +1,6 @@
 //! `markov`: removal effects in an absorbing Markov chain fitted from closed
 //! paths (Archak et al. 2010; Anderl et al. 2016; absorbing chains as in
-//! Kemeny and Snell 1960). Definition in DESIGN.md, "Models".
+//! Kemeny and Snell 1960). Definition in docs/contract.md, "Models".
 //!
 //! ## The chain
 //! Transient states START and one per state tuple of the statistics (for

@@ -1,5 +1,5 @@
 //! `shapley`: Shapley values of the conversion-rate game (Shapley 1953; for
-//! attribution, Dalessandro et al. 2012). Definition in DESIGN.md, "Models".
+//! attribution, Dalessandro et al. 2012). Definition in docs/contract.md, "Models".
 //!
 //! ## The game
 //! `v(S) = conv(S) / (conv(S) + non(S))` for a channel set S seen as the

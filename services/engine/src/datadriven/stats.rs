@@ -240,7 +240,7 @@ impl PathStats {
     }
 
     /// Counts one closed path (channels in time order). A path with no
-    /// touch is not a path (DESIGN.md) and is ignored.
+    /// touch is not a path (docs/contract.md, "Journey rules") and is ignored.
     pub fn add_path(&mut self, channels: &[&str], converted: bool) {
         if channels.is_empty() {
             return;

@@ -1,4 +1,6 @@
 //! ParquetSink: files read back with the `parquet` crate's arrow reader.
+//! Check values: the rows that went in (round trip), and file layouts
+//! derived by hand from the sink's documented partitioning.
 
 use std::collections::BTreeMap;
 use std::fs::File;

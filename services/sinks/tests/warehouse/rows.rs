@@ -1,5 +1,5 @@
 //! Test rows: the engine's output for a few hand-written events of the demo
-//! shop (Ridgeline Outfitters), under the five rule models.
+//! shop (the example trail shop), under the five rule models.
 
 use std::collections::BTreeMap;
 
@@ -37,7 +37,7 @@ pub const CONVERSIONS: usize = 6;
 
 /// The engine's rows for [`EVENTS`].
 pub fn scenario() -> OutputBatch {
-    let p = Pseudonymizer::new(b"ridgeline-test-key");
+    let p = Pseudonymizer::new(b"example-shop-test-key");
     let r = replay_lines(EVENTS, Rules::default(), &p, false, |_| {
         MODELS
             .iter()

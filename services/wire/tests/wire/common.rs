@@ -1,4 +1,4 @@
-//! Shared fixtures: a small day of Ridgeline Outfitters events.
+//! Shared fixtures: a small day of events of the example trail shop.
 
 use apportion_engine::credit::PathRow;
 use apportion_engine::datadriven::{MarkovModel, PathStats, ShapleyModel};

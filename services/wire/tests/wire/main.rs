@@ -10,7 +10,7 @@
 //! - the serde field names of the engine's / sinks' row types for the
 //!   schema-in-step checks.
 //!
-//! Events are demo data of the project's own scenario (Ridgeline Outfitters).
+//! Events are demo data of the project's own scenario (the example trail shop).
 
 mod common;
 mod encoding;

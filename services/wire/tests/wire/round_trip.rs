@@ -1,4 +1,5 @@
 //! encode then decode gives back the original row.
+//! Check values: the rows themselves (a round trip needs no other source).
 
 use apportion_engine::replay::replay_lines;
 use apportion_engine::{CreditRow, PathRow, Pseudonymizer, Rules};
@@ -14,7 +15,7 @@ use crate::schema::{empty_credit, empty_dead_letter, empty_path, full_credit, fu
 
 #[test]
 fn rows_of_a_real_replay_round_trip() {
-    let p = Pseudonymizer::new(b"ridgeline-demo-key");
+    let p = Pseudonymizer::new(b"example-shop-demo-key");
     let r = replay_lines(VALID, Rules::default(), &p, true, all_models);
     assert!(r.rows.len() > 30 && r.paths.len() > 3, "{} rows, {} paths", r.rows.len(), r.paths.len());
     for row in &r.rows {

@@ -11,7 +11,7 @@ use prost::Message;
 
 use crate::common::{all_models, bytes, VALID};
 
-/// Lines that break one rule each of DESIGN.md "Input events", with the
+/// Lines that break one rule each of docs/contract.md "Input events", with the
 /// reason that rule names (RejectReason docs). Every one has a protobuf
 /// counterpart.
 fn invalid_lines() -> Vec<(String, RejectReason)> {
@@ -159,7 +159,7 @@ fn protobuf_only_inputs_map_to_the_contract_reasons() {
     assert_eq!(decode(&m).unwrap_err().reason, RejectReason::InvalidInteraction);
 
     // Non-finite values cannot be written in JSON; the contract requires
-    // "finite, >= 0" (DESIGN.md), so they are invalid_value, with the same
+    // "finite, >= 0" (docs/contract.md, "Input events"), so they are invalid_value, with the same
     // detail as a negative JSON value.
     let negative =
         parse_event(br#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":0,"value":-1}"#).unwrap_err();
@@ -257,7 +257,7 @@ fn replay_events(
 fn same_events_in_either_encoding_give_identical_credit() {
     let lines = all_lines();
     let refs: Vec<&str> = lines.iter().map(String::as_str).collect();
-    let p = Pseudonymizer::new(b"ridgeline-demo-key");
+    let p = Pseudonymizer::new(b"example-shop-demo-key");
 
     // JSON: the engine's own replay, two passes (data-driven models fitted
     // on the first pass's paths).

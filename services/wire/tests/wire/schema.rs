@@ -1,5 +1,7 @@
 //! The .proto and the serde types stay in step, and field numbers never
 //! change.
+//! Check values: the field numbers of proto/apportion/v1/apportion.proto as
+//! first published, and the serde field order of the row types.
 
 use std::fmt;
 
@@ -151,7 +153,7 @@ pub fn full_dead_letter() -> DeadLetter {
     DeadLetter {
         reason: "invalid_currency".into(),
         detail: "field `currency` must be an ISO 4217 code of three capital letters, got \"eur\"".into(),
-        source: "ridgeline.events".into(),
+        source: "shop.events".into(),
         partition: Some(3),
         offset: Some(4_200_000_000_123),
         event_id: Some("c-912".into()),
@@ -180,7 +182,7 @@ fn dead_letter_message_matches_serde_type() {
 
 #[test]
 fn input_event_covers_every_contract_field() {
-    // The input fields of DESIGN.md, "Input events (contract)".
+    // The input fields of docs/contract.md, "Input events".
     const CONTRACT: [&str; 10] =
         ["type", "event_id", "user_id", "timestamp", "channel", "campaign", "interaction", "goal", "value", "currency"];
     let file = schema_file();
