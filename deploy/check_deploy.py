@@ -413,7 +413,7 @@ def default_config_keys(text: str) -> dict:
 def check_service_config(repo: Path, binary: Path, cfg: dict | None, cm_text: str | None) -> None:
     """The example configs against the service's own config schema: with the
     built binary, `apportion --config FILE config` must accept them; without
-    it, every key must appear in services/apportion/src/default_config.toml
+    it, every key must appear in services/serve/src/default_config.toml
     (the file `config --print-default` prints)."""
     if cfg is None:
         return
@@ -433,7 +433,7 @@ def check_service_config(repo: Path, binary: Path, cfg: dict | None, cm_text: st
                 check(r.returncode == 0, f"{name}: accepted by `apportion --config FILE config` ({binary})",
                       (r.stdout + r.stderr).strip())
             return
-        default_file = repo / "services" / "apportion" / "src" / "default_config.toml"
+        default_file = repo / "services" / "serve" / "src" / "default_config.toml"
         if not default_file.is_file():
             print(f"  skip {binary} not built and {default_file} missing: config not compared with the service")
             return
@@ -451,7 +451,7 @@ def check_service_config(repo: Path, binary: Path, cfg: dict | None, cm_text: st
                         walk(v, theirs[k], f"{prefix}{k}.")
 
             walk(tomllib.loads(path.read_text()), default, "")
-            check(not extra, f"{name}: every key is in services/apportion/src/default_config.toml", str(extra))
+            check(not extra, f"{name}: every key is in services/serve/src/default_config.toml", str(extra))
     finally:
         if tmp is not None:
             Path(tmp.name).unlink()

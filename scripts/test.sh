@@ -39,8 +39,15 @@ if [[ -z "${SKIP_SERVERS:-}" ]]; then
   export APPORTION_REQUIRE_SERVERS=1
 fi
 
+echo "== format and lints"
+if ! cargo fmt --version >/dev/null 2>&1 || ! cargo clippy --version >/dev/null 2>&1; then
+  rustup component add rustfmt clippy
+fi
+cargo fmt --all -- --check
+cargo clippy --workspace --all-targets --locked -- -D warnings 2>&1
+
 echo "== cargo test"
-cargo test --workspace --release --no-fail-fast 2>&1
+cargo test --workspace --release --locked --no-fail-fast 2>&1
 
 if [[ -z "${SKIP_SERVERS:-}" ]]; then
   echo "== deploy checks"

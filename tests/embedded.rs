@@ -39,7 +39,16 @@ fn read_rows(dir: &std::path::Path, stem: &str) -> Vec<Value> {
         .collect();
     files.sort();
     assert!(files.iter().all(|f| !f.to_string_lossy().ends_with(".partial")), "files sealed at shutdown: {files:?}");
-    files.iter().flat_map(|f| std::fs::read_to_string(f).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect::<Vec<Value>>()).collect()
+    files
+        .iter()
+        .flat_map(|f| {
+            std::fs::read_to_string(f)
+                .unwrap()
+                .lines()
+                .map(|l| serde_json::from_str(l).unwrap())
+                .collect::<Vec<Value>>()
+        })
+        .collect()
 }
 
 /// Events posted in time order with zero lateness are credited exactly as
@@ -87,11 +96,14 @@ fn http_ingest_reports_bad_lines() {
     let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
     s.wait_ready(Duration::from_secs(30));
     let body = concat!(
-        r#"{"type":"touch","event_id":"a","user_id":"trail-runner-7","timestamp":"2026-06-01T10:00:00Z","channel":"email"}"#, "\n",
+        r#"{"type":"touch","event_id":"a","user_id":"trail-runner-7","timestamp":"2026-06-01T10:00:00Z","channel":"email"}"#,
+        "\n",
         "not json\n",
         "\n",
-        r#"{"type":"conversion","event_id":"b","user_id":"trail-runner-7","timestamp":"2026-06-01T11:00:00Z","currency":"eur"}"#, "\n",
-        r#"{"type":"conversion","event_id":"c","user_id":"trail-runner-7","timestamp":"2026-06-01T12:00:00Z","value":12}"#, "\n",
+        r#"{"type":"conversion","event_id":"b","user_id":"trail-runner-7","timestamp":"2026-06-01T11:00:00Z","currency":"eur"}"#,
+        "\n",
+        r#"{"type":"conversion","event_id":"c","user_id":"trail-runner-7","timestamp":"2026-06-01T12:00:00Z","value":12}"#,
+        "\n",
     );
     let (status, reply) = http(ingest, "POST", "/v1/events", body.as_bytes()).unwrap();
     assert_eq!(status, 400, "{reply}");
@@ -121,7 +133,26 @@ fn http_ingest_reports_bad_lines() {
 fn serve_requires_a_key() {
     let dir = tempfile::tempdir().unwrap();
     let cfg = embedded_config(dir.path(), free_port(), free_port(), "");
-    let o = std::process::Command::new(bin()).arg("--config").arg(&cfg).arg("serve").env_remove("APPORTION_PSEUDONYM_KEY").output().unwrap();
+    let o = apportion().arg("--config").arg(&cfg).arg("serve").output().unwrap();
     assert!(!o.status.success());
     assert!(String::from_utf8_lossy(&o.stderr).contains("APPORTION_PSEUDONYM_KEY"));
+}
+
+/// An invalid `log.level` stops `serve` at start with a clear error naming
+/// the value, instead of quietly logging at `info`.
+#[test]
+fn invalid_log_level_is_an_error() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = embedded_config(dir.path(), free_port(), free_port(), "");
+    let o = apportion()
+        .arg("--config")
+        .arg(&cfg)
+        .arg("serve")
+        .env("APPORTION_PSEUDONYM_KEY", KEY)
+        .env("APPORTION_LOG_LEVEL", "apportion=loud")
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    assert!(err.contains("log.level") && err.contains("apportion=loud"), "{err}");
 }

@@ -48,7 +48,8 @@ fn streaming_equals_replay() {
     let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, true, "");
     let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
     s.wait_ready(Duration::from_secs(60));
-    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| rows.len() >= want.len());
+    let got =
+        consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| rows.len() >= want.len());
     assert_eq!(got.len(), want.len(), "log: {}", std::fs::read_to_string(&s.log).unwrap());
     assert_eq!(canonical(&got), canonical(&want));
     assert_eq!(s.signal("TERM").code(), Some(0));
@@ -144,7 +145,8 @@ fn repartition_gives_the_same_credit() {
     // Partitions are read in any interleaving: a lateness longer than the
     // scenario keeps every event on time.
     let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, false, "");
-    let text = std::fs::read_to_string(&cfg).unwrap().replace("allowed_lateness = \"2s\"", "allowed_lateness = \"30d\"");
+    let text =
+        std::fs::read_to_string(&cfg).unwrap().replace("allowed_lateness = \"2s\"", "allowed_lateness = \"30d\"");
     std::fs::write(&cfg, text).unwrap();
     let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
     s.wait_ready(Duration::from_secs(60));
@@ -161,7 +163,8 @@ fn repartition_gives_the_same_credit() {
         })
         .collect();
     produce(&brokers, &format!("{prefix}-events"), &sentinels);
-    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| rows.len() >= want.len());
+    let got =
+        consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| rows.len() >= want.len());
     assert_eq!(canonical(&got), canonical(&want), "log: {}", std::fs::read_to_string(&s.log).unwrap());
     assert_eq!(s.signal("TERM").code(), Some(0));
 }
@@ -197,14 +200,28 @@ fn bad_messages_go_to_the_dead_letter_topic() {
     let t = START;
     let good1 = format!(r#"{{"type":"touch","event_id":"g1","user_id":"u1","timestamp":{t},"channel":"email"}}"#);
     let good2 = format!(r#"{{"type":"conversion","event_id":"g2","user_id":"u1","timestamp":{},"value":5}}"#, t + 1000);
-    let big = format!(r#"{{"type":"touch","event_id":"big","user_id":"u2","timestamp":{t},"channel":"{}"}}"#, "x".repeat(2 << 20));
-    let far = format!(r#"{{"type":"touch","event_id":"later","user_id":"u9","timestamp":{},"channel":"email"}}"#, t + 60_000);
+    let big = format!(
+        r#"{{"type":"touch","event_id":"big","user_id":"u2","timestamp":{t},"channel":"{}"}}"#,
+        "x".repeat(2 << 20)
+    );
+    let far =
+        format!(r#"{{"type":"touch","event_id":"later","user_id":"u9","timestamp":{},"channel":"email"}}"#, t + 60_000);
     let msgs: Vec<(Option<String>, Vec<u8>, Option<i32>)> = vec![
         (None, good1.into_bytes(), Some(0)),
         (None, b"this is not json".to_vec(), Some(0)),
         (None, format!(r#"{{"type":"touch","user_id":"u3","timestamp":{t},"channel":"email"}}"#).into_bytes(), Some(0)),
-        (None, format!(r#"{{"type":"touch","event_id":"x4","user_id":"u4","timestamp":"soon","channel":"email"}}"#).into_bytes(), Some(0)),
-        (None, format!(r#"{{"type":"conversion","event_id":"x5","user_id":"u5","timestamp":{t},"value":"ten"}}"#).into_bytes(), Some(0)),
+        (
+            None,
+            r#"{"type":"touch","event_id":"x4","user_id":"u4","timestamp":"soon","channel":"email"}"#.to_string()
+                .into_bytes(),
+            Some(0),
+        ),
+        (
+            None,
+            format!(r#"{{"type":"conversion","event_id":"x5","user_id":"u5","timestamp":{t},"value":"ten"}}"#)
+                .into_bytes(),
+            Some(0),
+        ),
         (None, big.into_bytes(), Some(0)),
         (None, good2.into_bytes(), Some(0)),
         (None, far.into_bytes(), Some(0)),
@@ -251,9 +268,27 @@ fn idle_partition_still_expires_journeys() {
     create_topics(&brokers, &[&format!("{prefix}-events")], 2, &[]);
     let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64;
     let msgs = vec![
-        (None, format!(r#"{{"type":"touch","event_id":"a1","user_id":"ua","timestamp":{now},"channel":"email"}}"#).into_bytes(), Some(0)),
-        (None, format!(r#"{{"type":"touch","event_id":"a2","user_id":"ua","timestamp":{},"channel":"social"}}"#, now + 100).into_bytes(), Some(0)),
-        (None, format!(r#"{{"type":"touch","event_id":"b1","user_id":"ub","timestamp":{now},"channel":"video"}}"#).into_bytes(), Some(1)),
+        (
+            None,
+            format!(r#"{{"type":"touch","event_id":"a1","user_id":"ua","timestamp":{now},"channel":"email"}}"#)
+                .into_bytes(),
+            Some(0),
+        ),
+        (
+            None,
+            format!(
+                r#"{{"type":"touch","event_id":"a2","user_id":"ua","timestamp":{},"channel":"social"}}"#,
+                now + 100
+            )
+            .into_bytes(),
+            Some(0),
+        ),
+        (
+            None,
+            format!(r#"{{"type":"touch","event_id":"b1","user_id":"ub","timestamp":{now},"channel":"video"}}"#)
+                .into_bytes(),
+            Some(1),
+        ),
     ];
     produce(&brokers, &format!("{prefix}-events"), &msgs);
     let admin = free_port();
@@ -303,22 +338,74 @@ fn protobuf_topics_give_the_same_credit() {
     std::fs::write(&cfg, text).unwrap();
     let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
     s.wait_ready(Duration::from_secs(60));
-    let decode = |b: &[u8]| serde_json::to_value(apportion_wire::decode_credit_protobuf(b).expect("protobuf credit row")).unwrap();
-    let got = consume_until_with(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), decode, |rows| rows.len() >= want.len());
+    let decode = |b: &[u8]| {
+        serde_json::to_value(apportion_wire::decode_credit_protobuf(b).expect("protobuf credit row")).unwrap()
+    };
+    let got = consume_until_with(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), decode, |rows| {
+        rows.len() >= want.len()
+    });
     let (g, w) = (canonical(&got), canonical(&want));
     let only_got: Vec<&String> = g.iter().filter(|r| !w.contains(r)).take(2).collect();
     let only_want: Vec<&String> = w.iter().filter(|r| !g.contains(r)).take(2).collect();
-    assert!(only_got.is_empty() && only_want.is_empty() && g.len() == w.len(), "only in stream: {only_got:?}\nonly in replay: {only_want:?}");
+    assert!(
+        only_got.is_empty() && only_want.is_empty() && g.len() == w.len(),
+        "only in stream: {only_got:?}\nonly in replay: {only_want:?}"
+    );
     let dead = consume_until_with(
         &brokers,
         &format!("{prefix}-dead"),
         Duration::from_secs(30),
-        |b| serde_json::to_value(apportion_wire::decode_dead_letter_protobuf(b).expect("protobuf dead letter")).unwrap(),
+        |b| {
+            serde_json::to_value(apportion_wire::decode_dead_letter_protobuf(b).expect("protobuf dead letter")).unwrap()
+        },
         |r| !r.is_empty(),
     );
     assert_eq!(dead.len(), 1);
     // Undecodable bytes: rejected with a contract reason, not a crash.
     let reason = dead[0]["reason"].as_str().unwrap();
     assert!(["invalid_json", "missing_type"].contains(&reason), "{reason}");
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
+
+/// The repartition stage (input not keyed by user) writes its dead letters
+/// in the configured output format, as the main stage does (the contract's
+/// "Dead letters" in either encoding).
+#[test]
+fn repartition_dead_letters_use_the_output_format() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("rpdl");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 1, &[]);
+    create_topics(&brokers, &[&format!("{prefix}-repart")], 1, &[]);
+    let t = START;
+    let bad = format!(r#"{{"type":"conversion","event_id":"x1","user_id":"u1","timestamp":{t},"currency":"eur"}}"#);
+    produce(&brokers, &format!("{prefix}-events"), &[(None, bad.into_bytes(), Some(0))]);
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, false, "");
+    let text = std::fs::read_to_string(&cfg)
+        .unwrap()
+        .replace("input_keyed_by_user = false", "input_keyed_by_user = false\noutput_format = \"protobuf\"");
+    std::fs::write(&cfg, text).unwrap();
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let dead = consume_until_with(
+        &brokers,
+        &format!("{prefix}-dead"),
+        Duration::from_secs(60),
+        |b| {
+            serde_json::to_value(apportion_wire::decode_dead_letter_protobuf(b).expect("a protobuf dead letter"))
+                .unwrap()
+        },
+        |r| !r.is_empty(),
+    );
+    assert_eq!(dead.len(), 1, "log: {}", std::fs::read_to_string(&s.log).unwrap());
+    assert_eq!(dead[0]["reason"], "invalid_currency");
+    assert_eq!(dead[0]["source"], format!("{prefix}-events"));
+    assert_eq!(dead[0]["event_id"], "x1");
+    let (_, metrics) = s.get("/metrics").unwrap();
+    assert!(
+        metrics.contains("apportion_events_consumed_total{outcome=\"rejected\",type=\"conversion\"} 1"),
+        "the rejected event is counted under its kind: {metrics}"
+    );
     assert_eq!(s.signal("TERM").code(), Some(0));
 }

@@ -34,8 +34,10 @@ fn promtool_accepts_the_exposition() {
     let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
     s.wait_ready(Duration::from_secs(30));
     let body = concat!(
-        r#"{"type":"touch","event_id":"a","user_id":"u","timestamp":"2026-06-01T10:00:00Z","channel":"email"}"#, "\n",
-        r#"{"type":"conversion","event_id":"b","user_id":"u","timestamp":"2026-06-01T11:00:00Z"}"#, "\n",
+        r#"{"type":"touch","event_id":"a","user_id":"u","timestamp":"2026-06-01T10:00:00Z","channel":"email"}"#,
+        "\n",
+        r#"{"type":"conversion","event_id":"b","user_id":"u","timestamp":"2026-06-01T11:00:00Z"}"#,
+        "\n",
         "bad\n",
     );
     http(ingest, "POST", "/v1/events", body.as_bytes()).unwrap();
@@ -52,14 +54,29 @@ fn promtool_accepts_the_exposition() {
         std::thread::sleep(Duration::from_millis(100));
     };
     assert!(text.contains(want), "{text}");
-    let mut p = Command::new(promtool).args(["check", "metrics"]).stdin(Stdio::piped()).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().unwrap();
+    let mut p = Command::new(promtool)
+        .args(["check", "metrics"])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
     p.stdin.take().unwrap().write_all(text.as_bytes()).unwrap();
     let o = p.wait_with_output().unwrap();
     let report = format!("{}{}", String::from_utf8_lossy(&o.stdout), String::from_utf8_lossy(&o.stderr));
     assert!(o.status.success() && report.trim().is_empty(), "promtool check metrics: {report}");
-    let (_, models) = s.get("/v1/models").unwrap();
-    let v: serde_json::Value = serde_json::from_str(&models).unwrap();
-    let markov = v["models"].as_array().unwrap().iter().find(|m| m["model"] == "markov").expect("markov listed").clone();
+    // The refit (every second here) picks up the closed path: wait for it.
+    let deadline = std::time::Instant::now() + Duration::from_secs(30);
+    let (models, v) = loop {
+        let (_, models) = s.get("/v1/models").unwrap();
+        let v: serde_json::Value = serde_json::from_str(&models).unwrap();
+        if v["paths"] == 1 || std::time::Instant::now() > deadline {
+            break (models, v);
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    };
+    let markov =
+        v["models"].as_array().unwrap().iter().find(|m| m["model"] == "markov").expect("markov listed").clone();
     // The fitted weights: one converting path email -> removal effect 1
     // (derived by hand from the definition, docs/contract.md "Models": the
     // chain START -> email -> CONVERSION has P = 1, and without email

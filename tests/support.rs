@@ -48,6 +48,19 @@ pub fn bin() -> PathBuf {
     b
 }
 
+/// A command running the `apportion` binary with none of the developer's
+/// `APPORTION_*` variables (so that a configuration in the developer's shell
+/// cannot change what a test sees); tests set what they need.
+pub fn apportion() -> Command {
+    let mut c = Command::new(bin());
+    for (k, _) in std::env::vars_os() {
+        if k.to_string_lossy().starts_with("APPORTION_") {
+            c.env_remove(k);
+        }
+    }
+    c
+}
+
 /// A unique name for topics and groups of one test.
 pub fn unique(prefix: &str) -> String {
     let t = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_nanos();
@@ -204,7 +217,7 @@ impl Serve {
     /// Starts `apportion serve --config cfg` with the test key.
     pub fn start(cfg: &Path, admin: u16, log: &Path) -> Serve {
         let f = std::fs::OpenOptions::new().create(true).append(true).open(log).unwrap();
-        let child = Command::new(bin())
+        let child = apportion()
             .arg("--config")
             .arg(cfg)
             .arg("serve")
@@ -284,7 +297,7 @@ pub fn http(port: u16, method: &str, path: &str, body: &[u8]) -> Option<(u16, St
 pub fn replay(input: &Path, extra: &[&str]) -> Vec<Value> {
     let dir = tempfile::tempdir().unwrap();
     let out = dir.path().join("credit.ndjson");
-    let o = Command::new(bin())
+    let o = apportion()
         .args(["replay", "--quiet", "--input"])
         .arg(input)
         .arg("--output")

@@ -18,7 +18,7 @@
 use std::collections::{BTreeMap, BTreeSet};
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
-use std::process::{Command, Stdio};
+use std::process::Stdio;
 use std::sync::mpsc;
 use std::time::{Duration, Instant};
 
@@ -63,7 +63,7 @@ fn postgres_section(schema: &str, policy: &str, url_line: &str) -> String {
 /// Like `Serve::start`, with extra environment variables.
 fn start(cfg: &Path, admin: u16, log: &Path, env: &[(&str, &str)]) -> Serve {
     let f = std::fs::OpenOptions::new().create(true).append(true).open(log).unwrap();
-    let mut cmd = Command::new(bin());
+    let mut cmd = apportion();
     cmd.arg("--config").arg(cfg).arg("serve").env("APPORTION_PSEUDONYM_KEY", KEY).env("APPORTION_LOG_FORMAT", "text");
     for (k, v) in env {
         cmd.env(k, v);
@@ -107,7 +107,13 @@ fn ndjson_rows(dir: &Path, stem: &str) -> Vec<Value> {
     files.sort();
     files
         .iter()
-        .flat_map(|f| std::fs::read_to_string(f).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect::<Vec<Value>>())
+        .flat_map(|f| {
+            std::fs::read_to_string(f)
+                .unwrap()
+                .lines()
+                .map(|l| serde_json::from_str(l).unwrap())
+                .collect::<Vec<Value>>()
+        })
         .collect()
 }
 
@@ -214,8 +220,13 @@ fn parquet_rows(dir: &Path, table: &str, id_column: &str) -> Vec<(String, String
             let f = f.unwrap().path();
             let fname = f.file_name().unwrap().to_string_lossy().into_owned();
             assert!(fname.starts_with("part-") && fname.ends_with(".parquet"), "unexpected file {}", f.display());
-            let declared = SerializedFileReader::new(std::fs::File::open(&f).unwrap()).unwrap().metadata().file_metadata().num_rows();
-            let reader = ParquetRecordBatchReaderBuilder::try_new(std::fs::File::open(&f).unwrap()).unwrap().build().unwrap();
+            let declared = SerializedFileReader::new(std::fs::File::open(&f).unwrap())
+                .unwrap()
+                .metadata()
+                .file_metadata()
+                .num_rows();
+            let reader =
+                ParquetRecordBatchReaderBuilder::try_new(std::fs::File::open(&f).unwrap()).unwrap().build().unwrap();
             let mut n = 0;
             for b in reader {
                 let b = b.unwrap();
@@ -242,7 +253,8 @@ fn assert_parquet_matches(dir: &Path, rows: &[Value], table: &str, id: &str, ts:
     for (date, rid) in &got {
         assert_eq!(want.get(rid), Some(date), "{table} row {rid} in partition date={date}");
     }
-    let staged: Vec<_> = walk(&dir.join("_staging")).into_iter().filter(|p| p.extension().is_some_and(|e| e == "parquet")).collect();
+    let staged: Vec<_> =
+        walk(&dir.join("_staging")).into_iter().filter(|p| p.extension().is_some_and(|e| e == "parquet")).collect();
     assert!(staged.is_empty(), "segments left in staging after shutdown: {staged:?}");
 }
 
@@ -334,7 +346,12 @@ fn postgres_and_parquet_hold_the_rows_of_the_files() {
     assert_eq!(bad_sums(&mut c, &schema), vec![], "conversions whose credit does not sum to 1");
     assert_credit_matches(&mut c, &schema, &credit);
     let per_model = c
-        .query(&format!("SELECT model, count(DISTINCT conversion_id) FROM \"{schema}\".credit GROUP BY model ORDER BY model"), &[])
+        .query(
+            &format!(
+                "SELECT model, count(DISTINCT conversion_id) FROM \"{schema}\".credit GROUP BY model ORDER BY model"
+            ),
+            &[],
+        )
         .unwrap();
     assert_eq!(per_model.len(), 7, "one group per configured model");
     for r in &per_model {
@@ -352,7 +369,15 @@ fn postgres_and_parquet_hold_the_rows_of_the_files() {
     // detection) and fresh files; the same schema.
     let (admin, ingest) = (free_port(), free_port());
     let out2 = dir.path().join("out2");
-    let cfg = config(dir.path(), "run2.toml", admin, ingest, &dir.path().join("data2"), &out2, &postgres_section(&schema, "pause", ""));
+    let cfg = config(
+        dir.path(),
+        "run2.toml",
+        admin,
+        ingest,
+        &dir.path().join("data2"),
+        &out2,
+        &postgres_section(&schema, "pause", ""),
+    );
     let mut s = start(&cfg, admin, &dir.path().join("run2.log"), &[("APPORTION_POSTGRES_URL", &url)]);
     s.wait_ready(Duration::from_secs(60));
     post_all(ingest, &evs);
@@ -360,8 +385,16 @@ fn postgres_and_parquet_hold_the_rows_of_the_files() {
     assert_eq!(s.signal("TERM").code(), Some(0), "{}", log_of(&s));
     let again = ndjson_rows(&out2, "credit");
     assert_eq!(ids(&again, "credit_id"), ids(&credit, "credit_id"), "the second run re-delivered the same rows");
-    assert_eq!(count(&mut c, &format!("SELECT count(*) FROM \"{schema}\".credit")), credit.len() as i64, "re-delivery added rows");
-    assert_eq!(count(&mut c, &format!("SELECT count(*) FROM \"{schema}\".paths")), paths.len() as i64, "re-delivery added paths");
+    assert_eq!(
+        count(&mut c, &format!("SELECT count(*) FROM \"{schema}\".credit")),
+        credit.len() as i64,
+        "re-delivery added rows"
+    );
+    assert_eq!(
+        count(&mut c, &format!("SELECT count(*) FROM \"{schema}\".paths")),
+        paths.len() as i64,
+        "re-delivery added paths"
+    );
     assert_eq!(bad_sums(&mut c, &schema), vec![]);
     c.batch_execute(&format!("DROP SCHEMA \"{schema}\" CASCADE")).unwrap();
 }
@@ -447,7 +480,8 @@ fn continue_spools_while_postgres_is_down_and_replays_later() {
     let spool = data.join("postgres-spool");
     let (admin, ingest) = (free_port(), free_port());
     let down = format!("url = \"{}\"", closed_port_url());
-    let cfg = config(dir.path(), "down.toml", admin, ingest, &data, &out, &postgres_section(&schema, "continue", &down));
+    let cfg =
+        config(dir.path(), "down.toml", admin, ingest, &data, &out, &postgres_section(&schema, "continue", &down));
     let mut s = start(&cfg, admin, &dir.path().join("down.log"), &[]);
     s.wait_ready(Duration::from_secs(60));
     post_all(ingest, &evs);
@@ -503,6 +537,9 @@ fn continue_spools_while_postgres_is_down_and_replays_later() {
     let mut c = pg(&url);
     assert_eq!(bad_sums(&mut c, &schema), vec![]);
     assert_credit_matches(&mut c, &schema, &credit);
-    assert_eq!(column(&mut c, &format!("SELECT path_id FROM \"{schema}\".paths")), ids(&ndjson_rows(&out, "paths"), "path_id"));
+    assert_eq!(
+        column(&mut c, &format!("SELECT path_id FROM \"{schema}\".paths")),
+        ids(&ndjson_rows(&out, "paths"), "path_id")
+    );
     c.batch_execute(&format!("DROP SCHEMA \"{schema}\" CASCADE")).unwrap();
 }

@@ -248,7 +248,7 @@ pub fn generate<W: Write>(scenario: &Scenario, opts: &GenOptions, out: W) -> Res
 #[cfg(test)]
 mod tests {
     use super::*;
-    use apportion_engine::parse_event;
+    use apportion_engine::contract::parse_event;
 
     fn gen(opts: &GenOptions) -> (Vec<u8>, GenSummary) {
         let mut buf = Vec::new();

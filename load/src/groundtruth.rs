@@ -17,11 +17,9 @@ use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::Command;
 
-use apportion_engine::credit::PathRow;
-use apportion_engine::datadriven::{MarkovModel, PathStats, ShapleyModel};
-use apportion_engine::registry::{rule_model, RuleParams};
+use apportion_engine::contract::UNATTRIBUTED;
 use apportion_engine::replay::replay_lines;
-use apportion_engine::{Model, Pseudonymizer, Rules, UNATTRIBUTED};
+use apportion_engine::{ModelId, ModelPlan, Pseudonymizer, Rules};
 use serde::{Deserialize, Serialize};
 
 use crate::simulate::Truth;
@@ -29,7 +27,8 @@ use crate::stats::{mean_sd, spearman};
 use crate::LoadError;
 
 /// Every model of the contract, in its order.
-pub const ALL_MODELS: [&str; 7] = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped", "shapley", "markov"];
+pub const ALL_MODELS: [&str; 7] =
+    ["last_touch", "first_touch", "linear", "time_decay", "u_shaped", "shapley", "markov"];
 
 /// Key given to the pseudonymizer (credit does not depend on it).
 pub const LOAD_PSEUDONYM_KEY: &str = "apportion-load-simulation-key";
@@ -90,42 +89,28 @@ impl CreditTotals {
     }
 }
 
-/// Builds the named models; data-driven ones are fitted on `paths`.
-pub fn build_models(names: &[&str], paths: &[PathRow]) -> Vec<Box<dyn Model>> {
-    let mut stats = PathStats::new(1);
-    for p in paths {
-        let chans: Vec<&str> = p.channels.iter().map(String::as_str).collect();
-        stats.add_path(&chans, p.converted);
-    }
-    let params = RuleParams::default();
-    names
-        .iter()
-        .map(|&n| -> Box<dyn Model> {
-            match n {
-                "shapley" => Box::new(ShapleyModel::fit(&stats)),
-                "markov" => Box::new(MarkovModel::fit(&stats)),
-                other => rule_model(other, &params).unwrap_or_else(|| panic!("unknown model {other:?}")),
-            }
-        })
-        .collect()
-}
-
 /// Credits NDJSON lines in process with the engine's replay loop (default
 /// journey rules; two passes when a data-driven model is listed).
 pub fn credit_in_process(lines: &[&str], models: &[&str]) -> CreditTotals {
-    let two_pass = models.iter().any(|m| *m == "shapley" || *m == "markov");
+    let ids = models.iter().map(|m| ModelId::parse(m).unwrap_or_else(|e| panic!("{e}"))).collect();
+    let plan = ModelPlan { ids, ..ModelPlan::rules() };
     let pseudo = Pseudonymizer::new(LOAD_PSEUDONYM_KEY.as_bytes());
-    let r = replay_lines(lines, Rules::default(), &pseudo, two_pass, |paths| build_models(models, paths));
+    let r = replay_lines(lines, Rules::default(), &pseudo, &plan);
     let mut t = CreditTotals::default();
     for row in &r.rows {
-        t.add(&row.model, &row.channel, row.credit, row.position);
+        t.add(row.model.as_str(), &row.channel, row.credit, row.position);
     }
     t
 }
 
 /// Credits an events file with `apportion replay` (`bin`), writing the
 /// credit rows into `workdir`, and adds them up.
-pub fn credit_with_binary(bin: &Path, events: &Path, workdir: &Path, models: &[&str]) -> Result<CreditTotals, LoadError> {
+pub fn credit_with_binary(
+    bin: &Path,
+    events: &Path,
+    workdir: &Path,
+    models: &[&str],
+) -> Result<CreditTotals, LoadError> {
     let credit = workdir.join("credit.ndjson");
     let out = Command::new(bin)
         .arg("replay")
@@ -184,8 +169,7 @@ pub fn score(truth: &Truth, totals: &CreditTotals, models: &[&str]) -> Vec<Model
         .iter()
         .map(|&m| {
             let by_channel = totals.credit.get(m).cloned().unwrap_or_default();
-            let total: f64 =
-                by_channel.iter().filter(|(c, _)| c.as_str() != UNATTRIBUTED).map(|(_, v)| *v).sum();
+            let total: f64 = by_channel.iter().filter(|(c, _)| c.as_str() != UNATTRIBUTED).map(|(_, v)| *v).sum();
             let shares: Vec<f64> = truth
                 .channels
                 .iter()
@@ -274,7 +258,10 @@ impl Report {
             fmt_stat(&col(&|r| r.truth.events as f64), 0),
             fmt_stat(&col(&|r| r.truth.conversions as f64), 0),
             fmt_stat(&col(&|r| r.truth.conversions_without_effective_channel as f64), 0),
-            fmt_stat(&col(&|r| r.truth.conversions_without_effective_channel as f64 / r.truth.conversions.max(1) as f64), 3),
+            fmt_stat(
+                &col(&|r| r.truth.conversions_without_effective_channel as f64 / r.truth.conversions.max(1) as f64),
+                3
+            ),
             fmt_stat(&col(&|r| r.truth.expected_conversions), 1),
             fmt_stat(&col(&|r| r.truth.expected_conversions_without_marketing), 1),
         );
@@ -314,7 +301,8 @@ impl Report {
         let _ = writeln!(s, "| --- | --- | --- | --- | --- |");
         for (k, score) in first.scores.iter().enumerate() {
             let rho: Vec<f64> = self.runs.iter().filter_map(|r| r.scores[k].spearman).collect();
-            let rho_text = if rho.len() == n { fmt_stat(&rho, 3) } else { format!("undefined in {} runs", n - rho.len()) };
+            let rho_text =
+                if rho.len() == n { fmt_stat(&rho, 3) } else { format!("undefined in {} runs", n - rho.len()) };
             let _ = writeln!(
                 s,
                 "| {} | {rho_text} | {} | {} | {} |",
@@ -396,7 +384,8 @@ mod tests {
             let floor = truth.conversions_without_effective_channel as f64 / truth.conversions as f64;
             assert!(s.null_share() >= floor - 1e-9, "{name}: {} < {floor}", s.null_share());
         }
-        let report = Report { runs: vec![Run { truth, scores, cross_check_max_abs_diff: None }], method: "test".into() };
+        let report =
+            Report { runs: vec![Run { truth, scores, cross_check_max_abs_diff: None }], method: "test".into() };
         let md = report.markdown();
         for name in ALL_MODELS {
             assert_eq!(md.matches(&format!("\n| {name} |")).count(), 2, "{name} in both model tables:\n{md}");

@@ -116,7 +116,7 @@ impl<W: Write> LineWriter<W> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use apportion_engine::{parse_event, EventKind, Interaction};
+    use apportion_engine::contract::{parse_event, EventKind, Interaction};
 
     #[test]
     fn lines_parse_under_the_input_contract() {

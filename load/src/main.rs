@@ -121,7 +121,7 @@ fn groundtruth(
     models: Option<String>,
 ) -> Result<()> {
     let models: Vec<String> = match models {
-        Some(m) => apportion_engine::registry::parse_model_list(&m)?,
+        Some(m) => apportion_engine::ModelId::parse_list(&m)?.iter().map(|m| m.to_string()).collect(),
         None => ALL_MODELS.iter().map(|s| s.to_string()).collect(),
     };
     let models: Vec<&str> = models.iter().map(String::as_str).collect();
@@ -201,7 +201,8 @@ fn run(cli: Cli) -> Result<()> {
             let t = simulate(&Scenario::example_shop(), &SimOptions { days, ..SimOptions::new(users, seed) }, &mut w)?;
             w.into_inner().map_err(|e| e.into_error())?;
             if let Some(p) = truth {
-                std::fs::write(&p, serde_json::to_vec_pretty(&t)?).with_context(|| format!("writing {}", p.display()))?;
+                std::fs::write(&p, serde_json::to_vec_pretty(&t)?)
+                    .with_context(|| format!("writing {}", p.display()))?;
             }
             eprintln!(
                 "simulate: {} users, {} events ({} touches, {} conversions) in {:.2}s",

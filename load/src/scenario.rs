@@ -173,7 +173,14 @@ impl Scenario {
             currency: "USD".into(),
             goal: "purchase".into(),
             channels: vec![
-                channel("paid_search", 0.60, Mix { weight: 20.0 }, Late, 0.0, &["tents-generic", "boots-generic", "brand-terms"]),
+                channel(
+                    "paid_search",
+                    0.60,
+                    Mix { weight: 20.0 },
+                    Late,
+                    0.0,
+                    &["tents-generic", "boots-generic", "brand-terms"],
+                ),
                 channel("affiliate", 0.90, Mix { weight: 7.0 }, Late, 0.0, &["hiking-blogs", "review-sites"]),
                 channel("email", 0.35, Mix { weight: 16.0 }, Anywhere, 0.0, &["newsletter-weekly", "trail-club"]),
                 channel("video", 0.20, Mix { weight: 9.0 }, Early, 0.7, &["gear-reviews", "trail-guides"]),
@@ -242,7 +249,9 @@ impl Scenario {
         {
             return bad("journey and delay spans must be positive, ordered and fit in the 30-day lookback".into());
         }
-        if ![self.baseline_logit, self.intent_coef, self.value_log_mean, self.value_log_sd].iter().all(|x| x.is_finite())
+        if ![self.baseline_logit, self.intent_coef, self.value_log_mean, self.value_log_sd]
+            .iter()
+            .all(|x| x.is_finite())
         {
             return bad("model parameters must be finite".into());
         }
@@ -324,7 +333,16 @@ impl Scenario {
         } else {
             (0, 0)
         };
-        SimJourney { intent, base_logit: base, touches, exposed: mask, p_convert, converted, conversion_offset_ms, value_cents }
+        SimJourney {
+            intent,
+            base_logit: base,
+            touches,
+            exposed: mask,
+            p_convert,
+            converted,
+            conversion_offset_ms,
+            value_cents,
+        }
     }
 
     fn touch<R: Rng>(&self, rng: &mut R, ch: usize, u: f64, length: i64) -> SimTouch {

@@ -285,7 +285,10 @@ mod tests {
         // computed float back one unit in the last place off: compare those
         // with a tolerance, the configuration exactly.
         assert_eq!(back.scenario, scenario);
-        assert_eq!((back.seed, back.users, back.events, back.conversions), (7, 20_000, truth.events, truth.conversions));
+        assert_eq!(
+            (back.seed, back.users, back.events, back.conversions),
+            (7, 20_000, truth.events, truth.conversions)
+        );
         let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * a.abs().max(1.0);
         for (b, t) in back.channels.iter().zip(&truth.channels) {
             assert!(close(b.incremental_conversions, t.incremental_conversions));
@@ -344,7 +347,7 @@ mod tests {
         let mut touches = 0;
         let mut conversions = 0;
         for line in text.lines() {
-            let ev = apportion_engine::parse_event(line.as_bytes()).unwrap();
+            let ev = apportion_engine::contract::parse_event(line.as_bytes()).unwrap();
             match ev.kind {
                 apportion_engine::EventKind::Touch => touches += 1,
                 _ => conversions += 1,

@@ -54,7 +54,7 @@ pub fn civil_from_days(z: i64) -> (i64, u32, u32) {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use apportion_engine::time_fmt::format_ms;
+    use apportion_engine::contract::time::format_ms;
     use rand::{Rng, SeedableRng};
 
     #[test]
@@ -64,12 +64,12 @@ mod tests {
         let fixed = [
             0i64,
             -1,
-            951_782_400_000,       // 2000-02-29 (leap: divisible by 400)
-            4_107_456_000_000,     // 2100-02-28 (2100 is not a leap year)
-            4_107_542_399_999,     // 2100-02-28T23:59:59.999
-            1_772_323_200_000,     // 2026-03-01
-            253_402_300_799_999,   // 9999-12-31T23:59:59.999
-            -62_135_596_800_000,   // 0001-01-01
+            951_782_400_000,     // 2000-02-29 (leap: divisible by 400)
+            4_107_456_000_000,   // 2100-02-28 (2100 is not a leap year)
+            4_107_542_399_999,   // 2100-02-28T23:59:59.999
+            1_772_323_200_000,   // 2026-03-01
+            253_402_300_799_999, // 9999-12-31T23:59:59.999
+            -62_135_596_800_000, // 0001-01-01
         ];
         for ms in fixed {
             assert_eq!(rfc3339_ms(ms, &mut buf), format_ms(ms), "{ms}");

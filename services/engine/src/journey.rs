@@ -17,7 +17,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::event::Interaction;
+use apportion_contract::Interaction;
 
 /// Journey timing rules, all in milliseconds.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]

@@ -6,12 +6,14 @@
 //! fitted from path statistics in [`crate::datadriven`] and implement the same
 //! trait, so the credit writer treats every model alike.
 
+use apportion_contract::ModelId;
+
 use crate::journey::Touch;
 
 /// An attribution model.
 pub trait Model: Send + Sync {
-    /// The model's name as written in the contract (`last_touch`, ...).
-    fn name(&self) -> &str;
+    /// Which model of the contract this is.
+    fn id(&self) -> ModelId;
 
     /// Snapshot id for fitted models; `None` for rule models.
     fn version(&self) -> Option<&str> {
@@ -23,18 +25,13 @@ pub trait Model: Send + Sync {
     fn credit(&self, path: &[Touch], conversion_ts: i64) -> Vec<f64>;
 }
 
-/// Names of the rule models, in the contract's order.
-pub const RULE_MODELS: [&str; 5] = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped"];
-/// Names of the data-driven models.
-pub const DATA_DRIVEN_MODELS: [&str; 2] = ["shapley", "markov"];
-
 /// `last_touch`: everything to the last touch.
 #[derive(Debug, Clone, Copy, Default)]
 pub struct LastTouch;
 
 impl Model for LastTouch {
-    fn name(&self) -> &str {
-        "last_touch"
+    fn id(&self) -> ModelId {
+        ModelId::LastTouch
     }
     fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
         let mut w = vec![0.0; path.len()];
@@ -50,8 +47,8 @@ impl Model for LastTouch {
 pub struct FirstTouch;
 
 impl Model for FirstTouch {
-    fn name(&self) -> &str {
-        "first_touch"
+    fn id(&self) -> ModelId {
+        ModelId::FirstTouch
     }
     fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
         let mut w = vec![0.0; path.len()];
@@ -67,8 +64,8 @@ impl Model for FirstTouch {
 pub struct Linear;
 
 impl Model for Linear {
-    fn name(&self) -> &str {
-        "linear"
+    fn id(&self) -> ModelId {
+        ModelId::Linear
     }
     fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
         let n = path.len();
@@ -84,8 +81,8 @@ pub struct TimeDecay {
 }
 
 impl Model for TimeDecay {
-    fn name(&self) -> &str {
-        "time_decay"
+    fn id(&self) -> ModelId {
+        ModelId::TimeDecay
     }
     fn credit(&self, path: &[Touch], conversion_ts: i64) -> Vec<f64> {
         // Normalizing cancels any common factor, so weigh relative to the
@@ -114,8 +111,8 @@ impl Default for UShaped {
 }
 
 impl Model for UShaped {
-    fn name(&self) -> &str {
-        "u_shaped"
+    fn id(&self) -> ModelId {
+        ModelId::UShaped
     }
     fn credit(&self, path: &[Touch], _t: i64) -> Vec<f64> {
         let n = path.len();

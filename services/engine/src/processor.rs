@@ -13,9 +13,8 @@
 
 use std::collections::{BTreeMap, BTreeSet, HashMap};
 
-use crate::event::{Event, EventKind};
 use crate::journey::{Conversion, Journey, Outcome, Rules, Touch};
-use crate::pseudonym::UserKey;
+use apportion_contract::{Event, EventKind, UserKey};
 
 /// Persistent (or in-memory) journey state with a wake index.
 pub trait JourneyStore {
@@ -35,18 +34,18 @@ pub trait JourneyStore {
 
 /// An event ready for the journey rules: validated and pseudonymized.
 #[derive(Debug, Clone, PartialEq)]
-pub struct KeyedEvent {
+pub struct JourneyEvent {
     /// Pseudonymous user key.
     pub user_key: UserKey,
     /// Arrival sequence (input line or partition offset).
     pub seq: u64,
     /// The event, with `user_id` already cleared.
-    pub kind: KeyedKind,
+    pub kind: JourneyEventKind,
 }
 
 /// The part of an event the journey rules need.
 #[derive(Debug, Clone, PartialEq)]
-pub enum KeyedKind {
+pub enum JourneyEventKind {
     /// A touch.
     Touch(Touch),
     /// A conversion.
@@ -58,12 +57,12 @@ pub enum KeyedKind {
     },
 }
 
-impl KeyedEvent {
+impl JourneyEvent {
     /// Builds the keyed form of a validated event. The raw `user_id` is not
     /// carried over.
     pub fn from_event(ev: Event, user_key: UserKey, seq: u64) -> Self {
         let kind = match ev.kind {
-            EventKind::Touch => KeyedKind::Touch(Touch {
+            EventKind::Touch => JourneyEventKind::Touch(Touch {
                 event_id: ev.event_id,
                 ts: ev.timestamp_ms,
                 seq,
@@ -71,7 +70,7 @@ impl KeyedEvent {
                 campaign: ev.campaign,
                 interaction: ev.interaction,
             }),
-            EventKind::Conversion => KeyedKind::Conversion(Conversion {
+            EventKind::Conversion => JourneyEventKind::Conversion(Conversion {
                 event_id: ev.event_id,
                 ts: ev.timestamp_ms,
                 seq,
@@ -79,17 +78,17 @@ impl KeyedEvent {
                 value: ev.value,
                 currency: ev.currency,
             }),
-            EventKind::Erase => KeyedKind::Erase { ts: ev.timestamp_ms },
+            EventKind::Erase => JourneyEventKind::Erase { ts: ev.timestamp_ms },
         };
-        KeyedEvent { user_key, seq, kind }
+        JourneyEvent { user_key, seq, kind }
     }
 
     /// Event time.
     pub fn ts(&self) -> i64 {
         match &self.kind {
-            KeyedKind::Touch(t) => t.ts,
-            KeyedKind::Conversion(c) => c.ts,
-            KeyedKind::Erase { ts } => *ts,
+            JourneyEventKind::Touch(t) => t.ts,
+            JourneyEventKind::Conversion(c) => c.ts,
+            JourneyEventKind::Erase { ts } => *ts,
         }
     }
 }
@@ -145,15 +144,15 @@ impl Processor {
     pub fn apply<S: JourneyStore>(
         &self,
         store: &mut S,
-        event: KeyedEvent,
+        event: JourneyEvent,
         watermark: i64,
     ) -> Result<Vec<Effect>, S::Error> {
         let key = event.user_key;
         let mut j = store.load(&key)?.unwrap_or_default();
         match event.kind {
-            KeyedKind::Touch(t) => j.add_touch(t),
-            KeyedKind::Conversion(c) => j.add_conversion(c),
-            KeyedKind::Erase { .. } => {
+            JourneyEventKind::Touch(t) => j.add_touch(t),
+            JourneyEventKind::Conversion(c) => j.add_conversion(c),
+            JourneyEventKind::Erase { .. } => {
                 let effect = Effect::Erased { user_key: key, touches: j.touches.len(), conversions: j.pending.len() };
                 store.save(&key, Journey::default(), None)?;
                 return Ok(vec![effect]);

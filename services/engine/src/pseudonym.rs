@@ -4,29 +4,13 @@
 //! the key is stored, logged or written out. Without the secret key the
 //! mapping cannot be recomputed from a guessed id (unlike a plain hash).
 
+use apportion_contract::UserKey;
 use hmac::{Hmac, Mac};
 use sha2::Sha256;
 
 /// The development key used by `replay` and `demo` when none is configured.
 /// Never use it for real data: anyone can recompute keys made with it.
 pub const DEVELOPMENT_KEY: &[u8] = b"apportion-development-key-not-secret";
-
-/// A pseudonymous user key: the 32 bytes of HMAC-SHA256.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize, serde::Deserialize)]
-pub struct UserKey(pub [u8; 32]);
-
-impl UserKey {
-    /// Lower-case hex, 64 characters (the `user_key` output field).
-    pub fn to_hex(&self) -> String {
-        hex::encode(self.0)
-    }
-
-    /// Parses 64 hex characters.
-    pub fn from_hex(s: &str) -> Option<UserKey> {
-        let v = hex::decode(s).ok()?;
-        Some(UserKey(v.try_into().ok()?))
-    }
-}
 
 /// Computes user keys with a secret key.
 #[derive(Clone)]
@@ -67,12 +51,5 @@ mod tests {
             p.key_for("what do ya want for nothing?").to_hex(),
             "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
         );
-    }
-
-    #[test]
-    fn hex_round_trip() {
-        let k = Pseudonymizer::new(b"k").key_for("u");
-        assert_eq!(UserKey::from_hex(&k.to_hex()), Some(k));
-        assert_eq!(UserKey::from_hex("zz"), None);
     }
 }

@@ -1,6 +1,10 @@
-//! Builds models from their names and parameters.
+//! The one place that turns model names into models: every caller
+//! (`replay`, `serve`, `explain`, the demo, the tests) builds its models here.
 
-use crate::model::{FirstTouch, LastTouch, Linear, Model, TimeDecay, UShaped, DATA_DRIVEN_MODELS, RULE_MODELS};
+use apportion_contract::ModelId;
+
+use crate::datadriven::{MarkovModel, PathStats, ShapleyModel};
+use crate::model::{FirstTouch, LastTouch, Linear, Model, TimeDecay, UShaped};
 
 /// Parameters of the rule models.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -19,50 +23,19 @@ impl Default for RuleParams {
     }
 }
 
-/// A model name that is not known, or parameters out of range.
+/// Rule parameters out of range.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
-#[non_exhaustive]
-pub enum ModelError {
-    /// Unknown model name.
-    #[error("unknown model {0:?}: expected one of last_touch, first_touch, linear, time_decay, u_shaped, shapley, markov")]
-    Unknown(String),
-    /// A model listed twice.
-    #[error("model {0:?} is listed twice")]
-    Duplicate(String),
-    /// No model listed.
-    #[error("no model listed")]
-    Empty,
-    /// Bad parameter.
-    #[error("{0}")]
-    Param(String),
-}
-
-/// Parses a comma-separated model list, checking names and duplicates.
-pub fn parse_model_list(list: &str) -> Result<Vec<String>, ModelError> {
-    let mut out: Vec<String> = Vec::new();
-    for name in list.split(',').map(str::trim).filter(|s| !s.is_empty()) {
-        if !RULE_MODELS.contains(&name) && !DATA_DRIVEN_MODELS.contains(&name) {
-            return Err(ModelError::Unknown(name.to_string()));
-        }
-        if out.iter().any(|n| n == name) {
-            return Err(ModelError::Duplicate(name.to_string()));
-        }
-        out.push(name.to_string());
-    }
-    if out.is_empty() {
-        return Err(ModelError::Empty);
-    }
-    Ok(out)
-}
+#[error("{0}")]
+pub struct ParamError(pub String);
 
 /// Checks rule parameters.
-pub fn check_params(p: &RuleParams) -> Result<(), ModelError> {
+pub fn check_params(p: &RuleParams) -> Result<(), ParamError> {
     if p.half_life_ms <= 0 {
-        return Err(ModelError::Param("time_decay half-life must be greater than 0".into()));
+        return Err(ParamError("time_decay half-life must be greater than 0".into()));
     }
     let ok = |w: f64| w.is_finite() && (0.0..=1.0).contains(&w);
     if !ok(p.u_first) || !ok(p.u_last) || p.u_first + p.u_last > 1.0 + 1e-12 {
-        return Err(ModelError::Param(format!(
+        return Err(ParamError(format!(
             "u_shaped endpoint weights must be in [0, 1] and sum to at most 1, got first {} and last {}",
             p.u_first, p.u_last
         )));
@@ -70,14 +43,66 @@ pub fn check_params(p: &RuleParams) -> Result<(), ModelError> {
     Ok(())
 }
 
-/// Builds one rule model by name (`None` for data-driven or unknown names).
-pub fn rule_model(name: &str, p: &RuleParams) -> Option<Box<dyn Model>> {
-    Some(match name {
-        "last_touch" => Box::new(LastTouch),
-        "first_touch" => Box::new(FirstTouch),
-        "linear" => Box::new(Linear),
-        "time_decay" => Box::new(TimeDecay { half_life_ms: p.half_life_ms }),
-        "u_shaped" => Box::new(UShaped { first: p.u_first, last: p.u_last }),
-        _ => return None,
+/// Builds one rule model (`None` for the data-driven ones, which need path
+/// statistics: see [`build`]).
+pub fn rule_model(id: ModelId, p: &RuleParams) -> Option<Box<dyn Model>> {
+    Some(match id {
+        ModelId::LastTouch => Box::new(LastTouch),
+        ModelId::FirstTouch => Box::new(FirstTouch),
+        ModelId::Linear => Box::new(Linear),
+        ModelId::TimeDecay => Box::new(TimeDecay { half_life_ms: p.half_life_ms }),
+        ModelId::UShaped => Box::new(UShaped { first: p.u_first, last: p.u_last }),
+        ModelId::Shapley | ModelId::Markov => return None,
     })
+}
+
+/// Which models to run and with what parameters: everything needed to
+/// build them, with or without path statistics.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ModelPlan {
+    /// Models, in output order.
+    pub ids: Vec<ModelId>,
+    /// Rule-model parameters.
+    pub params: RuleParams,
+    /// Order of the `markov` chain (1..=4).
+    pub markov_order: usize,
+}
+
+impl ModelPlan {
+    /// The five rule models with default parameters.
+    pub fn rules() -> Self {
+        ModelPlan { ids: ModelId::RULES.to_vec(), params: RuleParams::default(), markov_order: 1 }
+    }
+
+    /// True when a model of the plan is fitted on path statistics.
+    pub fn data_driven(&self) -> bool {
+        self.ids.iter().any(|m| m.is_data_driven())
+    }
+
+    /// Empty statistics of the plan's Markov order.
+    pub fn empty_stats(&self) -> PathStats {
+        PathStats::new(self.markov_order)
+    }
+
+    /// The models, in order. The data-driven ones are fitted on `stats`;
+    /// without statistics they are fitted on none (and then credit every
+    /// conversion with their linear fallback).
+    pub fn build(&self, stats: Option<&PathStats>) -> Vec<Box<dyn Model>> {
+        let empty;
+        let stats = match stats {
+            Some(s) => s,
+            None => {
+                empty = self.empty_stats();
+                &empty
+            }
+        };
+        self.ids
+            .iter()
+            .map(|&id| match id {
+                ModelId::Shapley => Box::new(ShapleyModel::fit(stats)) as Box<dyn Model>,
+                ModelId::Markov => Box::new(MarkovModel::fit(stats)),
+                rule => rule_model(rule, &self.params).expect("a rule model"),
+            })
+            .collect()
+    }
 }

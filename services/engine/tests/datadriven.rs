@@ -506,7 +506,7 @@ fn markov_first_order_worked_example() {
     let e = model.explain_conversion(&["A", "B", "C"]);
     assert_all_close(&e.channels.iter().map(|c| c.share).collect::<Vec<_>>(), &[7.0 / 24.0, 5.0 / 24.0, 0.5], 1e-12);
     assert!(!e.fallback_linear);
-    assert_eq!(model.name(), "markov");
+    assert_eq!(model.id(), "markov");
     // Credit of A>B>C>A: A's share split over its two touches.
     let credit = model.credit(&touches(&["A", "B", "C", "A"]), 0);
     assert_all_close(&credit, &[7.0 / 48.0, 5.0 / 24.0, 0.5, 7.0 / 48.0], 1e-12);
@@ -718,8 +718,8 @@ proptest! {
         for m in &models {
             let c = m.credit(&path, 0);
             prop_assert_eq!(c.len(), path.len());
-            prop_assert!(c.iter().all(|x| *x >= 0.0 && x.is_finite()), "{}: {c:?}", m.name());
-            prop_assert!(close(c.iter().sum::<f64>(), 1.0, 1e-9), "{}: {c:?}", m.name());
+            prop_assert!(c.iter().all(|x| *x >= 0.0 && x.is_finite()), "{}: {c:?}", m.id());
+            prop_assert!(close(c.iter().sum::<f64>(), 1.0, 1e-9), "{}: {c:?}", m.id());
         }
     }
 }
@@ -822,7 +822,7 @@ fn model_names_versions_and_threads() {
     let fp = stats.fingerprint();
     let s = ShapleyModel::fit(&stats);
     let m = MarkovModel::fit(&stats);
-    assert_eq!(s.name(), "shapley");
+    assert_eq!(s.id(), "shapley");
     assert_eq!(Model::version(&s), Some(format!("shapley-{}", &fp[..16]).as_str()));
     assert_eq!(Model::version(&m), Some(format!("markov-o3-{}", &fp[..16]).as_str()));
     // Explanations print as JSON.

@@ -2,17 +2,15 @@
 //! replay loop on small hand-written inputs. Every expected value is derived
 //! by hand from those rules (the contract of this project; no outside source).
 
-use apportion_engine::registry::{rule_model, RuleParams};
+use apportion_engine::contract::RejectReason;
 use apportion_engine::replay::{replay_lines, ReplayResult};
-use apportion_engine::{Model, Pseudonymizer, RejectReason, Rules};
+use apportion_engine::{ModelId, ModelPlan, Pseudonymizer, Rules};
 
 const DAY: i64 = 86_400_000;
 
 fn run(lines: &[&str], rules: Rules) -> ReplayResult {
     let p = Pseudonymizer::new(b"test-key");
-    replay_lines(lines, rules, &p, false, |_| {
-        vec![rule_model("linear", &RuleParams::default()).unwrap()] as Vec<Box<dyn Model>>
-    })
+    replay_lines(lines, rules, &p, &ModelPlan { ids: vec![ModelId::Linear], ..ModelPlan::rules() })
 }
 
 fn touch(id: &str, user: &str, ts: i64, channel: &str) -> String {
@@ -20,7 +18,9 @@ fn touch(id: &str, user: &str, ts: i64, channel: &str) -> String {
 }
 
 fn view(id: &str, user: &str, ts: i64, channel: &str) -> String {
-    format!(r#"{{"type":"touch","event_id":"{id}","user_id":"{user}","timestamp":{ts},"channel":"{channel}","interaction":"view"}}"#)
+    format!(
+        r#"{{"type":"touch","event_id":"{id}","user_id":"{user}","timestamp":{ts},"channel":"{channel}","interaction":"view"}}"#
+    )
 }
 
 fn conv(id: &str, user: &str, ts: i64) -> String {
@@ -52,7 +52,12 @@ fn lookback_boundary_is_inclusive() {
 fn view_lookback_is_separate() {
     let rules = Rules { view_lookback_ms: DAY, ..Rules::default() };
     let t = 100 * DAY;
-    let lines = [view("v1", "u", t - 2 * DAY, "display"), view("v2", "u", t - DAY, "video"), touch("k", "u", t - 3 * DAY, "seo"), conv("c", "u", t)];
+    let lines = [
+        view("v1", "u", t - 2 * DAY, "display"),
+        view("v2", "u", t - DAY, "video"),
+        touch("k", "u", t - 3 * DAY, "seo"),
+        conv("c", "u", t),
+    ];
     let r = run(&refs(&lines), rules);
     assert_eq!(touches_of(&r, "c"), vec![Some("k".into()), Some("v2".into())]);
 }
@@ -80,7 +85,12 @@ fn expiry_is_strict() {
 fn expiry_driven_by_other_users_events() {
     let rules = Rules { expiry_ms: 10 * DAY, ..Rules::default() };
     let t = 100 * DAY;
-    let lines = [touch("a", "u1", t, "email"), touch("b", "u2", t + 11 * DAY, "seo"), touch("c", "u1", t + 12 * DAY, "seo"), conv("x", "u1", t + 13 * DAY)];
+    let lines = [
+        touch("a", "u1", t, "email"),
+        touch("b", "u2", t + 11 * DAY, "seo"),
+        touch("c", "u1", t + 12 * DAY, "seo"),
+        conv("x", "u1", t + 13 * DAY),
+    ];
     let r = run(&refs(&lines), rules);
     assert_eq!(touches_of(&r, "x"), vec![Some("c".into())]);
     // Paths: u1's expired [email] and converting [seo], u2's [seo] at the end of input.
@@ -92,12 +102,22 @@ fn expiry_driven_by_other_users_events() {
 #[test]
 fn clear_after_conversion() {
     let t = 100 * DAY;
-    let lines = [touch("a", "u", t, "email"), conv("c1", "u", t + DAY), touch("b", "u", t + 2 * DAY, "seo"), conv("c2", "u", t + 3 * DAY)];
+    let lines = [
+        touch("a", "u", t, "email"),
+        conv("c1", "u", t + DAY),
+        touch("b", "u", t + 2 * DAY, "seo"),
+        conv("c2", "u", t + 3 * DAY),
+    ];
     let r = run(&refs(&lines), Rules::default());
     assert_eq!(touches_of(&r, "c1"), vec![Some("a".into())]);
     assert_eq!(touches_of(&r, "c2"), vec![Some("b".into())]);
     // Older touches outside the lookback are dropped, not credited later.
-    let lines = [touch("old", "u", t, "email"), touch("new", "u", t + 40 * DAY, "seo"), conv("c", "u", t + 41 * DAY), conv("d", "u", t + 42 * DAY)];
+    let lines = [
+        touch("old", "u", t, "email"),
+        touch("new", "u", t + 40 * DAY, "seo"),
+        conv("c", "u", t + 41 * DAY),
+        conv("d", "u", t + 42 * DAY),
+    ];
     let r = run(&refs(&lines), Rules { expiry_ms: 60 * DAY, ..Rules::default() });
     assert_eq!(touches_of(&r, "c"), vec![Some("new".into())]);
     assert_eq!(touches_of(&r, "d"), vec![None]);
@@ -141,29 +161,48 @@ fn unsorted_input_is_sorted_by_event_time() {
 fn rfc3339_and_epoch_millis_mix() {
     // 2026-03-01T00:00:00Z is 1772323200000 ms (computed from the calendar, UTC).
     let lines = [
-        r#"{"type":"touch","event_id":"a","user_id":"u","timestamp":"2026-03-01T00:00:00Z","channel":"email"}"#.to_string(),
+        r#"{"type":"touch","event_id":"a","user_id":"u","timestamp":"2026-03-01T00:00:00Z","channel":"email"}"#
+            .to_string(),
         r#"{"type":"touch","event_id":"b","user_id":"u","timestamp":1772323200001,"channel":"seo"}"#.to_string(),
         r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":"2026-03-01T01:00:00+01:00"}"#.to_string(),
     ];
     let r = run(&refs(&lines), Rules::default());
     // The conversion at 01:00+01:00 is 00:00Z: after a, before b.
     assert_eq!(touches_of(&r, "c"), vec![Some("a".into())]);
-    assert_eq!(r.rows[0].conversion_timestamp, "2026-03-01T00:00:00.000Z");
+    assert_eq!(r.rows[0].conversion_timestamp.to_string(), "2026-03-01T00:00:00.000Z");
 }
 
 #[test]
 fn duplicates_are_dropped() {
     let t = 100 * DAY;
-    let lines = [touch("a", "u", t, "email"), touch("a", "u", t, "email"), conv("c", "u", t + 1), conv("c", "u", t + 1)];
+    let lines =
+        [touch("a", "u", t, "email"), touch("a", "u", t, "email"), conv("c", "u", t + 1), conv("c", "u", t + 1)];
     let r = run(&refs(&lines), Rules::default());
     assert_eq!(r.duplicates, 2);
     assert_eq!(touches_of(&r, "c"), vec![Some("a".into())]);
 }
 
 #[test]
+fn the_first_of_a_duplicate_in_input_order_wins() {
+    // The same event id twice at different times (contract, "Input
+    // events"): the first line is kept even though the second is earlier.
+    // Kept: touch "a" on email at t; dropped: "a" on seo at t - 1 day.
+    let t = 100 * DAY;
+    let lines = [touch("a", "u", t, "email"), touch("a", "u", t - DAY, "seo"), conv("c", "u", t + 1)];
+    let r = run(&refs(&lines), Rules::default());
+    assert_eq!(r.duplicates, 1);
+    assert_eq!(r.rows.len(), 1);
+    assert_eq!((r.rows[0].channel.as_str(), r.rows[0].touch_timestamp.unwrap().ms()), ("email", t));
+}
+
+#[test]
 fn erase_forgets_the_journey() {
     let t = 100 * DAY;
-    let lines = [touch("a", "u", t, "email"), r#"{"type":"erase","user_id":"u","timestamp":8640000001}"#.to_string(), conv("c", "u", t + 2)];
+    let lines = [
+        touch("a", "u", t, "email"),
+        r#"{"type":"erase","user_id":"u","timestamp":8640000001}"#.to_string(),
+        conv("c", "u", t + 2),
+    ];
     let r = run(&refs(&lines), Rules::default());
     assert_eq!(touches_of(&r, "c"), vec![None]);
     assert!(r.paths.is_empty());
@@ -184,16 +223,34 @@ fn each_broken_rule_is_rejected_and_the_rest_processed() {
         (r#"{"type":"touch","event_id":"x","timestamp":1,"channel":"e"}"#, RejectReason::MissingUserId),
         (r#"{"type":"touch","event_id":"x","user_id":"","timestamp":1,"channel":"e"}"#, RejectReason::InvalidUserId),
         (r#"{"type":"touch","event_id":"x","user_id":"u","channel":"e"}"#, RejectReason::MissingTimestamp),
-        (r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":"yesterday","channel":"e"}"#, RejectReason::InvalidTimestamp),
-        (r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1.5,"channel":"e"}"#, RejectReason::InvalidTimestamp),
+        (
+            r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":"yesterday","channel":"e"}"#,
+            RejectReason::InvalidTimestamp,
+        ),
+        (
+            r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1.5,"channel":"e"}"#,
+            RejectReason::InvalidTimestamp,
+        ),
         (r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1}"#, RejectReason::MissingChannel),
         (r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1,"channel":3}"#, RejectReason::InvalidChannel),
-        (r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1,"channel":"e","campaign":[]}"#, RejectReason::InvalidCampaign),
-        (r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1,"channel":"e","interaction":"hover"}"#, RejectReason::InvalidInteraction),
+        (
+            r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1,"channel":"e","campaign":[]}"#,
+            RejectReason::InvalidCampaign,
+        ),
+        (
+            r#"{"type":"touch","event_id":"x","user_id":"u","timestamp":1,"channel":"e","interaction":"hover"}"#,
+            RejectReason::InvalidInteraction,
+        ),
         (r#"{"type":"conversion","event_id":"x","user_id":"u","timestamp":1,"goal":""}"#, RejectReason::InvalidGoal),
         (r#"{"type":"conversion","event_id":"x","user_id":"u","timestamp":1,"value":-1}"#, RejectReason::InvalidValue),
-        (r#"{"type":"conversion","event_id":"x","user_id":"u","timestamp":1,"value":"12"}"#, RejectReason::InvalidValue),
-        (r#"{"type":"conversion","event_id":"x","user_id":"u","timestamp":1,"currency":"euro"}"#, RejectReason::InvalidCurrency),
+        (
+            r#"{"type":"conversion","event_id":"x","user_id":"u","timestamp":1,"value":"12"}"#,
+            RejectReason::InvalidValue,
+        ),
+        (
+            r#"{"type":"conversion","event_id":"x","user_id":"u","timestamp":1,"currency":"euro"}"#,
+            RejectReason::InvalidCurrency,
+        ),
     ];
     let mut lines: Vec<String> = vec![good[0].clone()];
     lines.extend(bad.iter().map(|(l, _)| l.to_string()));
@@ -210,7 +267,7 @@ fn each_broken_rule_is_rejected_and_the_rest_processed() {
 
 #[test]
 fn oversized_and_non_utf8_are_rejected() {
-    use apportion_engine::event::parse_event_limited;
+    use apportion_engine::contract::parse_event_limited;
     let big = format!(r#"{{"type":"touch","pad":"{}"}}"#, "x".repeat(2 << 20));
     assert_eq!(parse_event_limited(big.as_bytes(), 1 << 20).unwrap_err().reason, RejectReason::TooLarge);
     assert_eq!(parse_event_limited(b"{\"type\":\"\xff\"}", 1 << 20).unwrap_err().reason, RejectReason::InvalidUtf8);
@@ -219,9 +276,13 @@ fn oversized_and_non_utf8_are_rejected() {
 #[test]
 fn raw_user_id_never_reaches_output() {
     let t = 100 * DAY;
-    let lines = [touch("a", "alice@example.org", t, "email"), conv("c", "alice@example.org", t + 1), touch("z", "alice@example.org", t + 2, "seo")];
+    let lines = [
+        touch("a", "alice@example.org", t, "email"),
+        conv("c", "alice@example.org", t + 1),
+        touch("z", "alice@example.org", t + 2, "seo"),
+    ];
     let r = run(&refs(&lines), Rules::default());
     let text = serde_json::to_string(&(&r.rows, &r.paths)).unwrap();
     assert!(!text.contains("alice"));
-    assert_eq!(r.rows[0].user_key.len(), 64);
+    assert_eq!(serde_json::to_value(&r.rows[0]).unwrap()["user_key"].as_str().unwrap().len(), 64);
 }

@@ -7,9 +7,8 @@
 
 use apportion_engine::journey::{Conversion, Journey, Outcome, Rules, Touch};
 use apportion_engine::model::{FirstTouch, LastTouch, Linear, Model, TimeDecay, UShaped};
-use apportion_engine::registry::{rule_model, RuleParams};
 use apportion_engine::replay::replay_lines;
-use apportion_engine::{Interaction, Pseudonymizer};
+use apportion_engine::{Interaction, ModelPlan, Pseudonymizer};
 use proptest::prelude::*;
 
 const DAY: i64 = 86_400_000;
@@ -49,9 +48,9 @@ proptest! {
         for m in &models {
             let w = m.credit(&path, conv);
             prop_assert_eq!(w.len(), path.len());
-            prop_assert!(w.iter().all(|x| *x >= 0.0 && x.is_finite()), "{} {:?}", m.name(), w);
+            prop_assert!(w.iter().all(|x| *x >= 0.0 && x.is_finite()), "{} {:?}", m.id(), w);
             let sum: f64 = w.iter().sum();
-            prop_assert!((sum - 1.0).abs() <= 1e-9, "{} sums to {}", m.name(), sum);
+            prop_assert!((sum - 1.0).abs() <= 1e-9, "{} sums to {}", m.id(), sum);
         }
     }
 }
@@ -77,7 +76,10 @@ fn lines_of(events: &[Ev]) -> Vec<String> {
         .enumerate()
         .map(|(i, e)| {
             if e.conv {
-                format!(r#"{{"type":"conversion","event_id":"e{i}","user_id":"u{}","timestamp":{},"value":10}}"#, e.user, e.ts)
+                format!(
+                    r#"{{"type":"conversion","event_id":"e{i}","user_id":"u{}","timestamp":{},"value":10}}"#,
+                    e.user, e.ts
+                )
             } else {
                 format!(
                     r#"{{"type":"touch","event_id":"e{i}","user_id":"u{}","timestamp":{},"channel":"ch{}"}}"#,
@@ -92,12 +94,7 @@ fn replay_all(lines: &[String]) -> Vec<String> {
     let p = Pseudonymizer::new(b"k");
     let refs: Vec<&str> = lines.iter().map(String::as_str).collect();
     let rules = Rules { lookback_ms: 10 * DAY, view_lookback_ms: 10 * DAY, expiry_ms: 7 * DAY };
-    let r = replay_lines(&refs, rules, &p, false, |_| {
-        ["last_touch", "first_touch", "linear", "time_decay", "u_shaped"]
-            .iter()
-            .map(|n| rule_model(n, &RuleParams::default()).unwrap())
-            .collect()
-    });
+    let r = replay_lines(&refs, rules, &p, &ModelPlan::rules());
     let mut out: Vec<String> = r.rows.iter().map(|x| serde_json::to_string(x).unwrap()).collect();
     out.extend(r.paths.iter().map(|x| serde_json::to_string(x).unwrap()));
     out.sort();
@@ -151,9 +148,23 @@ fn outcomes_per_event(items: &[(i64, u64, bool)], rules: &Rules) -> Vec<Outcome>
 
 fn add(j: &mut Journey, ts: i64, seq: u64, conv: bool) {
     if conv {
-        j.add_conversion(Conversion { event_id: format!("c{seq}"), ts, seq, goal: "g".into(), value: None, currency: None });
+        j.add_conversion(Conversion {
+            event_id: format!("c{seq}"),
+            ts,
+            seq,
+            goal: "g".into(),
+            value: None,
+            currency: None,
+        });
     } else {
-        j.add_touch(Touch { event_id: format!("t{seq}"), ts, seq, channel: format!("ch{}", seq % 3), campaign: None, interaction: Interaction::Click });
+        j.add_touch(Touch {
+            event_id: format!("t{seq}"),
+            ts,
+            seq,
+            channel: format!("ch{}", seq % 3),
+            campaign: None,
+            interaction: Interaction::Click,
+        });
     }
 }
 
@@ -180,8 +191,10 @@ proptest! {
         let mut wm = i64::MIN;
         for (k, (ts, seq, conv)) in arrival.iter().enumerate() {
             // An event at or before the watermark would be late: with jitter
-            // <= lateness that cannot happen.
-            prop_assert!(*ts > wm || wm == i64::MIN || *ts >= wm);
+            // <= lateness that cannot happen (the watermark is the largest
+            // time seen minus lateness minus 1, and every later arrival is at
+            // most `lateness` before it).
+            prop_assert!(*ts > wm, "event at {ts} arrived at watermark {wm}");
             add(&mut j, *ts, *seq, *conv);
             max_seen = max_seen.max(*ts);
             if k % step == 0 {

@@ -6,6 +6,18 @@
 //! least once. Re-delivery is harmless: rows carry a deterministic
 //! `credit_id` / `path_id` that sinks (or their readers) deduplicate on.
 //!
+//! ## Sinks and layers
+//! A sink does one attempt per `write()`. What to do when an attempt fails
+//! is a layer around it, in the manner of a middleware stack, so each policy
+//! is written once:
+//! - [`layers::Retry`]: retries a retryable failure a few times with
+//!   exponential backoff, asking the sink to [`Sink::reset`] in between.
+//! - [`layers::Spooled`]: when the sink stays unavailable, keeps the batch
+//!   in a durable [`spool::Spool`] and answers Ok, so the service goes on;
+//!   spooled batches are delivered first once the sink is back.
+//! - Pausing (holding the batch uncommitted until the sink takes it) is the
+//!   service's outer loop, not a layer: it must also stop the input.
+//!
 //! ## Layout
 //! - [`ndjson`]: rotating NDJSON files, each renamed into place when complete.
 //! - [`parquet`]: Parquet files partitioned by date; durable segments per
@@ -13,36 +25,20 @@
 //! - [`postgres`]: PostgreSQL tables `credit` and `paths`
 //!   (`deploy/warehouse/postgres.sql`), one transaction per batch,
 //!   deduplicated on `credit_id` / `path_id`.
+//! - [`layers`], [`spool`]: the layers above.
+//! - [`atomic`]: the one way files are made durable (temporary name, fsync,
+//!   rename, directory fsync).
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
 
+pub mod atomic;
+pub mod layers;
 pub mod ndjson;
 pub mod parquet;
 pub mod postgres;
+pub mod spool;
 
-use apportion_engine::{CreditRow, PathRow};
-use serde::{Deserialize, Serialize};
-
-/// An input event that was not processed, and why. It never carries the
-/// event itself (which may hold a raw user id): the source position says
-/// where to find it.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct DeadLetter {
-    /// Machine-readable reason (see `RejectReason::code`).
-    pub reason: String,
-    /// Human-readable detail.
-    pub detail: String,
-    /// Source: a topic name, `http` or a file path.
-    pub source: String,
-    /// Source partition (Kafka).
-    pub partition: Option<i32>,
-    /// Source offset (Kafka) or sequence number (embedded).
-    pub offset: Option<i64>,
-    /// The event's `event_id`, when it could be read.
-    pub event_id: Option<String>,
-    /// RFC 3339 time the service received the event.
-    pub received_at: String,
-}
+pub use apportion_contract::{CreditRow, DeadLetter, PathRow};
 
 /// One batch of output.
 #[derive(Debug, Clone, Default, PartialEq)]
@@ -60,9 +56,14 @@ impl OutputBatch {
     pub fn is_empty(&self) -> bool {
         self.credit.is_empty() && self.paths.is_empty() && self.dead_letters.is_empty()
     }
+
+    /// True when there are credit or path rows (dead letters aside).
+    pub fn has_rows(&self) -> bool {
+        !self.credit.is_empty() || !self.paths.is_empty()
+    }
 }
 
-/// Errors of a sink. `retryable` tells the service whether to retry the same
+/// Errors of a sink. `retryable` tells the caller whether to retry the same
 /// batch (with backoff) or to stop.
 #[derive(Debug, thiserror::Error)]
 #[error("{sink} sink: {detail}")]
@@ -94,4 +95,48 @@ pub trait Sink: Send {
     fn write(&mut self, batch: &OutputBatch) -> Result<(), SinkError>;
     /// Finishes open files / connections (shutdown).
     fn close(&mut self) -> Result<(), SinkError>;
+    /// Whether the sink stores dead letters (Parquet and PostgreSQL keep
+    /// only credit and path rows), so row counts name only what was kept.
+    fn keeps_dead_letters(&self) -> bool {
+        true
+    }
+    /// Forgets any session or connection after a failed attempt, so that the
+    /// next attempt starts afresh. Sinks without sessions do nothing.
+    fn reset(&mut self) {}
+}
+
+impl<S: Sink + ?Sized> Sink for Box<S> {
+    fn name(&self) -> &'static str {
+        (**self).name()
+    }
+    fn write(&mut self, batch: &OutputBatch) -> Result<(), SinkError> {
+        (**self).write(batch)
+    }
+    fn close(&mut self) -> Result<(), SinkError> {
+        (**self).close()
+    }
+    fn keeps_dead_letters(&self) -> bool {
+        (**self).keeps_dead_letters()
+    }
+    fn reset(&mut self) {
+        (**self).reset()
+    }
+}
+
+/// What the layers report, for the service's metrics (the sinks crate
+/// itself knows nothing of Prometheus).
+pub trait Observer: Send + Sync {
+    /// An attempt at `sink` failed.
+    fn failed(&self, sink: &'static str);
+    /// A batch is being tried again at `sink` (after a failure, or from the spool).
+    fn retried(&self, sink: &'static str);
+}
+
+/// An observer that ignores everything (tests, tools).
+#[derive(Debug, Default, Clone, Copy)]
+pub struct NoObserver;
+
+impl Observer for NoObserver {
+    fn failed(&self, _: &'static str) {}
+    fn retried(&self, _: &'static str) {}
 }

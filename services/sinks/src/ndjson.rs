@@ -72,6 +72,7 @@ impl Rotating {
             w.get_ref().sync_all()?;
             let done = path.with_extension("");
             std::fs::rename(&path, done)?;
+            crate::atomic::sync_dir(&self.dir)?;
         }
         Ok(())
     }
@@ -124,10 +125,10 @@ impl Sink for NdjsonSink {
 }
 
 /// Reads every credit row from the sealed and open files of `dir` (tests, demo).
-pub fn read_credit_rows(dir: &Path) -> std::io::Result<Vec<apportion_engine::CreditRow>> {
+pub fn read_credit_rows(dir: &Path) -> std::io::Result<Vec<apportion_contract::CreditRow>> {
     let mut files: Vec<PathBuf> = std::fs::read_dir(dir)?
         .filter_map(|e| e.ok().map(|e| e.path()))
-        .filter(|p| p.file_name().map_or(false, |n| n.to_string_lossy().starts_with("credit-")))
+        .filter(|p| p.file_name().is_some_and(|n| n.to_string_lossy().starts_with("credit-")))
         .collect();
     files.sort();
     let mut out = Vec::new();

@@ -65,8 +65,8 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use apportion_engine::time_fmt::{date_of_ms, parse_rfc3339_ms};
-use apportion_engine::{CreditRow, PathRow};
+use apportion_contract::time::date_of_ms;
+use apportion_contract::{CreditRow, PathRow, Period};
 use arrow_array::builder::{ListBuilder, StringBuilder};
 use arrow_array::{
     ArrayRef, BooleanArray, Float64Array, Int32Array, RecordBatch, StringArray, TimestampMillisecondArray,
@@ -78,6 +78,9 @@ use parquet::basic::Compression;
 use parquet::file::metadata::KeyValue;
 use parquet::file::properties::WriterProperties;
 
+use serde::{Deserialize, Serialize};
+
+use crate::atomic::{sync_dir as fsync_dir, AtomicFile};
 use crate::{OutputBatch, Sink, SinkError};
 
 const SINK: &str = "parquet";
@@ -138,10 +141,6 @@ pub fn roll_due(staged_bytes: u64, age: Duration, roll_bytes: u64, roll_after: D
     staged_bytes >= roll_bytes || age >= roll_after
 }
 
-fn ts_ms(field: &str, s: &str) -> Result<i64, SinkError> {
-    parse_rfc3339_ms(s).ok_or_else(|| SinkError::fatal(SINK, format!("{field} is not an RFC 3339 time: {s:?}")))
-}
-
 fn int32(field: &str, v: u32) -> Result<i32, SinkError> {
     i32::try_from(v).map_err(|_| SinkError::fatal(SINK, format!("{field} {v} does not fit INT32")))
 }
@@ -160,20 +159,20 @@ pub fn credit_batch(rows: &[&CreditRow]) -> Result<RecordBatch, SinkError> {
     for r in rows {
         position.push(int32("position", r.position)?);
         path_length.push(int32("path_length", r.path_length)?);
-        touch_ts.push(r.touch_timestamp.as_deref().map(|t| ts_ms("touch_timestamp", t)).transpose()?);
-        conv_ts.push(ts_ms("conversion_timestamp", &r.conversion_timestamp)?);
+        touch_ts.push(r.touch_timestamp.map(|t| t.ms()));
+        conv_ts.push(r.conversion_timestamp.ms());
     }
     let columns: Vec<ArrayRef> = vec![
         s(|r| &r.credit_id),
         s(|r| &r.conversion_id),
-        s(|r| &r.user_key),
-        s(|r| &r.model),
+        Arc::new(rows.iter().map(|r| Some(r.user_key.to_hex())).collect::<StringArray>()),
+        s(|r| r.model.as_str()),
         o(|r| r.model_version.as_deref()),
         s(|r| &r.goal),
         o(|r| r.touch_event_id.as_deref()),
         s(|r| &r.channel),
         o(|r| r.campaign.as_deref()),
-        o(|r| r.interaction.as_deref()),
+        o(|r| r.interaction.map(|i| i.as_str())),
         Arc::new(Int32Array::from(position)),
         Arc::new(Int32Array::from(path_length)),
         Arc::new(TimestampMillisecondArray::from(touch_ts).with_timezone("UTC")),
@@ -197,12 +196,12 @@ pub fn paths_batch(rows: &[&PathRow]) -> Result<RecordBatch, SinkError> {
         }
         channels.append(true);
         touch_count.push(int32("touch_count", r.touch_count)?);
-        first.push(ts_ms("first_touch_timestamp", &r.first_touch_timestamp)?);
-        last.push(ts_ms("last_touch_timestamp", &r.last_touch_timestamp)?);
+        first.push(r.first_touch_timestamp.ms());
+        last.push(r.last_touch_timestamp.ms());
     }
     let columns: Vec<ArrayRef> = vec![
         Arc::new(rows.iter().map(|r| Some(r.path_id.as_str())).collect::<StringArray>()),
-        Arc::new(rows.iter().map(|r| Some(r.user_key.as_str())).collect::<StringArray>()),
+        Arc::new(rows.iter().map(|r| Some(r.user_key.to_hex())).collect::<StringArray>()),
         Arc::new(rows.iter().map(|r| Some(r.converted)).collect::<BooleanArray>()),
         Arc::new(rows.iter().map(|r| r.conversion_id.as_deref()).collect::<StringArray>()),
         Arc::new(rows.iter().map(|r| r.goal.as_deref()).collect::<StringArray>()),
@@ -216,12 +215,12 @@ pub fn paths_batch(rows: &[&PathRow]) -> Result<RecordBatch, SinkError> {
 
 /// The UTC date partition of a credit row (by `conversion_timestamp`).
 fn credit_date(r: &CreditRow) -> Result<String, SinkError> {
-    Ok(date_of_ms(ts_ms("conversion_timestamp", &r.conversion_timestamp)?))
+    Ok(date_of_ms(r.conversion_timestamp.ms()))
 }
 
 /// The UTC date partition of a path row (by `last_touch_timestamp`).
 fn path_date(r: &PathRow) -> Result<String, SinkError> {
-    Ok(date_of_ms(ts_ms("last_touch_timestamp", &r.last_touch_timestamp)?))
+    Ok(date_of_ms(r.last_touch_timestamp.ms()))
 }
 
 fn io_retry(what: &str, path: &Path) -> impl Fn(std::io::Error) -> SinkError {
@@ -235,7 +234,7 @@ fn pq_retry(what: &str, path: &Path) -> impl Fn(parquet::errors::ParquetError) -
 }
 
 fn sync_dir(dir: &Path) -> Result<(), SinkError> {
-    File::open(dir).and_then(|d| d.sync_all()).map_err(io_retry("fsync directory", dir))
+    fsync_dir(dir).map_err(io_retry("fsync directory", dir))
 }
 
 /// Creates `dir` (and parents) if missing, fsyncing each parent that got a new entry.
@@ -259,12 +258,11 @@ fn ensure_dir(dir: &Path) -> Result<(), SinkError> {
     Ok(())
 }
 
-/// Writes `batches` as one complete Parquet file at `dest`, atomically:
-/// `tmp` in the same directory, fsync, rename, fsync the directory.
-/// Returns the file size.
+/// Writes `batches` as one complete Parquet file at `dest`, atomically
+/// ([`AtomicFile`]: `.<name>.tmp` beside it, fsync, rename, fsync the
+/// directory). Returns the file size.
 fn write_file_atomic(
     dest: &Path,
-    tmp: &Path,
     schema: &SchemaRef,
     table: &str,
     batches: impl IntoIterator<Item = Result<RecordBatch, SinkError>>,
@@ -277,24 +275,13 @@ fn write_file_atomic(
             KeyValue::new("apportion.format_version".to_string(), FORMAT_VERSION.to_string()),
         ]))
         .build();
-    let result = (|| {
-        let file = File::create(tmp).map_err(io_retry("create", tmp))?;
-        let mut w = ArrowWriter::try_new(file, schema.clone(), Some(props)).map_err(pq_retry("open writer", tmp))?;
-        for b in batches {
-            w.write(&b?).map_err(pq_retry("write", tmp))?;
-        }
-        let file = w.into_inner().map_err(pq_retry("finish", tmp))?;
-        file.sync_all().map_err(io_retry("fsync", tmp))?;
-        let size = file.metadata().map_err(io_retry("stat", tmp))?.len();
-        std::fs::rename(tmp, dest).map_err(io_retry("rename", tmp))?;
-        Ok(size)
-    })();
-    if result.is_err() {
-        let _ = std::fs::remove_file(tmp);
-        return result;
+    let file = AtomicFile::create(dest).map_err(io_retry("create", dest))?;
+    let mut w = ArrowWriter::try_new(file, schema.clone(), Some(props)).map_err(pq_retry("open writer", dest))?;
+    for b in batches {
+        w.write(&b?).map_err(pq_retry("write", dest))?;
     }
-    sync_dir(dest.parent().expect("file in a directory"))?;
-    result
+    let file = w.into_inner().map_err(pq_retry("finish", dest))?;
+    file.commit().map_err(io_retry("commit", dest))
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -444,8 +431,7 @@ impl Table {
             ensure_dir(&sdir)?;
             let n = self.seq + 1;
             let dest = sdir.join(seg_name(n));
-            let tmp = sdir.join(format!(".{}.tmp", seg_name(n)));
-            let size = write_file_atomic(&dest, &tmp, &self.schema, self.kind.name(), [Ok(batch)])?;
+            let size = write_file_atomic(&dest, &self.schema, self.kind.name(), [Ok(batch)])?;
             self.seq = n;
             let st = self.staged.entry(date).or_insert_with(|| Staged { segments: Vec::new(), since: Instant::now() });
             st.segments.push((n, size));
@@ -477,11 +463,10 @@ impl Table {
         let pdir = self.root.join(format!("date={date}"));
         ensure_dir(&pdir)?;
         let dest = pdir.join(part_name(first, last));
-        let tmp = pdir.join(format!(".{}.tmp", part_name(first, last)));
         let schema = self.schema.clone();
         let segs: Vec<PathBuf> = st.segments.iter().map(|(n, _)| sdir.join(seg_name(*n))).collect();
         let batches = segs.iter().flat_map(|p| segment_batches(p, &schema));
-        write_file_atomic(&dest, &tmp, &self.schema, self.kind.name(), batches)?;
+        write_file_atomic(&dest, &self.schema, self.kind.name(), batches)?;
         // The part file is in place: the segments are now redundant. A
         // segment that cannot be deleted is covered by the part's range and
         // deleted by the next open(), so failures here are not errors.
@@ -585,6 +570,50 @@ impl Sink for ParquetSink {
         self.paths.roll(self.roll_bytes, self.roll_after, true)?;
         Ok(())
     }
+
+    fn keeps_dead_letters(&self) -> bool {
+        false
+    }
+}
+
+/// The `[parquet]` section.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct ParquetConfig {
+    /// Directory of the `credit/` and `paths/` trees.
+    pub dir: String,
+    /// Roll a date partition's staged segments into one file at this many bytes.
+    pub roll_bytes: u64,
+    /// ... or when its oldest staged segment is this old.
+    pub roll_after: Period,
+}
+
+impl Default for ParquetConfig {
+    fn default() -> Self {
+        ParquetConfig { dir: "apportion-parquet".into(), roll_bytes: 128 << 20, roll_after: Period(15 * 60_000) }
+    }
+}
+
+impl ParquetConfig {
+    /// Checks what types alone do not.
+    pub fn validate(&self) -> Result<(), String> {
+        if self.dir.trim().is_empty() {
+            return Err(
+                "parquet.dir is empty: set it (or APPORTION_PARQUET_DIR), or remove the [parquet] section".into()
+            );
+        }
+        if self.roll_after.ms() < 0 {
+            return Err("parquet.roll_after must not be negative".into());
+        }
+        Ok(())
+    }
+
+    /// Opens the sink.
+    pub fn build(&self) -> Result<ParquetSink, SinkError> {
+        let sink = ParquetSink::open(Path::new(&self.dir), self.roll_bytes, self.roll_after.to_std())?;
+        tracing::info!(dir = %self.dir, "Parquet sink open");
+        Ok(sink)
+    }
 }
 
 #[cfg(test)]
@@ -601,26 +630,6 @@ mod tests {
 
     /// A relative directory, including a bare name whose parent is "".
     /// (Changes the working directory: the only test here that touches files.)
-    #[test]
-    fn relative_directory() {
-        let tmp = std::env::temp_dir().join(format!("apportion-parquet-rel-{}", std::process::id()));
-        std::fs::create_dir_all(&tmp).unwrap();
-        let before = std::env::current_dir().unwrap();
-        std::env::set_current_dir(&tmp).unwrap();
-        let result = (|| -> Result<(), SinkError> {
-            for d in ["bare", "nested/deeper"] {
-                let mut s = ParquetSink::open(Path::new(d), 0, Duration::ZERO)?;
-                s.write(&OutputBatch::default())?;
-                s.close()?;
-                assert!(Path::new(d).join("credit").is_dir() && Path::new(d).join(STAGING_DIR).is_dir());
-            }
-            Ok(())
-        })();
-        std::env::set_current_dir(before).unwrap();
-        let _ = std::fs::remove_dir_all(&tmp);
-        result.unwrap();
-    }
-
     #[test]
     fn roll_rule() {
         let min = Duration::from_secs(60);

@@ -1,10 +1,96 @@
-//! Versioned encoding of stored values. The first byte of every value is its
-//! format version, so a later build can migrate or refuse old data instead
-//! of misreading it.
+//! Every persisted format of the store, in one place. The first byte of
+//! every value is its format version, so a later build can migrate or
+//! refuse old data instead of misreading it.
+//!
+//! | record | version | layout |
+//! | --- | --- | --- |
+//! | journey | 1 | version, wake flag (1 byte), wake (8 bytes big endian), bincode of [`Journey`] |
+//! | clock | 1 | version, largest event time seen (8 bytes BE), watermark (8 bytes BE) |
+//! | path statistics | 1 | version, JSON of [`PathStats`] (the serde form documented there) |
+//! | input offset | none | 8 bytes big endian (a bare offset, unchanged since the first release) |
 
+use apportion_engine::datadriven::PathStats;
 use apportion_engine::Journey;
 
 use crate::StoreError;
+
+/// Current format version of clock records.
+pub const CLOCK_FORMAT_VERSION: u8 = 1;
+/// Current format version of path-statistics records.
+pub const STATS_FORMAT_VERSION: u8 = 1;
+
+/// A partition's event-time clock: the largest event time seen and the
+/// watermark (both `i64::MIN` before any event).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Clock {
+    /// Largest event time applied.
+    pub max_ts: i64,
+    /// Current watermark.
+    pub watermark: i64,
+}
+
+impl Default for Clock {
+    fn default() -> Self {
+        Clock { max_ts: i64::MIN, watermark: i64::MIN }
+    }
+}
+
+/// Encodes a clock record.
+pub fn encode_clock(c: &Clock) -> Vec<u8> {
+    let mut b = Vec::with_capacity(17);
+    b.push(CLOCK_FORMAT_VERSION);
+    b.extend_from_slice(&c.max_ts.to_be_bytes());
+    b.extend_from_slice(&c.watermark.to_be_bytes());
+    b
+}
+
+/// Decodes a clock record.
+pub fn decode_clock(b: &[u8]) -> Result<Clock, StoreError> {
+    match b.first() {
+        Some(&CLOCK_FORMAT_VERSION) if b.len() == 17 => Ok(Clock {
+            max_ts: i64::from_be_bytes(b[1..9].try_into().expect("8 bytes")),
+            watermark: i64::from_be_bytes(b[9..17].try_into().expect("8 bytes")),
+        }),
+        Some(&CLOCK_FORMAT_VERSION) => {
+            Err(StoreError::Corrupt { prefix: 'm', detail: format!("clock record of {} bytes, expected 17", b.len()) })
+        }
+        Some(&v) => Err(StoreError::UnknownVersion { found: v, expected: CLOCK_FORMAT_VERSION }),
+        None => Err(StoreError::Corrupt { prefix: 'm', detail: "empty clock record".into() }),
+    }
+}
+
+/// Encodes a path-statistics record.
+pub fn encode_stats(stats: &PathStats) -> Vec<u8> {
+    let mut b = vec![STATS_FORMAT_VERSION];
+    serde_json::to_writer(&mut b, stats).expect("statistics serialize");
+    b
+}
+
+/// Decodes a path-statistics record, refusing statistics of another Markov
+/// order than `markov_order` (they cannot be merged with this
+/// configuration's).
+pub fn decode_stats(b: &[u8], markov_order: usize) -> Result<PathStats, StoreError> {
+    match b.split_first() {
+        Some((&STATS_FORMAT_VERSION, body)) => {
+            let stats: PathStats = serde_json::from_slice(body)
+                .map_err(|e| StoreError::Corrupt { prefix: 'm', detail: format!("path statistics: {e}") })?;
+            if stats.markov_order() != markov_order {
+                return Err(StoreError::MarkovOrder { stored: stats.markov_order(), configured: markov_order });
+            }
+            Ok(stats)
+        }
+        Some((&v, _)) => Err(StoreError::UnknownVersion { found: v, expected: STATS_FORMAT_VERSION }),
+        None => Err(StoreError::Corrupt { prefix: 'm', detail: "empty path statistics record".into() }),
+    }
+}
+
+/// Decodes a stored input offset.
+pub fn decode_offset(b: &[u8]) -> Result<i64, StoreError> {
+    let a: [u8; 8] = b
+        .try_into()
+        .map_err(|_| StoreError::Corrupt { prefix: 'o', detail: format!("offset of {} bytes, expected 8", b.len()) })?;
+    Ok(i64::from_be_bytes(a))
+}
 
 /// Current format version of journey records.
 pub const JOURNEY_FORMAT_VERSION: u8 = 1;

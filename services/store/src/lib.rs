@@ -13,7 +13,7 @@
 //! | `e` | event-id digest (16 bytes) | event time: duplicate detection |
 //! | `f` | event time + digest | empty: age index of `e` for pruning |
 //! | `o` | source name | input offset (8 bytes) |
-//! | `m` | name | metadata blob (e.g. path statistics) |
+//! | `m` | `clock` / `stats` | the partition's clock and path statistics (formats in `codec.rs`) |
 //!
 //! Why a write-back cache: one sled write per event is far slower than the
 //! engine (it costs more than all the rest of the work an event needs). [`PartitionStore`] keeps recently
@@ -30,7 +30,10 @@
 mod codec;
 mod partition;
 
-pub use codec::{decode_journey, encode_journey, StoredJourney, JOURNEY_FORMAT_VERSION};
+pub use codec::{
+    decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats, Clock,
+    StoredJourney, JOURNEY_FORMAT_VERSION,
+};
 pub use partition::PartitionStore;
 
 use std::path::{Path, PathBuf};
@@ -58,6 +61,14 @@ pub enum StoreError {
         /// Version expected.
         expected: u8,
     },
+    /// Stored path statistics were collected for another `markov_order`.
+    #[error("state store: the stored path statistics are for markov_order = {stored}, the configuration says {configured}; set markov_order back to {stored}, or start with an empty data_dir and replay the input to rebuild them")]
+    MarkovOrder {
+        /// Order of the stored statistics.
+        stored: usize,
+        /// Order configured.
+        configured: usize,
+    },
     /// The data directory could not be used.
     #[error("state store: cannot open {path}: {detail}")]
     Open {
@@ -72,7 +83,6 @@ pub enum StoreError {
 #[derive(Clone)]
 pub struct Store {
     db: sled::Db,
-    path: Option<PathBuf>,
 }
 
 impl Store {
@@ -86,18 +96,13 @@ impl Store {
             .mode(sled::Mode::HighThroughput)
             .open()
             .map_err(|e| StoreError::Open { path: dir.to_path_buf(), detail: e.to_string() })?;
-        Ok(Store { db, path: Some(dir.to_path_buf()) })
+        Ok(Store { db })
     }
 
     /// A store in a temporary location, removed when dropped.
     pub fn temporary() -> Result<Store, StoreError> {
         let db = sled::Config::new().temporary(true).cache_capacity(64 << 20).open()?;
-        Ok(Store { db, path: None })
-    }
-
-    /// The data directory, if not temporary.
-    pub fn path(&self) -> Option<&Path> {
-        self.path.as_deref()
+        Ok(Store { db })
     }
 
     /// The state of one input partition (e.g. `events/3`), with a cache

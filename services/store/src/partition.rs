@@ -5,7 +5,12 @@ use std::collections::{BTreeSet, HashMap, HashSet};
 
 use apportion_engine::{Journey, JourneyStore, UserKey};
 
-use crate::codec::{decode_journey, encode_journey, from_ordered_i64, ordered_i64};
+use apportion_engine::datadriven::PathStats;
+
+use crate::codec::{
+    decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats,
+    from_ordered_i64, ordered_i64, Clock,
+};
 use crate::StoreError;
 
 const J: u8 = b'j';
@@ -14,6 +19,8 @@ const E: u8 = b'e';
 const F: u8 = b'f';
 const O: u8 = b'o';
 const M: u8 = b'm';
+const META_CLOCK: &str = "clock";
+const META_STATS: &str = "stats";
 
 /// One cached user: the encoded journey record (the same bytes sled holds,
 /// so memory is counted exactly and spilling needs no re-encoding).
@@ -68,7 +75,14 @@ pub struct PartitionStore {
     clock: u64,
     /// Journeys written to sled because they were evicted with changes.
     spilled: u64,
+    /// Replay mode: spill least recently used journeys to sled from `save`
+    /// when over budget (checked every [`AUTO_SPILL_EVERY`] saves).
+    auto_spill: bool,
+    saves: u64,
 }
+
+/// How often (in saves) a store in replay mode checks its budget.
+const AUTO_SPILL_EVERY: u64 = 1024;
 
 fn jkey(k: &UserKey) -> Vec<u8> {
     let mut v = Vec::with_capacity(33);
@@ -101,6 +115,8 @@ impl PartitionStore {
             open_journeys,
             clock: 0,
             spilled: 0,
+            auto_spill: false,
+            saves: 0,
         })
     }
 
@@ -143,7 +159,8 @@ impl PartitionStore {
                 None => (None, None),
             };
             let exists = record.is_some();
-            let c = Cached { record, wake, persisted_wake: wake, persisted_exists: exists, dirty: false, last_used: clock };
+            let c =
+                Cached { record, wake, persisted_wake: wake, persisted_exists: exists, dirty: false, last_used: clock };
             self.bytes += c.bytes();
             self.cache.insert(*key, c);
         }
@@ -198,21 +215,43 @@ impl PartitionStore {
     pub fn offset(&self, source: &str) -> Result<Option<i64>, StoreError> {
         let mut k = vec![O];
         k.extend_from_slice(source.as_bytes());
-        Ok(self.tree.get(k)?.map(|v| i64::from_be_bytes(v.as_ref().try_into().unwrap_or([0; 8]))))
+        self.tree.get(k)?.map(|v| decode_offset(&v)).transpose()
     }
 
-    /// Stages a metadata blob (e.g. path statistics, watermark).
-    pub fn stage_meta(&mut self, name: &str, value: Vec<u8>) {
+    fn stage_meta(&mut self, name: &str, value: Vec<u8>) {
         let mut k = vec![M];
         k.extend_from_slice(name.as_bytes());
         self.staged.push((k, Some(value)));
     }
 
-    /// A committed metadata blob.
-    pub fn meta(&self, name: &str) -> Result<Option<Vec<u8>>, StoreError> {
+    fn meta(&self, name: &str) -> Result<Option<sled::IVec>, StoreError> {
         let mut k = vec![M];
         k.extend_from_slice(name.as_bytes());
-        Ok(self.tree.get(k)?.map(|v| v.to_vec()))
+        Ok(self.tree.get(k)?)
+    }
+
+    /// The committed clock (the default, both `i64::MIN`, before any commit).
+    pub fn clock(&self) -> Result<Clock, StoreError> {
+        Ok(self.meta(META_CLOCK)?.map(|b| decode_clock(&b)).transpose()?.unwrap_or_default())
+    }
+
+    /// Stages the clock to be committed with the next batch.
+    pub fn stage_clock(&mut self, clock: &Clock) {
+        self.stage_meta(META_CLOCK, encode_clock(clock));
+    }
+
+    /// The committed path statistics (empty ones of `markov_order` before
+    /// any); an error when they were collected with another Markov order.
+    pub fn stats(&self, markov_order: usize) -> Result<PathStats, StoreError> {
+        match self.meta(META_STATS)? {
+            Some(b) => decode_stats(&b, markov_order),
+            None => Ok(PathStats::new(markov_order)),
+        }
+    }
+
+    /// Stages path statistics to be committed with the next batch.
+    pub fn stage_stats(&mut self, stats: &PathStats) {
+        self.stage_meta(META_STATS, encode_stats(stats));
     }
 
     /// Adds the writes that persist `key`'s cached state to `batch`, and
@@ -337,6 +376,14 @@ impl PartitionStore {
         Ok(())
     }
 
+    /// Replay mode (no durability between events, see
+    /// [`PartitionStore::spill_if_over_budget`]): the store itself spills
+    /// from `save` when it outgrows its budget.
+    pub fn with_auto_spill(mut self) -> Self {
+        self.auto_spill = true;
+        self
+    }
+
     /// For `replay`, which needs no durability between events: journeys stay
     /// in memory while they fit the byte budget; above it, the least
     /// recently used ones are written to sled and evicted. Returns true if
@@ -348,16 +395,6 @@ impl PartitionStore {
             return Ok(true);
         }
         Ok(false)
-    }
-
-    /// Drops uncommitted changes (after a failed batch).
-    pub fn rollback(&mut self) {
-        self.cache.clear();
-        self.bytes = 0;
-        self.pending_seen.clear();
-        self.pending_wake.clear();
-        self.staged.clear();
-        self.scanned_upto = i64::MIN;
     }
 }
 
@@ -399,6 +436,10 @@ impl JourneyStore for PartitionStore {
         c.dirty = true;
         let new_bytes = c.bytes();
         self.bytes = self.bytes + new_bytes - old_bytes;
+        self.saves += 1;
+        if self.auto_spill && self.saves % AUTO_SPILL_EVERY == 0 {
+            self.spill_if_over_budget()?;
+        }
         Ok(())
     }
 
@@ -417,10 +458,11 @@ impl JourneyStore for PartitionStore {
             for item in self.tree.range(start..end) {
                 let (k, _) = item?;
                 let wake = from_ordered_i64(&k[1..9]);
-                let key = UserKey(k[9..41].try_into().map_err(|_| StoreError::Corrupt {
-                    prefix: 'w',
-                    detail: "short wake key".into(),
-                })?);
+                let key = UserKey(
+                    k[9..41]
+                        .try_into()
+                        .map_err(|_| StoreError::Corrupt { prefix: 'w', detail: "short wake key".into() })?,
+                );
                 candidates.push((wake, key));
             }
             for (wake, key) in candidates {

@@ -3,11 +3,12 @@
 //! Check values of the small unit tests (wake times, offsets, duplicate
 //! horizons) are derived by hand from the store's documented behaviour.
 
+use apportion_engine::contract::parse_event;
 use apportion_engine::journey::Rules;
-use apportion_engine::processor::{KeyedEvent, MemStore};
-use apportion_engine::replay::{effect_rows, Pushed, Replayer};
+use apportion_engine::processor::{JourneyEvent, MemStore};
 use apportion_engine::registry::{rule_model, RuleParams};
-use apportion_engine::{parse_event, Journey, JourneyStore, Model, Pseudonymizer, UserKey};
+use apportion_engine::replay::{effect_rows, Replayer};
+use apportion_engine::{Journey, JourneyStore, Model, ModelId, Pseudonymizer, UserKey};
 use apportion_store::{decode_journey, encode_journey, Store, StoreError};
 use proptest::prelude::*;
 
@@ -21,7 +22,10 @@ fn lines(events: &[(u8, i64, bool, u8)]) -> Vec<String> {
             if *conv {
                 format!(r#"{{"type":"conversion","event_id":"e{i}","user_id":"u{u}","timestamp":{}}}"#, t * DAY / 3)
             } else {
-                format!(r#"{{"type":"touch","event_id":"e{i}","user_id":"u{u}","timestamp":{},"channel":"c{ch}"}}"#, t * DAY / 3)
+                format!(
+                    r#"{{"type":"touch","event_id":"e{i}","user_id":"u{u}","timestamp":{},"channel":"c{ch}"}}"#,
+                    t * DAY / 3
+                )
             }
         })
         .collect()
@@ -31,7 +35,7 @@ fn run<S: JourneyStore>(store: S, lines: &[String], commit: &mut dyn FnMut(&mut 
 where
     S::Error: std::fmt::Debug,
 {
-    let models: Vec<Box<dyn Model>> = vec![rule_model("linear", &RuleParams::default()).unwrap()];
+    let models: Vec<Box<dyn Model>> = vec![rule_model(ModelId::Linear, &RuleParams::default()).unwrap()];
     let p = Pseudonymizer::new(b"k");
     let mut evs: Vec<(u64, apportion_engine::Event)> =
         lines.iter().enumerate().map(|(i, l)| (i as u64, parse_event(l.as_bytes()).unwrap())).collect();
@@ -40,14 +44,11 @@ where
     let mut r = Replayer::new(rules, store);
     let mut out = Vec::new();
     for (n, (i, ev)) in evs.into_iter().enumerate() {
-        let id = ev.event_id.clone();
         let key = p.key_for(&ev.user_id);
-        if let Pushed::Applied(effects) = r.push(KeyedEvent::from_event(ev, key, i), &id).unwrap() {
-            for e in effects {
-                let (rows, path) = effect_rows(&e, &models);
-                out.extend(rows.iter().map(|x| serde_json::to_string(x).unwrap()));
-                out.extend(path.iter().map(|x| serde_json::to_string(x).unwrap()));
-            }
+        for e in r.push(JourneyEvent::from_event(ev, key, i)).unwrap() {
+            let (rows, path) = effect_rows(&e, &models);
+            out.extend(rows.iter().map(|x| serde_json::to_string(x).unwrap()));
+            out.extend(path.iter().map(|x| serde_json::to_string(x).unwrap()));
         }
         if n % 3 == 0 {
             commit(r.store_mut());
@@ -149,4 +150,40 @@ fn records_carry_a_version_byte() {
     future[0] = 9;
     assert!(matches!(decode_journey(&future), Err(StoreError::UnknownVersion { found: 9, expected: 1 })));
     assert!(matches!(decode_journey(&[]), Err(StoreError::Corrupt { .. })));
+}
+
+/// The store owns its formats: the clock and the statistics come back as
+/// committed, statistics of another Markov order are refused with a clear
+/// error (instead of a panic when merged later), and a damaged offset is an
+/// error rather than 0.
+#[test]
+fn clock_stats_and_offsets_round_trip() {
+    use apportion_engine::datadriven::PathStats;
+    use apportion_store::Clock;
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path()).unwrap();
+    let mut p = store.partition("events/0", 1 << 20).unwrap();
+    assert_eq!(p.clock().unwrap(), Clock::default());
+    assert_eq!(p.stats(2).unwrap(), PathStats::new(2));
+    let mut stats = PathStats::new(2);
+    stats.add_path(&["email", "seo"], true);
+    p.stage_clock(&Clock { max_ts: 10, watermark: 5 });
+    p.stage_stats(&stats);
+    p.commit(true).unwrap();
+    drop(p);
+    let p = store.partition("events/0", 1 << 20).unwrap();
+    assert_eq!(p.clock().unwrap(), Clock { max_ts: 10, watermark: 5 });
+    assert_eq!(p.stats(2).unwrap(), stats);
+    let e = p.stats(1).unwrap_err();
+    assert!(matches!(e, StoreError::MarkovOrder { stored: 2, configured: 1 }), "{e}");
+    assert!(e.to_string().contains("markov_order = 2"), "{e}");
+}
+
+#[test]
+fn damaged_records_are_errors() {
+    use apportion_store::{decode_clock, decode_offset};
+    assert!(matches!(decode_offset(&[0, 0, 1]), Err(StoreError::Corrupt { prefix: 'o', .. })));
+    assert_eq!(decode_offset(&41i64.to_be_bytes()).unwrap(), 41);
+    assert!(matches!(decode_clock(&[9; 17]), Err(StoreError::UnknownVersion { found: 9, .. })));
+    assert!(matches!(decode_clock(&[1; 5]), Err(StoreError::Corrupt { .. })));
 }

@@ -1,8 +1,8 @@
 //! Input events in protobuf: decoding (validated by the engine's parser)
 //! and a JSON-to-protobuf helper for tests and tools.
 
-use apportion_engine::event::parse_event_limited;
-use apportion_engine::{Event, RejectReason, Rejection};
+use apportion_contract::event::parse_event_limited;
+use apportion_contract::{Event, EventKind, RejectReason, Rejection};
 use prost::Message;
 use serde::Deserialize;
 use serde_json::{Map, Number, Value};
@@ -21,7 +21,7 @@ use crate::pb::{input_event::Timestamp, EventType, InputEvent, Interaction};
 ///   one ("the bytes are not an event of the expected encoding").
 /// - Otherwise the message is rendered as its JSON object form
 ///   ([`to_contract_json`]) and validated by
-///   [`apportion_engine::event::parse_event_limited`], so every contract
+///   [`apportion_contract::event::parse_event_limited`], so every contract
 ///   rule (required fields, lengths, timestamp range, currency shape, ...)
 ///   gives the same reason as for the same event in JSON.
 pub fn decode_event_protobuf(bytes: &[u8], max_bytes: usize) -> Result<Event, Rejection> {
@@ -36,6 +36,21 @@ pub fn decode_event_protobuf(bytes: &[u8], max_bytes: usize) -> Result<Event, Re
     // The size limit was applied to what arrived; the JSON rendering is
     // larger (keys, quotes) and must not be rejected for that.
     parse_event_limited(&to_contract_json(&msg), usize::MAX)
+}
+
+/// What can be read of a rejected protobuf event for its dead letter and
+/// metric labels: its kind and its `event_id` (at most 128 bytes), when the
+/// bytes decode as an `InputEvent` at all. Never the user id.
+pub fn sniff_protobuf(bytes: &[u8]) -> (Option<EventKind>, Option<String>) {
+    let Ok(msg) = InputEvent::decode(bytes) else { return (None, None) };
+    let kind = match EventType::try_from(msg.r#type) {
+        Ok(EventType::Touch) => Some(EventKind::Touch),
+        Ok(EventType::Conversion) => Some(EventKind::Conversion),
+        Ok(EventType::Erase) => Some(EventKind::Erase),
+        _ => None,
+    };
+    let id = msg.event_id.filter(|id| id.len() <= apportion_contract::event::MAX_EVENT_ID_BYTES);
+    (kind, id)
 }
 
 /// Text put in place of an enum number this schema version does not know,

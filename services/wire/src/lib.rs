@@ -7,9 +7,9 @@
 //! ## Why it looks like this
 //! - **One validator for both encodings.** A protobuf [`pb::InputEvent`] is
 //!   turned into the JSON object form of the same event and handed to the
-//!   engine's own parser ([`apportion_engine::event::parse_event_limited`]).
+//!   engine's own parser ([`apportion_contract::event::parse_event_limited`]).
 //!   So an event is accepted, or rejected with a given
-//!   [`RejectReason`](apportion_engine::RejectReason), by exactly the same
+//!   [`RejectReason`](apportion_contract::RejectReason), by exactly the same
 //!   rules whichever encoding it came in; there is no second copy of the
 //!   rules to drift. The cost is one small JSON rendering per protobuf
 //!   event.
@@ -18,9 +18,9 @@
 //!   `OUT_DIR`, so the `.proto` file is the only source of truth.
 //! - **The schema and the serde types stay in step.** The tests compare the
 //!   compiled descriptor ([`FILE_DESCRIPTOR_SET`]) with the serde field names
-//!   and order of [`CreditRow`](apportion_engine::CreditRow),
-//!   [`PathRow`](apportion_engine::PathRow) and
-//!   [`DeadLetter`](apportion_sinks::DeadLetter), and pin every field
+//!   and order of [`CreditRow`](apportion_contract::CreditRow),
+//!   [`PathRow`](apportion_contract::PathRow) and
+//!   [`DeadLetter`](apportion_contract::DeadLetter), and pin every field
 //!   number: field numbers never change.
 //!
 //! ## Layout
@@ -48,7 +48,7 @@ pub const FILE_DESCRIPTOR_SET: &[u8] = include_bytes!(concat!(env!("OUT_DIR"), "
 /// Protobuf package of this schema version.
 pub const PACKAGE: &str = "apportion.v1";
 
-pub use event::{decode_event_protobuf, encode_event_protobuf, to_contract_json};
+pub use event::{decode_event_protobuf, encode_event_protobuf, sniff_protobuf, to_contract_json};
 pub use output::{
     decode_credit_protobuf, decode_dead_letter_protobuf, decode_path_protobuf, encode_credit_protobuf,
     encode_dead_letter_protobuf, encode_path_protobuf,

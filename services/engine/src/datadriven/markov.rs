@@ -48,6 +48,8 @@ pub use super::linalg::{SolveMethod, DENSE_MAX};
 use super::shapley::{credit_path, dedup_keep_first};
 use super::stats::{PathStats, CONV, NULL, START};
 use crate::journey::Touch;
+use apportion_contract::ModelId;
+
 use crate::model::{distinct_channels, Model};
 
 /// The fitted `markov` model.
@@ -249,8 +251,8 @@ impl MarkovModel {
 }
 
 impl Model for MarkovModel {
-    fn name(&self) -> &str {
-        "markov"
+    fn id(&self) -> ModelId {
+        ModelId::Markov
     }
     fn version(&self) -> Option<&str> {
         Some(&self.version)

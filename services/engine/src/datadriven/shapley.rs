@@ -49,6 +49,8 @@ use serde::{Deserialize, Serialize};
 
 use super::stats::PathStats;
 use crate::journey::Touch;
+use apportion_contract::ModelId;
+
 use crate::model::{distinct_channels, split_by_channel, Model};
 
 /// Most distinct channels of one conversion computed by subset enumeration.
@@ -613,8 +615,8 @@ pub(crate) fn dedup_keep_first<'a>(channels: &[&'a str]) -> Vec<&'a str> {
 }
 
 impl Model for ShapleyModel {
-    fn name(&self) -> &str {
-        "shapley"
+    fn id(&self) -> ModelId {
+        ModelId::Shapley
     }
     fn version(&self) -> Option<&str> {
         Some(&self.version)

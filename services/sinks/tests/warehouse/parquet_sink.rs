@@ -7,7 +7,7 @@ use std::fs::File;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
-use apportion_engine::time_fmt::format_ms;
+use apportion_engine::contract::{Interaction, ModelId, Timestamp, UserKey};
 use apportion_engine::{CreditRow, PathRow};
 use apportion_sinks::parquet::{ParquetSink, STAGING_DIR};
 use apportion_sinks::{OutputBatch, Sink};
@@ -53,9 +53,21 @@ fn opt_str(a: &dyn Array, i: usize) -> Option<String> {
     (!s.is_null(i)).then(|| s.value(i).to_string())
 }
 
-fn ts(a: &dyn Array, i: usize) -> Option<String> {
+fn ts(a: &dyn Array, i: usize) -> Option<Timestamp> {
     let t = a.as_primitive::<TimestampMillisecondType>();
-    (!t.is_null(i)).then(|| format_ms(t.value(i)))
+    (!t.is_null(i)).then(|| Timestamp(t.value(i)))
+}
+
+fn key(hex: Option<String>) -> UserKey {
+    UserKey::from_hex(&hex.expect("user_key")).expect("64 hex digits")
+}
+
+fn interaction(s: Option<String>) -> Option<Interaction> {
+    s.map(|s| match s.as_str() {
+        "click" => Interaction::Click,
+        "view" => Interaction::View,
+        other => panic!("interaction {other:?}"),
+    })
 }
 
 /// Credit rows rebuilt from the files, with the partition date of each.
@@ -73,14 +85,14 @@ fn read_credit(dir: &Path) -> Vec<(String, CreditRow)> {
                 let row = CreditRow {
                     credit_id: s("credit_id").unwrap(),
                     conversion_id: s("conversion_id").unwrap(),
-                    user_key: s("user_key").unwrap(),
-                    model: s("model").unwrap(),
+                    user_key: key(s("user_key")),
+                    model: ModelId::parse(&s("model").unwrap()).unwrap(),
                     model_version: s("model_version"),
                     goal: s("goal").unwrap(),
                     touch_event_id: s("touch_event_id"),
                     channel: s("channel").unwrap(),
                     campaign: s("campaign"),
-                    interaction: s("interaction"),
+                    interaction: interaction(s("interaction")),
                     position: position.value(i) as u32,
                     path_length: length.value(i) as u32,
                     touch_timestamp: ts(c("touch_timestamp").as_ref(), i),
@@ -113,7 +125,7 @@ fn read_paths(dir: &Path) -> Vec<(String, PathRow)> {
                 let list = list.as_string::<i32>();
                 let row = PathRow {
                     path_id: s("path_id").unwrap(),
-                    user_key: s("user_key").unwrap(),
+                    user_key: key(s("user_key")),
                     converted: converted.value(i),
                     conversion_id: s("conversion_id"),
                     goal: s("goal"),
@@ -174,13 +186,13 @@ fn parquet_round_trip_of_every_row() {
     // Every row back, field for field, each in the partition of its UTC date.
     let credit = read_credit(dir.path());
     for (date, r) in &credit {
-        assert_eq!(date, &rows::utc_date(&r.conversion_timestamp), "{r:?}");
+        assert_eq!(date, &rows::utc_date(r.conversion_timestamp), "{r:?}");
     }
     let got = sorted_credit(credit.into_iter().map(|x| x.1).collect());
     assert_eq!(got, sorted_credit(input.credit.clone()));
     let paths = read_paths(dir.path());
     for (date, p) in &paths {
-        assert_eq!(date, &rows::utc_date(&p.last_touch_timestamp), "{p:?}");
+        assert_eq!(date, &rows::utc_date(p.last_touch_timestamp), "{p:?}");
     }
     assert_eq!(sorted_paths(paths.into_iter().map(|x| x.1).collect()), sorted_paths(input.paths.clone()));
 
@@ -352,14 +364,16 @@ fn parquet_recovery_removes_leftovers_without_losing_or_doubling_rows() {
 }
 
 #[test]
-fn parquet_rejects_a_bad_timestamp_permanently() {
+fn parquet_rejects_a_row_it_cannot_store_permanently() {
+    // position is INT32 in the files (as in deploy/warehouse/postgres.sql):
+    // a position above i32::MAX cannot be stored, and retrying cannot help.
     let mut b = rows::scenario();
-    b.credit[0].conversion_timestamp = "yesterday".into();
+    b.credit[0].position = u32::MAX;
     let dir = tempfile::tempdir().unwrap();
     let mut sink = ParquetSink::open(dir.path(), 0, HOUR).unwrap();
     let e = sink.write(&b).unwrap_err();
     assert!(!e.retryable, "{e}");
-    assert!(e.to_string().contains("conversion_timestamp"), "{e}");
+    assert!(e.to_string().contains("position"), "{e}");
     // Nothing of the batch was written.
     assert!(part_files(dir.path(), "credit").is_empty());
     assert!(staged_files(dir.path()).is_empty());
@@ -376,7 +390,7 @@ fn parquet_credit_sums_to_one_per_conversion_and_model() {
     sink.close().unwrap();
     let mut per: BTreeMap<(String, String), f64> = BTreeMap::new();
     for (_, r) in read_credit(dir.path()) {
-        *per.entry((r.conversion_id, r.model)).or_default() += r.credit;
+        *per.entry((r.conversion_id, r.model.to_string())).or_default() += r.credit;
     }
     assert_eq!(per.len(), rows::CONVERSIONS * rows::MODELS.len());
     for (k, s) in per {

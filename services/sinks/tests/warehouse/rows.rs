@@ -3,9 +3,8 @@
 
 use std::collections::BTreeMap;
 
-use apportion_engine::registry::{rule_model, RuleParams};
 use apportion_engine::replay::replay_lines;
-use apportion_engine::{CreditRow, Model, PathRow, Pseudonymizer, Rules};
+use apportion_engine::{CreditRow, ModelPlan, PathRow, Pseudonymizer, Rules};
 use apportion_sinks::OutputBatch;
 
 pub const MODELS: [&str; 5] = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped"];
@@ -38,12 +37,7 @@ pub const CONVERSIONS: usize = 6;
 /// The engine's rows for [`EVENTS`].
 pub fn scenario() -> OutputBatch {
     let p = Pseudonymizer::new(b"example-shop-test-key");
-    let r = replay_lines(EVENTS, Rules::default(), &p, false, |_| {
-        MODELS
-            .iter()
-            .map(|m| rule_model(m, &RuleParams::default()).expect("rule model"))
-            .collect::<Vec<Box<dyn Model>>>()
-    });
+    let r = replay_lines(EVENTS, Rules::default(), &p, &ModelPlan::rules());
     assert!(r.rejected.is_empty(), "test events rejected: {:?}", r.rejected);
     assert_eq!(r.duplicates, 0);
     OutputBatch { credit: r.rows, paths: r.paths, dead_letters: Vec::new() }
@@ -66,7 +60,7 @@ pub fn batches(n: usize) -> Vec<OutputBatch> {
 pub fn totals_by_model(rows: &[CreditRow]) -> BTreeMap<String, (f64, f64, usize)> {
     let mut out: BTreeMap<String, (f64, f64, usize)> = BTreeMap::new();
     for r in rows {
-        let e = out.entry(r.model.clone()).or_default();
+        let e = out.entry(r.model.to_string()).or_default();
         e.0 += r.credit;
         e.1 += r.credited_value.unwrap_or(0.0);
         e.2 += 1;
@@ -74,10 +68,9 @@ pub fn totals_by_model(rows: &[CreditRow]) -> BTreeMap<String, (f64, f64, usize)
     out
 }
 
-/// The UTC date (`YYYY-MM-DD`) of an RFC 3339 timestamp.
-pub fn utc_date(ts: &str) -> String {
-    let ms = apportion_engine::time_fmt::parse_rfc3339_ms(ts).expect("RFC 3339");
-    apportion_engine::time_fmt::date_of_ms(ms)
+/// The UTC date (`YYYY-MM-DD`) of a timestamp.
+pub fn utc_date(ts: apportion_engine::contract::Timestamp) -> String {
+    apportion_engine::contract::time::date_of_ms(ts.ms())
 }
 
 pub fn close(a: f64, b: f64) -> bool {
@@ -89,11 +82,11 @@ pub fn close(a: f64, b: f64) -> bool {
 pub fn check_scenario(b: &OutputBatch) {
     let mut per: BTreeMap<(String, String), f64> = BTreeMap::new();
     for r in &b.credit {
-        *per.entry((r.conversion_id.clone(), r.model.clone())).or_default() += r.credit;
+        *per.entry((r.conversion_id.clone(), r.model.to_string())).or_default() += r.credit;
     }
     assert_eq!(per.len(), CONVERSIONS * MODELS.len());
     assert!(per.values().all(|s| close(*s, 1.0)), "{per:?}");
-    assert!(b.credit.iter().any(|r| r.channel == apportion_engine::UNATTRIBUTED));
+    assert!(b.credit.iter().any(|r| r.channel == apportion_engine::contract::UNATTRIBUTED));
     assert!(b.paths.iter().any(|p| !p.converted), "the scenario has an abandoned journey");
 }
 

@@ -1,26 +1,11 @@
 //! Shared fixtures: a small day of events of the example trail shop.
 
-use apportion_engine::credit::PathRow;
-use apportion_engine::datadriven::{MarkovModel, PathStats, ShapleyModel};
-use apportion_engine::registry::{rule_model, RuleParams};
-use apportion_engine::Model;
+use apportion_engine::{ModelId, ModelPlan};
 
 /// Every model of the contract: the five rule models with default
-/// parameters, and both data-driven models fitted on `paths`.
-pub fn all_models(paths: &[PathRow]) -> Vec<Box<dyn Model>> {
-    let p = RuleParams::default();
-    let mut models: Vec<Box<dyn Model>> = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped"]
-        .iter()
-        .map(|n| rule_model(n, &p).expect("rule model"))
-        .collect();
-    let mut stats = PathStats::new(1);
-    for path in paths {
-        let chans: Vec<&str> = path.channels.iter().map(String::as_str).collect();
-        stats.add_path(&chans, path.converted);
-    }
-    models.push(Box::new(ShapleyModel::fit(&stats)));
-    models.push(Box::new(MarkovModel::fit(&stats)));
-    models
+/// parameters, and both data-driven models (fitted on a first pass).
+pub fn all_models() -> ModelPlan {
+    ModelPlan { ids: ModelId::ALL.to_vec(), ..ModelPlan::rules() }
 }
 
 /// Valid events: several customers, touches (click and view, with and

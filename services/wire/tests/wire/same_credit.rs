@@ -1,10 +1,10 @@
 //! The same events in either encoding are accepted or rejected alike and
 //! give identical credit rows and path rows.
 
-use apportion_engine::event::{parse_event, DEFAULT_MAX_EVENT_BYTES};
-use apportion_engine::replay::{effect_rows, replay_lines, Pushed, Replayer};
-use apportion_engine::{CreditRow, PathRow};
-use apportion_engine::{Effect, Event, EventKind, KeyedEvent, MemStore, Model, Pseudonymizer, RejectReason, Rules};
+use apportion_engine::contract::event::{parse_event, DEFAULT_MAX_EVENT_BYTES};
+use apportion_engine::contract::{Event, RejectReason, Rejection};
+use apportion_engine::replay::{effect_rows, journey_event, replay_lines, two_pass, FirstSeen};
+use apportion_engine::{CreditRow, MemStore, PathRow, Pseudonymizer, Rules};
 use apportion_wire::pb::{self, input_event::Timestamp};
 use apportion_wire::{decode_event_protobuf, encode_event_protobuf};
 use prost::Message;
@@ -131,7 +131,7 @@ fn unrepresentable_json_is_refused_by_the_helper_and_rejected_by_the_contract() 
     }
 }
 
-fn decode(msg: &pb::InputEvent) -> Result<Event, apportion_engine::Rejection> {
+fn decode(msg: &pb::InputEvent) -> Result<Event, Rejection> {
     decode_event_protobuf(&msg.encode_to_vec(), DEFAULT_MAX_EVENT_BYTES)
 }
 
@@ -223,33 +223,40 @@ fn size_limit_and_undecodable_bytes() {
     assert_eq!(decode_event_protobuf(&[], DEFAULT_MAX_EVENT_BYTES).unwrap_err().reason, RejectReason::MissingType);
 }
 
-/// The protobuf side of the replay: the loop of `replay_lines`, fed with
-/// decoded protobuf events instead of parsed lines.
-fn replay_events(
-    events: &[(u64, Event)],
-    p: &Pseudonymizer,
-    models: &[Box<dyn Model>],
-) -> (Vec<CreditRow>, Vec<PathRow>, u64) {
-    let mut r = Replayer::new(Rules::default(), MemStore::default());
-    let (mut rows, mut paths, mut duplicates) = (Vec::new(), Vec::new(), 0);
-    let mut take = |effects: Vec<Effect>| {
-        for e in &effects {
+/// The protobuf side of the replay: the engine's replay driver, fed with
+/// decoded protobuf events (deduplicated in input order, sorted by time
+/// and line) instead of parsed lines.
+fn replay_events(events: &[(u64, Event)], p: &Pseudonymizer) -> (Vec<CreditRow>, Vec<PathRow>, u64) {
+    let mut seen = FirstSeen::default();
+    let mut duplicates = 0;
+    let mut kept: Vec<&(u64, Event)> = Vec::new();
+    for e in events {
+        if seen.first(e.1.kind, &e.1.event_id) {
+            kept.push(e);
+        } else {
+            duplicates += 1;
+        }
+    }
+    kept.sort_by_key(|(n, ev)| (ev.timestamp_ms, *n));
+    let (mut rows, mut paths) = (Vec::new(), Vec::new());
+    two_pass::run::<_, std::convert::Infallible, _, _, _>(
+        &all_models(),
+        Rules::default(),
+        |_| Ok(MemStore::default()),
+        |_, apply| {
+            for (n, ev) in &kept {
+                apply(journey_event(ev, p, *n))?;
+            }
+            Ok(())
+        },
+        |e, models| {
             let (c, path) = effect_rows(e, models);
             rows.extend(c);
             paths.extend(path);
-        }
-    };
-    for (n, ev) in events {
-        let key = p.key_for(&ev.user_id);
-        let id = if ev.kind == EventKind::Erase { String::new() } else { ev.event_id.clone() };
-        let mut ev = ev.clone();
-        ev.user_id.clear();
-        match r.push(KeyedEvent::from_event(ev, key, *n), &id).expect("in-memory store") {
-            Pushed::Duplicate => duplicates += 1,
-            Pushed::Applied(effects) => take(effects),
-        }
-    }
-    take(r.finish().expect("in-memory store"));
+            Ok(())
+        },
+    )
+    .unwrap_or_else(|e| match e {});
     (rows, paths, duplicates)
 }
 
@@ -261,10 +268,10 @@ fn same_events_in_either_encoding_give_identical_credit() {
 
     // JSON: the engine's own replay, two passes (data-driven models fitted
     // on the first pass's paths).
-    let json = replay_lines(&refs, Rules::default(), &p, true, all_models);
+    let json = replay_lines(&refs, Rules::default(), &p, &all_models());
 
-    // Protobuf: every line converted, decoded, sorted by (time, line) as
-    // replay_lines does, then replayed the same way.
+    // Protobuf: every line converted and decoded, then replayed the same
+    // way (duplicates, order, two passes).
     let mut events = Vec::new();
     let mut rejected = Vec::new();
     for (i, line) in lines.iter().enumerate() {
@@ -275,10 +282,7 @@ fn same_events_in_either_encoding_give_identical_credit() {
             Err(r) => rejected.push((n, r)),
         }
     }
-    events.sort_by_key(|(n, ev)| (ev.timestamp_ms, *n));
-    let (_, first_paths, _) = replay_events(&events, &p, &[]);
-    let models = all_models(&first_paths);
-    let (rows, paths, duplicates) = replay_events(&events, &p, &models);
+    let (rows, paths, duplicates) = replay_events(&events, &p);
 
     // Same rejections, same lines, same reasons and details.
     assert_eq!(rejected, json.rejected);

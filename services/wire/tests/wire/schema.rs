@@ -5,8 +5,8 @@
 
 use std::fmt;
 
+use apportion_engine::contract::{DeadLetter, Interaction, ModelId, RejectReason, Timestamp, UserKey};
 use apportion_engine::{CreditRow, PathRow};
-use apportion_sinks::DeadLetter;
 use apportion_wire::FILE_DESCRIPTOR_SET;
 use prost::Message;
 use prost_types::field_descriptor_proto::{Label, Type};
@@ -100,18 +100,19 @@ pub fn full_credit() -> CreditRow {
     CreditRow {
         credit_id: "0f1e2d3c4b5a69788796a5b4c3d2e1f0".into(),
         conversion_id: "c-001".into(),
-        user_key: "9a8b7c6d".into(),
-        model: "markov".into(),
+        user_key: UserKey([0x9a; 32]),
+        model: ModelId::Markov,
         model_version: Some("m1-3f2a".into()),
         goal: "purchase".into(),
         touch_event_id: Some("t-001".into()),
         channel: "paid_search".into(),
         campaign: Some("spring-tents".into()),
-        interaction: Some("click".into()),
+        interaction: Some(Interaction::Click),
         position: 1,
         path_length: 3,
-        touch_timestamp: Some("2026-03-01T09:00:00.000Z".into()),
-        conversion_timestamp: "2026-03-03T12:00:00.000Z".into(),
+        // 2026-03-01T09:00:00.000Z and 2026-03-03T12:00:00.000Z.
+        touch_timestamp: Some(Timestamp(1_772_355_600_000)),
+        conversion_timestamp: Timestamp(1_772_539_200_000),
         credit: 0.25,
         credited_value: Some(47.375),
         currency: Some("EUR".into()),
@@ -134,14 +135,15 @@ pub fn empty_credit() -> CreditRow {
 pub fn full_path() -> PathRow {
     PathRow {
         path_id: "c:c-001".into(),
-        user_key: "9a8b7c6d".into(),
+        user_key: UserKey([0x9a; 32]),
         converted: true,
         conversion_id: Some("c-001".into()),
         goal: Some("purchase".into()),
         channels: vec!["paid_search".into(), "email".into(), "social".into()],
         touch_count: 3,
-        first_touch_timestamp: "2026-03-01T09:00:00.000Z".into(),
-        last_touch_timestamp: "2026-03-03T07:15:00.250Z".into(),
+        // 2026-03-01T09:00:00.000Z and 2026-03-03T07:15:00.250Z.
+        first_touch_timestamp: Timestamp(1_772_355_600_000),
+        last_touch_timestamp: Timestamp(1_772_522_100_250),
     }
 }
 
@@ -151,13 +153,14 @@ pub fn empty_path() -> PathRow {
 
 pub fn full_dead_letter() -> DeadLetter {
     DeadLetter {
-        reason: "invalid_currency".into(),
+        reason: RejectReason::InvalidCurrency,
         detail: "field `currency` must be an ISO 4217 code of three capital letters, got \"eur\"".into(),
         source: "shop.events".into(),
         partition: Some(3),
         offset: Some(4_200_000_000_123),
         event_id: Some("c-912".into()),
-        received_at: "2026-03-03T12:00:01.000Z".into(),
+        // 2026-03-03T12:00:01.000Z.
+        received_at: Timestamp(1_772_539_201_000),
     }
 }
 

@@ -1,0 +1,447 @@
+//! The input contract: parsing and validating one event.
+//!
+//! Every rule of the input contract (docs/contract.md, "Input events" and
+//! "Reject reasons") is checked here and nowhere else. A line that breaks a rule yields a [`Rejection`]
+//! with a stable, machine-readable [`RejectReason`] and a human detail; the
+//! caller routes it to the dead-letter output and carries on.
+//!
+//! Parsing borrows from the input line: each field is first read as a loose
+//! JSON scalar ([`Loose`]) so that a wrong type is reported against its field
+//! instead of as an opaque serde error.
+
+use std::borrow::Cow;
+use std::fmt;
+
+use serde::de::{Deserializer, IgnoredAny, MapAccess, SeqAccess, Visitor};
+use serde::{Deserialize, Serialize};
+
+use crate::reject::{RejectReason, Rejection};
+use crate::time as time_fmt;
+
+/// Largest accepted input line / message, in bytes (default).
+pub const DEFAULT_MAX_EVENT_BYTES: usize = 1 << 20;
+/// Maximum length of `event_id`, in bytes.
+pub const MAX_EVENT_ID_BYTES: usize = 128;
+/// Maximum length of `user_id`, in bytes.
+pub const MAX_USER_ID_BYTES: usize = 256;
+/// Maximum length of `channel`, `campaign` and `goal`, in bytes.
+pub const MAX_LABEL_BYTES: usize = 256;
+
+/// Kind of an input event.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum EventKind {
+    /// A marketing touch (click or view).
+    Touch,
+    /// A conversion to be credited.
+    Conversion,
+    /// A request to forget everything held for the user.
+    Erase,
+}
+
+impl EventKind {
+    /// The contract's spelling.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            EventKind::Touch => "touch",
+            EventKind::Conversion => "conversion",
+            EventKind::Erase => "erase",
+        }
+    }
+}
+
+/// How a touch happened.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum Interaction {
+    /// A click (the default).
+    #[default]
+    Click,
+    /// An impression / view.
+    View,
+}
+
+impl Interaction {
+    /// The contract's spelling.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Interaction::Click => "click",
+            Interaction::View => "view",
+        }
+    }
+}
+
+/// A validated input event. `user_id` is still the raw id: pseudonymize it
+/// at once with [`crate::Pseudonymizer`] and drop this value.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Event {
+    /// Kind of event.
+    pub kind: EventKind,
+    /// Unique id (empty for `erase`).
+    pub event_id: String,
+    /// Raw user id. Never stored, logged or written out.
+    pub user_id: String,
+    /// Event time, epoch milliseconds.
+    pub timestamp_ms: i64,
+    /// Channel (touches only; empty otherwise).
+    pub channel: String,
+    /// Campaign, if given.
+    pub campaign: Option<String>,
+    /// Click or view (touches only).
+    pub interaction: Interaction,
+    /// Conversion goal (conversions only; `conversion` by default).
+    pub goal: String,
+    /// Conversion value.
+    pub value: Option<f64>,
+    /// ISO 4217 currency of `value`.
+    pub currency: Option<String>,
+}
+
+/// A JSON value read loosely, so that each field's type can be checked with
+/// a precise reason. Arrays and objects are skipped, not kept.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Loose<'a> {
+    /// JSON null.
+    Null,
+    /// true / false.
+    Bool(bool),
+    /// A number that fits i64.
+    Int(i64),
+    /// A non-negative integer above i64::MAX.
+    UInt(u64),
+    /// Any other number.
+    Float(f64),
+    /// A string (borrowed when it had no escapes).
+    Str(Cow<'a, str>),
+    /// An array or object.
+    Composite,
+}
+
+impl Loose<'_> {
+    fn kind(&self) -> &'static str {
+        match self {
+            Loose::Null => "null",
+            Loose::Bool(_) => "a boolean",
+            Loose::Int(_) | Loose::UInt(_) | Loose::Float(_) => "a number",
+            Loose::Str(_) => "a string",
+            Loose::Composite => "an array or object",
+        }
+    }
+}
+
+impl<'de: 'a, 'a> Deserialize<'de> for Loose<'a> {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = Loose<'de>;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("any JSON value")
+            }
+            fn visit_unit<E>(self) -> Result<Self::Value, E> {
+                Ok(Loose::Null)
+            }
+            fn visit_none<E>(self) -> Result<Self::Value, E> {
+                Ok(Loose::Null)
+            }
+            fn visit_bool<E>(self, v: bool) -> Result<Self::Value, E> {
+                Ok(Loose::Bool(v))
+            }
+            fn visit_i64<E>(self, v: i64) -> Result<Self::Value, E> {
+                Ok(Loose::Int(v))
+            }
+            fn visit_u64<E>(self, v: u64) -> Result<Self::Value, E> {
+                Ok(i64::try_from(v).map(Loose::Int).unwrap_or(Loose::UInt(v)))
+            }
+            fn visit_f64<E>(self, v: f64) -> Result<Self::Value, E> {
+                Ok(Loose::Float(v))
+            }
+            fn visit_borrowed_str<E>(self, v: &'de str) -> Result<Self::Value, E> {
+                Ok(Loose::Str(Cow::Borrowed(v)))
+            }
+            fn visit_str<E>(self, v: &str) -> Result<Self::Value, E> {
+                Ok(Loose::Str(Cow::Owned(v.to_string())))
+            }
+            fn visit_string<E>(self, v: String) -> Result<Self::Value, E> {
+                Ok(Loose::Str(Cow::Owned(v)))
+            }
+            fn visit_seq<A: SeqAccess<'de>>(self, mut seq: A) -> Result<Self::Value, A::Error> {
+                while seq.next_element::<IgnoredAny>()?.is_some() {}
+                Ok(Loose::Composite)
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
+                while map.next_entry::<IgnoredAny, IgnoredAny>()?.is_some() {}
+                Ok(Loose::Composite)
+            }
+        }
+        d.deserialize_any(V)
+    }
+}
+
+/// The fields of the contract, read loosely. Unknown fields are ignored.
+#[derive(Debug, Default, Deserialize)]
+struct RawEvent<'a> {
+    #[serde(borrow, rename = "type")]
+    kind: Option<Loose<'a>>,
+    #[serde(borrow)]
+    event_id: Option<Loose<'a>>,
+    #[serde(borrow)]
+    user_id: Option<Loose<'a>>,
+    #[serde(borrow)]
+    timestamp: Option<Loose<'a>>,
+    #[serde(borrow)]
+    channel: Option<Loose<'a>>,
+    #[serde(borrow)]
+    campaign: Option<Loose<'a>>,
+    #[serde(borrow)]
+    interaction: Option<Loose<'a>>,
+    #[serde(borrow)]
+    goal: Option<Loose<'a>>,
+    #[serde(borrow)]
+    value: Option<Loose<'a>>,
+    #[serde(borrow)]
+    currency: Option<Loose<'a>>,
+}
+
+/// Treats JSON null as absent.
+fn present<'a, 'b>(v: &'b Option<Loose<'a>>) -> Option<&'b Loose<'a>> {
+    match v {
+        None | Some(Loose::Null) => None,
+        Some(v) => Some(v),
+    }
+}
+
+fn string_field(
+    v: &Option<Loose<'_>>,
+    field: &str,
+    max: usize,
+    missing: Option<RejectReason>,
+    invalid: RejectReason,
+) -> Result<Option<String>, Rejection> {
+    match present(v) {
+        None => match missing {
+            Some(reason) => Err(Rejection::new(reason, format!("field `{field}` is required"))),
+            None => Ok(None),
+        },
+        Some(Loose::Str(s)) => {
+            if s.is_empty() {
+                Err(Rejection::new(invalid, format!("field `{field}` must not be empty")))
+            } else if s.len() > max {
+                Err(Rejection::new(invalid, format!("field `{field}` is {} bytes, at most {max} allowed", s.len())))
+            } else {
+                Ok(Some(s.to_string()))
+            }
+        }
+        Some(other) => Err(Rejection::new(invalid, format!("field `{field}` must be a string, got {}", other.kind()))),
+    }
+}
+
+/// True when `code` is three ASCII capital letters, the shape of an ISO 4217
+/// alphabetic code.
+pub fn is_currency_code(code: &str) -> bool {
+    code.len() == 3 && code.bytes().all(|b| b.is_ascii_uppercase())
+}
+
+/// Parses and validates one event (one NDJSON line or one message body),
+/// with the default size limit.
+pub fn parse_event(line: &[u8]) -> Result<Event, Rejection> {
+    parse_event_limited(line, DEFAULT_MAX_EVENT_BYTES)
+}
+
+/// Parses and validates one event, rejecting anything above `max_bytes`.
+pub fn parse_event_limited(line: &[u8], max_bytes: usize) -> Result<Event, Rejection> {
+    if line.len() > max_bytes {
+        return Err(Rejection::new(
+            RejectReason::TooLarge,
+            format!("event is {} bytes, at most {max_bytes} allowed", line.len()),
+        ));
+    }
+    let text =
+        std::str::from_utf8(line).map_err(|e| Rejection::new(RejectReason::InvalidUtf8, format!("not UTF-8: {e}")))?;
+    let trimmed = text.trim();
+    if !trimmed.starts_with('{') {
+        // Distinguish "valid JSON, wrong shape" from "not JSON".
+        return Err(match serde_json::from_str::<IgnoredAny>(trimmed) {
+            Ok(_) => Rejection::new(RejectReason::NotAnObject, "event must be a JSON object"),
+            Err(e) => Rejection::new(RejectReason::InvalidJson, format!("not valid JSON: {e}")),
+        });
+    }
+    let raw: RawEvent<'_> = serde_json::from_str(trimmed)
+        .map_err(|e| Rejection::new(RejectReason::InvalidJson, format!("not valid JSON: {e}")))?;
+    validate(raw)
+}
+
+fn validate(raw: RawEvent<'_>) -> Result<Event, Rejection> {
+    let kind = match present(&raw.kind) {
+        None => return Err(Rejection::new(RejectReason::MissingType, "field `type` is required")),
+        Some(Loose::Str(s)) => match s.as_ref() {
+            "touch" => EventKind::Touch,
+            "conversion" => EventKind::Conversion,
+            "erase" => EventKind::Erase,
+            other => {
+                return Err(Rejection::new(
+                    RejectReason::InvalidType,
+                    format!("field `type` must be touch, conversion or erase, got {:?}", truncate(other)),
+                ))
+            }
+        },
+        Some(other) => {
+            return Err(Rejection::new(
+                RejectReason::InvalidType,
+                format!("field `type` must be a string, got {}", other.kind()),
+            ))
+        }
+    };
+
+    let event_id = if kind == EventKind::Erase {
+        // Optional on erase; checked when present.
+        string_field(&raw.event_id, "event_id", MAX_EVENT_ID_BYTES, None, RejectReason::InvalidEventId)?
+            .unwrap_or_default()
+    } else {
+        string_field(
+            &raw.event_id,
+            "event_id",
+            MAX_EVENT_ID_BYTES,
+            Some(RejectReason::MissingEventId),
+            RejectReason::InvalidEventId,
+        )?
+        .unwrap_or_default()
+    };
+
+    let user_id = string_field(
+        &raw.user_id,
+        "user_id",
+        MAX_USER_ID_BYTES,
+        Some(RejectReason::MissingUserId),
+        RejectReason::InvalidUserId,
+    )?
+    .unwrap_or_default();
+
+    let timestamp_ms =
+        match present(&raw.timestamp) {
+            None => return Err(Rejection::new(RejectReason::MissingTimestamp, "field `timestamp` is required")),
+            Some(Loose::Str(s)) => time_fmt::parse_rfc3339_ms(s).ok_or_else(|| {
+                Rejection::new(
+                    RejectReason::InvalidTimestamp,
+                    format!("field `timestamp` is not an RFC 3339 date-time: {:?}", truncate(s)),
+                )
+            })?,
+            Some(Loose::Int(ms)) if time_fmt::in_range(*ms) => *ms,
+            Some(Loose::Int(_)) | Some(Loose::UInt(_)) => {
+                return Err(Rejection::new(
+                    RejectReason::InvalidTimestamp,
+                    "field `timestamp` epoch milliseconds out of range (years 1 to 9999)",
+                ))
+            }
+            Some(Loose::Float(_)) => return Err(Rejection::new(
+                RejectReason::InvalidTimestamp,
+                "field `timestamp` must be an RFC 3339 string or integer epoch milliseconds, got a fractional number",
+            )),
+            Some(other) => {
+                return Err(Rejection::new(
+                    RejectReason::InvalidTimestamp,
+                    format!(
+                        "field `timestamp` must be an RFC 3339 string or integer epoch milliseconds, got {}",
+                        other.kind()
+                    ),
+                ))
+            }
+        };
+
+    let mut ev = Event {
+        kind,
+        event_id,
+        user_id,
+        timestamp_ms,
+        channel: String::new(),
+        campaign: None,
+        interaction: Interaction::Click,
+        goal: String::new(),
+        value: None,
+        currency: None,
+    };
+
+    match kind {
+        EventKind::Touch => {
+            ev.channel = string_field(
+                &raw.channel,
+                "channel",
+                MAX_LABEL_BYTES,
+                Some(RejectReason::MissingChannel),
+                RejectReason::InvalidChannel,
+            )?
+            .unwrap_or_default();
+            ev.campaign =
+                string_field(&raw.campaign, "campaign", MAX_LABEL_BYTES, None, RejectReason::InvalidCampaign)?;
+            ev.interaction = match present(&raw.interaction) {
+                None => Interaction::Click,
+                Some(Loose::Str(s)) if s == "click" => Interaction::Click,
+                Some(Loose::Str(s)) if s == "view" => Interaction::View,
+                Some(other) => {
+                    let got = match other {
+                        Loose::Str(s) => format!("{:?}", truncate(s)),
+                        o => o.kind().to_string(),
+                    };
+                    return Err(Rejection::new(
+                        RejectReason::InvalidInteraction,
+                        format!("field `interaction` must be \"click\" or \"view\", got {got}"),
+                    ));
+                }
+            };
+        }
+        EventKind::Conversion => {
+            ev.goal = string_field(&raw.goal, "goal", MAX_LABEL_BYTES, None, RejectReason::InvalidGoal)?
+                .unwrap_or_else(|| "conversion".to_string());
+            ev.value = match present(&raw.value) {
+                None => None,
+                Some(Loose::Int(v)) if *v >= 0 => Some(*v as f64),
+                Some(Loose::UInt(v)) => Some(*v as f64),
+                Some(Loose::Float(v)) if v.is_finite() && *v >= 0.0 => Some(*v),
+                Some(Loose::Int(_)) | Some(Loose::Float(_)) => {
+                    return Err(Rejection::new(
+                        RejectReason::InvalidValue,
+                        "field `value` must be a finite number >= 0",
+                    ))
+                }
+                Some(other) => {
+                    return Err(Rejection::new(
+                        RejectReason::InvalidValue,
+                        format!("field `value` must be a number, got {}", other.kind()),
+                    ))
+                }
+            };
+            ev.currency = match present(&raw.currency) {
+                None => None,
+                Some(Loose::Str(s)) if is_currency_code(s) => Some(s.to_string()),
+                Some(Loose::Str(s)) => {
+                    return Err(Rejection::new(
+                        RejectReason::InvalidCurrency,
+                        format!(
+                            "field `currency` must be an ISO 4217 code of three capital letters, got {:?}",
+                            truncate(s)
+                        ),
+                    ))
+                }
+                Some(other) => {
+                    return Err(Rejection::new(
+                        RejectReason::InvalidCurrency,
+                        format!("field `currency` must be a string, got {}", other.kind()),
+                    ))
+                }
+            };
+        }
+        EventKind::Erase => {}
+    }
+    Ok(ev)
+}
+
+/// Shortens a user-supplied string for an error message.
+fn truncate(s: &str) -> String {
+    if s.len() <= 64 {
+        return s.to_string();
+    }
+    let mut end = 64;
+    while !s.is_char_boundary(end) {
+        end -= 1;
+    }
+    format!("{}...", &s[..end])
+}

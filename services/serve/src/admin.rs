@@ -1,0 +1,56 @@
+//! The admin HTTP endpoints: `/metrics`, `/healthz`, `/readyz` and
+//! `/v1/models`, all read-only. (The ingest endpoint of embedded mode is in
+//! [`crate::embedded::http`].)
+
+use std::sync::{Arc, Mutex};
+
+use axum::extract::State;
+use axum::http::{header, StatusCode};
+use axum::response::{IntoResponse, Response};
+use axum::routing::get;
+use axum::{Json, Router};
+
+use crate::metrics::Metrics;
+use crate::run_loop::Shared;
+
+#[derive(Clone)]
+struct AdminState {
+    metrics: Metrics,
+    shared: Arc<Mutex<Shared>>,
+}
+
+/// The admin router.
+pub fn admin_router(metrics: Metrics, shared: Arc<Mutex<Shared>>) -> Router {
+    Router::new()
+        .route("/metrics", get(metrics_handler))
+        .route("/healthz", get(healthz))
+        .route("/readyz", get(readyz))
+        .route("/v1/models", get(models))
+        .with_state(AdminState { metrics, shared })
+}
+
+async fn metrics_handler(State(s): State<AdminState>) -> Response {
+    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], s.metrics.render()).into_response()
+}
+
+async fn healthz(State(s): State<AdminState>) -> Response {
+    match s.shared.lock().expect("shared").failed.clone() {
+        None => (StatusCode::OK, "ok\n").into_response(),
+        Some(e) => (StatusCode::SERVICE_UNAVAILABLE, format!("processing stopped: {e}\n")).into_response(),
+    }
+}
+
+async fn readyz(State(s): State<AdminState>) -> Response {
+    let sh = s.shared.lock().expect("shared");
+    if sh.ready {
+        (StatusCode::OK, "ready\n").into_response()
+    } else {
+        (StatusCode::SERVICE_UNAVAILABLE, "not ready: store opening, partitions not assigned, or lag above the limit\n")
+            .into_response()
+    }
+}
+
+async fn models(State(s): State<AdminState>) -> Response {
+    let v = s.shared.lock().expect("shared").models.clone();
+    Json(v).into_response()
+}

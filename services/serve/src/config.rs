@@ -1,0 +1,645 @@
+//! Typed configuration: defaults, then the TOML file, then `APPORTION_*`
+//! environment variables, then command-line flags.
+//!
+//! Every field is documented in [`DEFAULT_CONFIG`], the file printed by
+//! `apportion config --print-default`; a test checks that this file parses to
+//! exactly [`Config::default`] and mentions every field, so the reference
+//! cannot drift from the structs.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{bail, Context, Result};
+use apportion_contract::{ModelId, Period};
+use apportion_engine::journey::Rules;
+use apportion_engine::registry::{check_params, ModelPlan, RuleParams};
+pub use apportion_sinks::parquet::ParquetConfig;
+pub use apportion_sinks::postgres::{OnUnavailable, PostgresConfig};
+use serde::{Deserialize, Serialize};
+
+/// The documented default configuration file.
+pub const DEFAULT_CONFIG: &str = include_str!("default_config.toml");
+
+/// What to do with an event older than the watermark.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum LatePolicy {
+    /// Send it to the dead-letter output with reason `late`.
+    #[default]
+    DeadLetter,
+    /// Apply it anyway (it joins the user's open journey).
+    Apply,
+}
+
+/// Log format.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum LogFormat {
+    /// Human format on a terminal, JSON otherwise.
+    #[default]
+    Auto,
+    /// Always human-readable text.
+    Text,
+    /// Always one JSON object per line.
+    Json,
+}
+
+/// Topic payload encoding.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum Format {
+    /// One JSON object per message.
+    #[default]
+    Json,
+    /// The protobuf encoding of proto/apportion/v1.
+    Protobuf,
+}
+
+/// The whole configuration.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Config {
+    /// Where sled keeps state; absent: a temporary directory (replay) or `./apportion-data` (serve).
+    pub data_dir: Option<String>,
+    /// Models to run, in output order.
+    pub models: Vec<ModelId>,
+    /// Lookback window for clicks.
+    pub lookback: Period,
+    /// Lookback window for views; empty means the same as `lookback`.
+    pub view_lookback: Option<Period>,
+    /// A journey closes as non-converting when last touch + expiry < watermark.
+    pub expiry: Period,
+    /// Half-life of `time_decay`.
+    pub half_life: Period,
+    /// `u_shaped` weight of the first touch (paths of 3 or more).
+    pub u_shaped_first: f64,
+    /// `u_shaped` weight of the last touch (paths of 3 or more).
+    pub u_shaped_last: f64,
+    /// Order of the `markov` chain (1 to 4).
+    pub markov_order: usize,
+    /// Secret key for pseudonymization (prefer the environment variable).
+    pub pseudonym_key: Option<String>,
+    /// Largest accepted event, in bytes.
+    pub max_event_bytes: usize,
+    /// Memory budget of the journey cache, in bytes.
+    pub cache_bytes: usize,
+    /// Streaming: how late an event may be and still count.
+    pub allowed_lateness: Period,
+    /// Streaming: what to do with events later than that.
+    pub late_policy: LatePolicy,
+    /// Streaming: after this long without input, the watermark advances by processing time.
+    pub idle_timeout: Period,
+    /// Streaming: how often the data-driven models are refitted.
+    pub refit_interval: Period,
+    /// Streaming: how long event ids are remembered for duplicate detection (event time).
+    pub dedupe_horizon: Period,
+    /// Streaming: largest number of events in one processing batch.
+    pub batch_size: usize,
+    /// Streaming: shutdown grace period.
+    pub shutdown_grace: Period,
+    /// Admin HTTP listener.
+    pub admin: AdminConfig,
+    /// Embedded mode (no Kafka): HTTP ingest and files.
+    pub embedded: EmbeddedConfig,
+    /// Kafka source and sinks; absent means embedded mode.
+    pub kafka: Option<KafkaConfig>,
+    /// PostgreSQL sink, in addition to the Kafka or file output; absent means off.
+    pub postgres: Option<PostgresConfig>,
+    /// Parquet sink, in addition to the Kafka or file output; absent means off.
+    pub parquet: Option<ParquetConfig>,
+    /// Logging.
+    pub log: LogConfig,
+}
+
+/// Admin HTTP listener.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct AdminConfig {
+    /// Address of /metrics, /healthz, /readyz and /v1/models.
+    pub listen: String,
+    /// /readyz fails while consumer lag exceeds this many messages (0: no limit).
+    pub max_ready_lag: u64,
+}
+
+/// Embedded mode.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct EmbeddedConfig {
+    /// Address of the ingest endpoint (POST /v1/events); empty disables it.
+    pub http_listen: String,
+    /// An NDJSON file to follow; absent: none.
+    pub watch_file: Option<String>,
+    /// Directory of the rotating output files.
+    pub output_dir: String,
+    /// Rotate an output file after this many bytes.
+    pub rotate_bytes: u64,
+}
+
+/// Kafka.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct KafkaConfig {
+    /// Bootstrap servers.
+    pub brokers: String,
+    /// Consumer group.
+    pub group_id: String,
+    /// Input topics.
+    pub input_topics: Vec<String>,
+    /// Payload format of the input topics.
+    pub input_format: Format,
+    /// Credit rows topic.
+    pub credit_topic: String,
+    /// Closed paths topic.
+    pub paths_topic: String,
+    /// Dead-letter topic.
+    pub dead_letter_topic: String,
+    /// Payload format of the output topics.
+    pub output_format: Format,
+    /// False: input is not keyed by user; events are first re-keyed through `repartition_topic`.
+    pub input_keyed_by_user: bool,
+    /// Internal topic keyed by user key (used when `input_keyed_by_user = false`).
+    pub repartition_topic: String,
+    /// Extra librdkafka properties (TLS, SASL, tuning), passed through as is.
+    pub properties: std::collections::BTreeMap<String, String>,
+}
+
+/// Logging.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct LogConfig {
+    /// auto, text or json.
+    pub format: LogFormat,
+    /// Filter, e.g. `info` or `apportion=debug`.
+    pub level: String,
+}
+
+impl Default for Config {
+    fn default() -> Self {
+        Config {
+            data_dir: None,
+            models: ModelId::RULES.to_vec(),
+            lookback: Period::days(30),
+            view_lookback: None,
+            expiry: Period::days(30),
+            half_life: Period::days(7),
+            u_shaped_first: 0.4,
+            u_shaped_last: 0.4,
+            markov_order: 1,
+            pseudonym_key: None,
+            max_event_bytes: apportion_contract::event::DEFAULT_MAX_EVENT_BYTES,
+            cache_bytes: 256 << 20,
+            allowed_lateness: Period::seconds(5),
+            late_policy: LatePolicy::DeadLetter,
+            idle_timeout: Period::seconds(60),
+            refit_interval: Period(15 * 60_000),
+            dedupe_horizon: Period::days(7),
+            batch_size: 5000,
+            shutdown_grace: Period::seconds(30),
+            admin: AdminConfig::default(),
+            embedded: EmbeddedConfig::default(),
+            kafka: None,
+            postgres: None,
+            parquet: None,
+            log: LogConfig::default(),
+        }
+    }
+}
+
+impl Default for AdminConfig {
+    fn default() -> Self {
+        AdminConfig { listen: "127.0.0.1:9464".into(), max_ready_lag: 0 }
+    }
+}
+
+impl Default for EmbeddedConfig {
+    fn default() -> Self {
+        EmbeddedConfig {
+            http_listen: "127.0.0.1:9465".into(),
+            watch_file: None,
+            output_dir: "apportion-out".into(),
+            rotate_bytes: 64 << 20,
+        }
+    }
+}
+
+impl Default for KafkaConfig {
+    fn default() -> Self {
+        KafkaConfig {
+            brokers: "127.0.0.1:9092".into(),
+            group_id: "apportion".into(),
+            input_topics: vec!["events".into()],
+            input_format: Format::Json,
+            credit_topic: "credit".into(),
+            paths_topic: "paths".into(),
+            dead_letter_topic: "events-dead-letter".into(),
+            output_format: Format::Json,
+            input_keyed_by_user: true,
+            repartition_topic: "apportion-repartition".into(),
+            properties: Default::default(),
+        }
+    }
+}
+
+impl Default for LogConfig {
+    fn default() -> Self {
+        LogConfig { format: LogFormat::Auto, level: "info".into() }
+    }
+}
+
+impl Config {
+    /// Loads defaults, then `file` (if any), then `APPORTION_*` variables from `env`.
+    pub fn load(file: Option<&Path>, env: impl IntoIterator<Item = (String, String)>) -> Result<Config> {
+        let mut value = toml::Value::try_from(Config::default()).context("serializing defaults")?;
+        if let Some(path) = file {
+            let text =
+                std::fs::read_to_string(path).with_context(|| format!("cannot read config file {}", path.display()))?;
+            let file_value: toml::Value =
+                toml::from_str(&text).with_context(|| format!("config file {} is not valid TOML", path.display()))?;
+            merge(&mut value, file_value);
+        }
+        apply_env(&mut value, env)?;
+        let cfg: Config = value.try_into().map_err(|e: toml::de::Error| {
+            anyhow::anyhow!(
+                "invalid configuration{}: {}",
+                file.map(|p| format!(" in {}", p.display())).unwrap_or_default(),
+                e.message()
+            )
+        })?;
+        cfg.validate()?;
+        Ok(cfg)
+    }
+
+    /// Checks values that types alone do not.
+    pub fn validate(&self) -> Result<()> {
+        if self.models.is_empty() {
+            bail!("models must list at least one model");
+        }
+        for (i, m) in self.models.iter().enumerate() {
+            if self.models[..i].contains(m) {
+                bail!("model {m:?} is listed twice in models");
+            }
+        }
+        check_params(&self.rule_params())?;
+        if self.lookback.ms() <= 0 || self.expiry.ms() <= 0 {
+            bail!("lookback and expiry must be greater than 0");
+        }
+        if !(1..=4).contains(&self.markov_order) {
+            bail!("markov_order must be 1, 2, 3 or 4, got {}", self.markov_order);
+        }
+        if self.batch_size == 0 {
+            bail!("batch_size must be at least 1");
+        }
+        if let Some(k) = &self.kafka {
+            if k.input_topics.is_empty() {
+                bail!("kafka.input_topics must list at least one topic");
+            }
+            for key in k.properties.keys() {
+                if let Some(why) = managed_kafka_property(key) {
+                    bail!("kafka.properties.\"{key}\" cannot be set: {why}");
+                }
+            }
+        }
+        if let Some(p) = &self.postgres {
+            p.validate().map_err(anyhow::Error::msg)?;
+        }
+        if let Some(q) = &self.parquet {
+            q.validate().map_err(anyhow::Error::msg)?;
+            if self.kafka.is_none() && Path::new(&q.dir) == Path::new(&self.embedded.output_dir) {
+                bail!(
+                    "parquet.dir and embedded.output_dir are both {:?}; give the Parquet files their own directory",
+                    q.dir
+                );
+            }
+        }
+        Ok(())
+    }
+
+    /// Journey timing rules.
+    pub fn rules(&self) -> Rules {
+        Rules {
+            lookback_ms: self.lookback.ms(),
+            view_lookback_ms: self.view_lookback.unwrap_or(self.lookback).ms(),
+            expiry_ms: self.expiry.ms(),
+        }
+    }
+
+    /// Rule-model parameters.
+    pub fn rule_params(&self) -> RuleParams {
+        RuleParams { half_life_ms: self.half_life.ms(), u_first: self.u_shaped_first, u_last: self.u_shaped_last }
+    }
+
+    /// The models and their parameters.
+    pub fn model_plan(&self) -> ModelPlan {
+        ModelPlan { ids: self.models.clone(), params: self.rule_params(), markov_order: self.markov_order }
+    }
+
+    /// True when a data-driven model is configured.
+    pub fn data_driven(&self) -> bool {
+        self.models.iter().any(|m| m.is_data_driven())
+    }
+
+    /// The pseudonymization key, and whether it is the development key.
+    pub fn pseudonym_key(&self) -> (Vec<u8>, bool) {
+        match self.pseudonym_key.as_deref() {
+            None | Some("") => (apportion_engine::pseudonym::DEVELOPMENT_KEY.to_vec(), true),
+            Some(k) => (k.as_bytes().to_vec(), false),
+        }
+    }
+
+    /// The data directory, if set.
+    pub fn data_dir(&self) -> Option<PathBuf> {
+        self.data_dir.as_deref().filter(|d| !d.is_empty()).map(PathBuf::from)
+    }
+
+    /// The file to follow in embedded mode, if set.
+    pub fn watch_file(&self) -> Option<PathBuf> {
+        self.embedded.watch_file.as_deref().filter(|d| !d.is_empty()).map(PathBuf::from)
+    }
+
+    /// A configuration with every optional section and field present (at
+    /// its default), so that every field has a name (environment variables,
+    /// the documentation check).
+    pub fn every_field() -> Config {
+        let mut full = Config {
+            data_dir: Some(String::new()),
+            pseudonym_key: Some(String::new()),
+            view_lookback: Some(Period::days(30)),
+            kafka: Some(KafkaConfig::default()),
+            postgres: Some(PostgresConfig { spool_dir: Some(String::new()), ..Default::default() }),
+            parquet: Some(ParquetConfig::default()),
+            ..Default::default()
+        };
+        full.embedded.watch_file = Some(String::new());
+        full
+    }
+}
+
+/// librdkafka properties the service sets itself, because its delivery
+/// guarantees depend on them, with the reason given when a user sets one.
+pub fn managed_kafka_property(key: &str) -> Option<&'static str> {
+    Some(match key {
+        "bootstrap.servers" => "use kafka.brokers",
+        "group.id" => "use kafka.group_id",
+        "enable.auto.commit" | "enable.auto.offset.store" => {
+            "offsets are committed only after the output is written and the state is committed (at-least-once delivery)"
+        }
+        "auto.offset.reset" => "a new consumer group starts from the earliest offset, so no input is skipped",
+        "enable.partition.eof" => "the consumer relies on it being off",
+        "enable.idempotence" | "acks" => {
+            "the producer must be idempotent with acks=all so that no output row is lost or duplicated by retries"
+        }
+        "isolation.level" => "the consumer's isolation level is part of the delivery guarantee",
+        _ => return None,
+    })
+}
+
+fn merge(base: &mut toml::Value, over: toml::Value) {
+    match (base, over) {
+        (toml::Value::Table(b), toml::Value::Table(o)) => {
+            for (k, v) in o {
+                match b.get_mut(&k) {
+                    Some(existing) if existing.is_table() && v.is_table() => merge(existing, v),
+                    _ => {
+                        b.insert(k, v);
+                    }
+                }
+            }
+        }
+        (b, o) => *b = o,
+    }
+}
+
+/// `APPORTION_*` variables of the test and development scripts, not
+/// configuration fields (prefixes).
+const NOT_CONFIG: [&str; 6] = [
+    "APPORTION_TEST_",
+    "APPORTION_REQUIRE_SERVERS",
+    "APPORTION_CHECK_",
+    "APPORTION_DEV_",
+    "APPORTION_BIN",
+    "APPORTION_LOAD_",
+];
+
+/// Applies `APPORTION_<PATH>` variables, where PATH is a field path joined by
+/// `_` in capitals (e.g. `APPORTION_LOOKBACK`, `APPORTION_KAFKA_BROKERS`,
+/// `APPORTION_ADMIN_LISTEN`). Lists take comma-separated values. An
+/// `APPORTION_*` variable that names no field is an error, so typos are seen.
+fn apply_env(value: &mut toml::Value, env: impl IntoIterator<Item = (String, String)>) -> Result<()> {
+    // Every field, optional ones included (present in `every_field`), so
+    // that e.g. APPORTION_POSTGRES_URL alone turns the section on.
+    let mut paths: Vec<(String, Vec<String>, toml::Value)> = Vec::new();
+    fn collect(prefix: &[String], v: &toml::Value, out: &mut Vec<(String, Vec<String>, toml::Value)>) {
+        if let toml::Value::Table(t) = v {
+            for (k, child) in t {
+                let mut p = prefix.to_vec();
+                p.push(k.clone());
+                if child.is_table() && k != "properties" {
+                    collect(&p, child, out);
+                } else {
+                    let name = format!("APPORTION_{}", p.join("_").to_uppercase());
+                    out.push((name, p, child.clone()));
+                }
+            }
+        }
+    }
+    collect(&[], &toml::Value::try_from(Config::every_field())?, &mut paths);
+    for (name, raw) in env {
+        if !name.starts_with("APPORTION_") || NOT_CONFIG.iter().any(|p| name.starts_with(p)) {
+            continue;
+        }
+        let Some((_, path, template)) = paths.iter().find(|(n, _, _)| *n == name) else {
+            bail!("environment variable {name} names no configuration field (see `apportion config --print-default`)");
+        };
+        let parsed = match template {
+            toml::Value::Array(_) => toml::Value::Array(
+                raw.split(',')
+                    .map(str::trim)
+                    .filter(|s| !s.is_empty())
+                    .map(|s| toml::Value::String(s.into()))
+                    .collect(),
+            ),
+            toml::Value::Integer(_) => toml::Value::Integer(
+                raw.trim().parse().with_context(|| format!("{name} must be an integer, got {raw:?}"))?,
+            ),
+            toml::Value::Float(_) => {
+                toml::Value::Float(raw.trim().parse().with_context(|| format!("{name} must be a number, got {raw:?}"))?)
+            }
+            toml::Value::Boolean(_) => toml::Value::Boolean(
+                raw.trim().parse().with_context(|| format!("{name} must be true or false, got {raw:?}"))?,
+            ),
+            _ => toml::Value::String(raw),
+        };
+        let mut cur = &mut *value;
+        for (i, seg) in path.iter().enumerate() {
+            let table = cur.as_table_mut().expect("path goes through tables");
+            if i + 1 == path.len() {
+                table.insert(seg.clone(), parsed.clone());
+                break;
+            }
+            cur = table.entry(seg.clone()).or_insert_with(|| toml::Value::Table(Default::default()));
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn default_file_is_the_default_config() {
+        let parsed: Config = toml::from_str(DEFAULT_CONFIG).expect("default file parses");
+        assert_eq!(parsed, Config::default());
+    }
+
+    #[test]
+    fn default_file_mentions_every_field() {
+        let v = toml::Value::try_from(Config::every_field()).unwrap();
+        fn walk(v: &toml::Value, out: &mut Vec<String>) {
+            if let toml::Value::Table(t) = v {
+                for (k, c) in t {
+                    out.push(k.clone());
+                    walk(c, out);
+                }
+            }
+        }
+        let mut keys = Vec::new();
+        walk(&v, &mut keys);
+        for k in keys {
+            assert!(
+                DEFAULT_CONFIG.contains(&format!("{k} ="))
+                    || DEFAULT_CONFIG.contains(&format!("[{k}]"))
+                    || DEFAULT_CONFIG.contains(&format!(".{k}]")),
+                "default file does not document `{k}`"
+            );
+        }
+    }
+
+    #[test]
+    fn file_then_env() {
+        let dir = tempfile::tempdir().unwrap();
+        let f = dir.path().join("c.toml");
+        std::fs::write(&f, "lookback = \"7d\"\nmodels = [\"linear\"]\n[kafka]\nbrokers = \"b:1\"\n").unwrap();
+        let env = vec![
+            ("APPORTION_EXPIRY".to_string(), "12h".to_string()),
+            ("APPORTION_MODELS".to_string(), "last_touch, linear".to_string()),
+            ("APPORTION_KAFKA_GROUP_ID".to_string(), "g2".to_string()),
+            ("APPORTION_CACHE_BYTES".to_string(), "1000".to_string()),
+            ("HOME".to_string(), "/root".to_string()),
+        ];
+        let c = Config::load(Some(&f), env).unwrap();
+        assert_eq!(c.lookback, Period::days(7));
+        assert_eq!(c.expiry, Period(12 * 3_600_000));
+        assert_eq!(c.models, vec![ModelId::LastTouch, ModelId::Linear]);
+        let k = c.kafka.unwrap();
+        assert_eq!(k.brokers, "b:1");
+        assert_eq!(k.group_id, "g2");
+        assert_eq!(c.cache_bytes, 1000);
+    }
+
+    #[test]
+    fn errors_are_specific() {
+        let dir = tempfile::tempdir().unwrap();
+        let f = dir.path().join("c.toml");
+        std::fs::write(&f, "lookbak = \"7d\"\n").unwrap();
+        let e = Config::load(Some(&f), vec![]).unwrap_err().to_string();
+        assert!(e.contains("lookbak"), "{e}");
+        let e = Config::load(None, vec![("APPORTION_LOOKBAK".into(), "1d".into())]).unwrap_err().to_string();
+        assert!(e.contains("APPORTION_LOOKBAK"), "{e}");
+        let e = Config::load(None, vec![("APPORTION_LOOKBACK".into(), "1 fortnight".into())]).unwrap_err().to_string();
+        assert!(e.contains("invalid duration"), "{e}");
+        let e = Config::load(None, vec![("APPORTION_MODELS".into(), "linear,magic".into())]).unwrap_err().to_string();
+        assert!(e.contains("magic"), "{e}");
+        let e = Config::load(None, vec![("APPORTION_MODELS".into(), "linear,linear".into())]).unwrap_err().to_string();
+        assert!(e.contains("listed twice"), "{e}");
+        for key in ["acks", "enable.idempotence", "enable.auto.offset.store", "isolation.level", "group.id"] {
+            std::fs::write(&f, format!("[kafka]\n[kafka.properties]\n\"{key}\" = \"x\"\n")).unwrap();
+            let e = Config::load(Some(&f), vec![]).unwrap_err().to_string();
+            assert!(e.contains(key) && e.contains("cannot be set"), "{e}");
+        }
+    }
+
+    /// The commented-out sections of the default file, uncommented, are the
+    /// sections' defaults (so the reference shows the real values).
+    #[test]
+    fn optional_sections_documented_with_their_defaults() {
+        for (section, want) in [
+            (
+                "postgres",
+                toml::Value::try_from(PostgresConfig {
+                    url: "postgres://apportion@127.0.0.1:5432/warehouse".into(),
+                    ..Default::default()
+                })
+                .unwrap(),
+            ),
+            ("parquet", toml::Value::try_from(ParquetConfig::default()).unwrap()),
+        ] {
+            let header = format!("# [{section}]\n");
+            let start = DEFAULT_CONFIG.find(&header).unwrap_or_else(|| panic!("no commented [{section}] section"));
+            let body: String = DEFAULT_CONFIG[start + header.len()..]
+                .lines()
+                .take_while(|l| l.starts_with('#') && !l.starts_with("# ["))
+                .filter_map(|l| l.strip_prefix("# "))
+                .filter(|l| !l.starts_with("# ") && *l != "#")
+                .map(|l| format!("{l}\n"))
+                .collect();
+            let got: toml::Value =
+                toml::from_str(&body).unwrap_or_else(|e| panic!("[{section}] in the default file: {e}\n{body}"));
+            assert_eq!(got, want, "[{section}] of the default file");
+        }
+    }
+
+    #[test]
+    fn sinks_from_env_alone() {
+        let env = vec![
+            ("APPORTION_POSTGRES_URL".to_string(), "postgres://u:p@db:5432/w".to_string()),
+            ("APPORTION_POSTGRES_ON_UNAVAILABLE".to_string(), "continue".to_string()),
+            ("APPORTION_POSTGRES_MAX_RETRIES".to_string(), "7".to_string()),
+            ("APPORTION_PARQUET_ROLL_AFTER".to_string(), "5m".to_string()),
+            ("APPORTION_TEST_POSTGRES".to_string(), "ignored".to_string()),
+            ("APPORTION_REQUIRE_SERVERS".to_string(), "1".to_string()),
+            // load/bench/replay_scale.sh
+            ("APPORTION_LOAD_BIN".to_string(), "ignored".to_string()),
+        ];
+        let c = Config::load(None, env).unwrap();
+        let p = c.postgres.expect("postgres section from the environment");
+        assert_eq!(p.url, "postgres://u:p@db:5432/w");
+        assert_eq!(p.on_unavailable, OnUnavailable::Continue);
+        assert_eq!(p.max_retries, 7);
+        assert_eq!(p.schema, "public");
+        let q = c.parquet.expect("parquet section from the environment");
+        assert_eq!(q.roll_after, Period(5 * 60_000));
+        assert_eq!(q.dir, ParquetConfig::default().dir);
+        assert_eq!(Config::load(None, vec![]).unwrap().postgres, None);
+    }
+
+    #[test]
+    fn file_section_then_env() {
+        let dir = tempfile::tempdir().unwrap();
+        let f = dir.path().join("c.toml");
+        std::fs::write(&f, "[postgres]\nurl = \"postgres://file/db\"\nschema = \"wh\"\n[parquet]\ndir = \"pq\"\n")
+            .unwrap();
+        let env = vec![("APPORTION_POSTGRES_URL".to_string(), "postgres://env/db".to_string())];
+        let c = Config::load(Some(&f), env).unwrap();
+        let p = c.postgres.unwrap();
+        assert_eq!((p.url.as_str(), p.schema.as_str()), ("postgres://env/db", "wh"));
+        assert_eq!(c.parquet.unwrap().dir, "pq");
+    }
+
+    #[test]
+    fn sink_errors_are_specific() {
+        let dir = tempfile::tempdir().unwrap();
+        let f = dir.path().join("c.toml");
+        let load = |text: &str| {
+            std::fs::write(&f, text).unwrap();
+            Config::load(Some(&f), vec![]).unwrap_err().to_string()
+        };
+        assert!(load("[postgres]\nschema = \"x\"\n").contains("postgres.url is empty"));
+        assert!(load("[postgres]\nurl = \"postgres://h/d\"\non_unavailable = \"drop\"\n").contains("drop"));
+        assert!(load("[postgres]\nurl = \"postgres://h/d\"\nshema = \"x\"\n").contains("shema"));
+        assert!(load("[postgres]\nurl = \"postgres://h/d\"\ninitial_backoff = \"0s\"\n").contains("initial_backoff"));
+        let long = "s".repeat(64);
+        assert!(load(&format!("[postgres]\nurl = \"postgres://h/d\"\nschema = \"{long}\"\n")).contains("63 bytes"));
+        assert!(load("[parquet]\ndir = \"\"\n").contains("parquet.dir is empty"));
+        assert!(load("[parquet]\ndir = \"out\"\n[embedded]\noutput_dir = \"out\"\n").contains("own directory"));
+    }
+}

@@ -1,0 +1,111 @@
+//! Embedded mode (no Kafka): events arrive by HTTP (`POST /v1/events`, a
+//! body of NDJSON lines) and/or from a followed NDJSON file; output goes to
+//! rotating NDJSON files. Each source is one partition (`http/0`,
+//! `file/0`) with its own watermark; an HTTP request is answered after its
+//! batch is committed, with per-line results.
+
+pub mod file;
+pub mod http;
+
+use std::path::PathBuf;
+use std::sync::mpsc::{Receiver, RecvTimeoutError};
+use std::time::{Duration, Instant};
+
+use anyhow::Result;
+
+use crate::config::Format;
+use crate::pipeline::Pipeline;
+use crate::source::{InMsg, MsgStatus, PartId, Payload, Source};
+use file::Follower;
+use http::{IngestReply, IngestRequest, LineError};
+
+struct Waiting {
+    reply: tokio::sync::oneshot::Sender<IngestReply>,
+    lines: Vec<usize>,
+}
+
+/// HTTP and file input.
+pub struct EmbeddedSource {
+    rx: Receiver<IngestRequest>,
+    next_seq: i64,
+    waiting: Vec<Waiting>,
+    file: Option<Follower>,
+    http: PartId,
+    file_part: PartId,
+}
+
+impl EmbeddedSource {
+    /// Opens the embedded partitions on the pipeline.
+    pub fn new(pipeline: &mut Pipeline, rx: Receiver<IngestRequest>, watch_file: Option<PathBuf>) -> Result<Self> {
+        let http = PartId::new("http", 0);
+        let file_part = PartId::new("file", 0);
+        let committed = pipeline.open_partition(&http, Payload::Event(Format::Json))?;
+        let file = match watch_file {
+            Some(path) => {
+                let pos = pipeline.open_partition(&file_part, Payload::Event(Format::Json))?.unwrap_or(0).max(0) as u64;
+                Some(Follower::new(path, pos))
+            }
+            None => None,
+        };
+        Ok(EmbeddedSource { rx, next_seq: committed.map_or(0, |c| c + 1), waiting: Vec::new(), file, http, file_part })
+    }
+}
+
+impl Source for EmbeddedSource {
+    fn poll(&mut self, _pipeline: &mut Pipeline, max: usize, wait: Duration) -> Result<Vec<(PartId, Vec<InMsg>)>> {
+        let mut http = Vec::new();
+        let file = self.file.as_mut().map(|f| f.read(max)).unwrap_or_default();
+        let first = if file.is_empty() {
+            self.rx.recv_timeout(wait)
+        } else {
+            self.rx.try_recv().map_err(|_| RecvTimeoutError::Timeout)
+        };
+        let mut next = first.ok();
+        while let Some(req) = next.take() {
+            let now = Instant::now();
+            let mut lines = Vec::with_capacity(req.lines.len());
+            for (n, l) in req.lines {
+                http.push(InMsg { offset: self.next_seq, payload: l, arrived: now });
+                self.next_seq += 1;
+                lines.push(n);
+            }
+            self.waiting.push(Waiting { reply: req.reply, lines });
+            if http.len() < max {
+                next = self.rx.try_recv().ok();
+            }
+        }
+        let mut out = Vec::new();
+        if !http.is_empty() {
+            out.push((self.http.clone(), http));
+        }
+        if !file.is_empty() {
+            out.push((self.file_part.clone(), file));
+        }
+        Ok(out)
+    }
+
+    fn committed(&mut self, _pipeline: &Pipeline, statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()> {
+        let Some((_, st)) = statuses.into_iter().find(|(id, _)| *id == self.http) else { return Ok(()) };
+        let mut it = st.into_iter();
+        for w in self.waiting.drain(..) {
+            let mut reply = IngestReply::default();
+            for line in w.lines {
+                match it.next() {
+                    Some(MsgStatus::Accepted) | Some(MsgStatus::AlreadyApplied) => reply.accepted += 1,
+                    Some(MsgStatus::Duplicate) => reply.duplicates += 1,
+                    Some(MsgStatus::Rejected(r)) => {
+                        reply.rejected += 1;
+                        reply.errors.push(LineError { line, reason: r.reason.code().into(), detail: r.detail });
+                    }
+                    None => {}
+                }
+            }
+            let _ = w.reply.send(reply);
+        }
+        Ok(())
+    }
+
+    fn ready(&self) -> bool {
+        true
+    }
+}

@@ -1,0 +1,51 @@
+//! Kafka: the consumer source, the producer sink and the repartition stage
+//! (rdkafka over librdkafka built from its vendored source).
+//!
+//! The consumer never auto-commits: offsets are committed to the group only
+//! after the batch's output is delivered and the state is committed to sled;
+//! on assignment, offsets already applied according to the store are
+//! skipped, so the store is the authority and the group's offsets a
+//! fallback.
+//!
+//! - [`source`]: [`KafkaSource`], the consumer (and the repartition stage
+//!   when the input is not keyed by user).
+//! - [`sink`]: [`KafkaSink`], credit rows, paths and dead letters to topics.
+//! - [`repartition`]: stage 1 for input not keyed by user.
+//! - [`encode`]: JSON or protobuf payloads of the output topics.
+
+pub mod encode;
+pub mod repartition;
+pub mod sink;
+pub mod source;
+
+use rdkafka::config::ClientConfig;
+
+use crate::config::KafkaConfig;
+
+pub use sink::KafkaSink;
+pub use source::KafkaSource;
+
+/// The client configuration every client starts from: the brokers, then the
+/// user's `[kafka.properties]` (TLS, SASL, tuning). Settings each client
+/// needs for its guarantees are set after these, by the client's own
+/// function, so they win.
+fn base_config(k: &KafkaConfig) -> ClientConfig {
+    let mut c = ClientConfig::new();
+    c.set("bootstrap.servers", &k.brokers);
+    for (key, v) in &k.properties {
+        c.set(key, v);
+    }
+    c
+}
+
+/// Consumer configuration: manual offsets, start from the earliest offset
+/// for a new group.
+pub fn consumer_config(k: &KafkaConfig, group: &str) -> ClientConfig {
+    let mut c = base_config(k);
+    c.set("group.id", group)
+        .set("enable.auto.commit", "false")
+        .set("enable.auto.offset.store", "false")
+        .set("auto.offset.reset", "earliest")
+        .set("enable.partition.eof", "false");
+    c
+}

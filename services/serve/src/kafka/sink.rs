@@ -1,0 +1,133 @@
+//! The producer sink: credit rows, paths and dead letters to their topics,
+//! keyed by user key (dead letters unkeyed), with an idempotent producer.
+
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use anyhow::{Context, Result};
+use apportion_sinks::{OutputBatch, Sink, SinkError};
+use rdkafka::error::KafkaError;
+use rdkafka::producer::{BaseProducer, BaseRecord, DeliveryResult, Producer, ProducerContext};
+use rdkafka::types::RDKafkaErrorCode;
+use rdkafka::ClientContext;
+
+use super::{base_config, encode};
+use crate::config::{Config, Format, KafkaConfig};
+
+/// Counts delivery failures of the producer.
+#[derive(Default, Clone)]
+pub struct DeliveryCounter {
+    pub(crate) failed: Arc<AtomicU64>,
+    pub(crate) last: Arc<Mutex<Option<String>>>,
+}
+
+impl ClientContext for DeliveryCounter {}
+
+impl ProducerContext for DeliveryCounter {
+    type DeliveryOpaque = ();
+    fn delivery(&self, result: &DeliveryResult<'_>, _: ()) {
+        if let Err((e, _)) = result {
+            self.failed.fetch_add(1, Ordering::SeqCst);
+            *self.last.lock().expect("delivery error slot") = Some(e.to_string());
+        }
+    }
+}
+
+/// An idempotent producer.
+pub fn producer(k: &KafkaConfig) -> Result<BaseProducer<DeliveryCounter>> {
+    let mut c = base_config(k);
+    c.set("enable.idempotence", "true").set("acks", "all");
+    if !k.properties.contains_key("linger.ms") {
+        c.set("linger.ms", "5");
+    }
+    c.create_with_context(DeliveryCounter::default()).context("creating the Kafka producer")
+}
+
+pub(crate) fn send(
+    p: &BaseProducer<DeliveryCounter>,
+    topic: &str,
+    key: Option<&str>,
+    payload: &[u8],
+) -> Result<(), KafkaError> {
+    let mut rec = BaseRecord::to(topic).payload(payload);
+    if let Some(k) = key {
+        rec = rec.key(k);
+    }
+    let mut rec = rec;
+    loop {
+        match p.send(rec) {
+            Ok(()) => return Ok(()),
+            Err((KafkaError::MessageProduction(RDKafkaErrorCode::QueueFull), r)) => {
+                p.poll(Duration::from_millis(50));
+                rec = r;
+            }
+            Err((e, _)) => return Err(e),
+        }
+    }
+}
+
+pub(crate) fn flush_checked(
+    p: &BaseProducer<DeliveryCounter>,
+    before: u64,
+    sink: &'static str,
+) -> Result<(), SinkError> {
+    p.flush(Duration::from_secs(60)).map_err(|e| SinkError::retry(sink, format!("flush: {e}")))?;
+    let after = p.context().failed.load(Ordering::SeqCst);
+    if after > before {
+        let last = p.context().last.lock().expect("slot").clone().unwrap_or_default();
+        return Err(SinkError::retry(sink, format!("{} messages not delivered: {last}", after - before)));
+    }
+    Ok(())
+}
+
+/// Credit rows, paths and dead letters to their topics, keyed by user key.
+pub struct KafkaSink {
+    producer: BaseProducer<DeliveryCounter>,
+    credit_topic: String,
+    paths_topic: String,
+    dead_topic: String,
+    format: Format,
+}
+
+impl KafkaSink {
+    /// Builds the sink.
+    pub fn new(cfg: &Config) -> Result<KafkaSink> {
+        let k = cfg.kafka.as_ref().context("no [kafka] section")?;
+        Ok(KafkaSink {
+            producer: producer(k)?,
+            credit_topic: k.credit_topic.clone(),
+            paths_topic: k.paths_topic.clone(),
+            dead_topic: k.dead_letter_topic.clone(),
+            format: k.output_format,
+        })
+    }
+}
+
+impl Sink for KafkaSink {
+    fn name(&self) -> &'static str {
+        "kafka"
+    }
+
+    fn write(&mut self, batch: &OutputBatch) -> Result<(), SinkError> {
+        let before = self.producer.context().failed.load(Ordering::SeqCst);
+        let err = |e: KafkaError| SinkError::retry("kafka", e.to_string());
+        for r in &batch.credit {
+            let bytes = encode::credit(self.format, r);
+            send(&self.producer, &self.credit_topic, Some(&r.user_key.to_hex()), &bytes).map_err(err)?;
+        }
+        for p in &batch.paths {
+            let bytes = encode::path(self.format, p);
+            send(&self.producer, &self.paths_topic, Some(&p.user_key.to_hex()), &bytes).map_err(err)?;
+        }
+        for d in &batch.dead_letters {
+            let bytes = encode::dead_letter(self.format, d);
+            send(&self.producer, &self.dead_topic, None, &bytes).map_err(err)?;
+        }
+        flush_checked(&self.producer, before, "kafka")
+    }
+
+    fn close(&mut self) -> Result<(), SinkError> {
+        self.producer.flush(Duration::from_secs(30)).map_err(|e| SinkError::fatal("kafka", e.to_string()))
+    }
+}

@@ -1,0 +1,161 @@
+//! The consumer: stage 2 of the repartitioned input, or the only stage.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, Result};
+use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer};
+use rdkafka::message::Message;
+use rdkafka::{Offset, TopicPartitionList};
+
+use super::consumer_config;
+use super::repartition::Repartitioner;
+use crate::config::{Config, Format};
+use crate::metrics::Metrics;
+use crate::pipeline::Pipeline;
+use crate::source::ErrorLog;
+use crate::source::{InMsg, MsgStatus, PartId, Payload, Source};
+
+/// The consumer side: stage 2 (or the only stage), plus stage 1 when the
+/// input is not keyed by user.
+pub struct KafkaSource {
+    consumer: BaseConsumer,
+    payloads: BTreeMap<String, Payload>,
+    assigned: BTreeSet<PartId>,
+    repartition: Option<Repartitioner>,
+    metrics: Metrics,
+    lag: Option<u64>,
+    errors: ErrorLog,
+}
+
+impl KafkaSource {
+    /// Connects and subscribes.
+    pub fn new(cfg: &Config, metrics: &Metrics) -> Result<KafkaSource> {
+        let k = cfg.kafka.as_ref().context("no [kafka] section")?;
+        let consumer: BaseConsumer = consumer_config(k, &k.group_id).create().context("creating the Kafka consumer")?;
+        let mut payloads = BTreeMap::new();
+        let repartition = if k.input_keyed_by_user {
+            for t in &k.input_topics {
+                payloads.insert(t.clone(), Payload::Event(k.input_format));
+            }
+            let topics: Vec<&str> = k.input_topics.iter().map(String::as_str).collect();
+            consumer.subscribe(&topics).context("subscribing to the input topics")?;
+            None
+        } else {
+            payloads.insert(k.repartition_topic.clone(), Payload::Pseudonymized);
+            consumer.subscribe(&[&k.repartition_topic]).context("subscribing to the repartition topic")?;
+            Some(Repartitioner::new(cfg, metrics.clone())?)
+        };
+        Ok(KafkaSource {
+            consumer,
+            payloads,
+            assigned: BTreeSet::new(),
+            repartition,
+            lag: None,
+            errors: ErrorLog::default(),
+            metrics: metrics.clone(),
+        })
+    }
+
+    fn sync_assignment(&mut self, pipeline: &mut Pipeline) -> Result<()> {
+        let tpl = self.consumer.assignment().context("reading the partition assignment")?;
+        let now: BTreeSet<PartId> = tpl.elements().iter().map(|e| PartId::new(e.topic(), e.partition())).collect();
+        for gone in self.assigned.difference(&now).cloned().collect::<Vec<_>>() {
+            tracing::info!(topic = %gone.source, partition = gone.partition, "partition revoked");
+            pipeline.close_partition(&gone)?;
+            self.metrics.consumer_lag.remove_label_values(&[&gone.source, &gone.partition.to_string()]).ok();
+        }
+        for new in now.difference(&self.assigned).cloned().collect::<Vec<_>>() {
+            let payload = *self.payloads.get(&new.source).unwrap_or(&Payload::Event(Format::Json));
+            let committed = pipeline.open_partition(&new, payload)?;
+            tracing::info!(topic = %new.source, partition = new.partition, store_offset = ?committed, "partition assigned");
+        }
+        self.assigned = now;
+        Ok(())
+    }
+}
+
+impl Source for KafkaSource {
+    fn poll(&mut self, pipeline: &mut Pipeline, max: usize, wait: Duration) -> Result<Vec<(PartId, Vec<InMsg>)>> {
+        if let Some(r) = self.repartition.as_mut() {
+            r.pump(max, Duration::from_millis(0))?;
+        }
+        let deadline = Instant::now() + wait;
+        let mut got: BTreeMap<PartId, Vec<InMsg>> = BTreeMap::new();
+        let mut n = 0;
+        while n < max {
+            let left = deadline.saturating_duration_since(Instant::now());
+            match self.consumer.poll(if n == 0 { left } else { Duration::ZERO }) {
+                Some(Ok(m)) => {
+                    let id = PartId::new(m.topic(), m.partition());
+                    got.entry(id).or_default().push(InMsg {
+                        offset: m.offset(),
+                        payload: m.payload().unwrap_or_default().to_vec(),
+                        arrived: Instant::now(),
+                    });
+                    n += 1;
+                }
+                Some(Err(e)) => {
+                    self.errors.report("Kafka consumer error", &e);
+                    break;
+                }
+                None => {
+                    if Instant::now() >= deadline || n > 0 {
+                        break;
+                    }
+                }
+            }
+        }
+        self.sync_assignment(pipeline)?;
+        // Messages of partitions no longer assigned belong to their new owner.
+        got.retain(|id, _| self.assigned.contains(id));
+        Ok(got.into_iter().collect())
+    }
+
+    fn committed(&mut self, pipeline: &Pipeline, _statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()> {
+        let mut tpl = TopicPartitionList::new();
+        for (id, off) in pipeline.committed_offsets() {
+            if self.assigned.contains(&id) {
+                tpl.add_partition_offset(&id.source, id.partition, Offset::Offset(off + 1))?;
+            }
+        }
+        if tpl.count() > 0 {
+            if let Err(e) = self.consumer.commit(&tpl, CommitMode::Async) {
+                // The store holds the offsets; the group's copy is a fallback.
+                tracing::warn!(error = %e, "committing offsets to the consumer group failed");
+            }
+        }
+        Ok(())
+    }
+
+    fn update_lag(&mut self, metrics: &Metrics) {
+        let Ok(positions) = self.consumer.position() else { return };
+        let mut total = 0u64;
+        for e in positions.elements() {
+            let Ok((_, high)) = self.consumer.fetch_watermarks(e.topic(), e.partition(), Duration::from_secs(1)) else {
+                continue;
+            };
+            let pos = match e.offset() {
+                Offset::Offset(o) => o,
+                _ => continue,
+            };
+            let lag = (high - pos).max(0) as u64;
+            total += lag;
+            metrics.consumer_lag.with_label_values(&[e.topic(), &e.partition().to_string()]).set(lag as i64);
+        }
+        self.lag = Some(total);
+    }
+
+    fn lag(&self) -> Option<u64> {
+        self.lag
+    }
+
+    fn ready(&self) -> bool {
+        !self.assigned.is_empty()
+    }
+
+    fn close(&mut self, _pipeline: &mut Pipeline) -> Result<()> {
+        self.consumer.unsubscribe();
+        Ok(())
+    }
+}

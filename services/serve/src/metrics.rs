@@ -1,0 +1,301 @@
+//! Every metric of the service, in one place (docs/telemetry.md is the
+//! written spec; a test checks that the two agree).
+//!
+//! Rules: base units, `_total` counters, `_seconds` histograms, label values
+//! from small fixed sets only (never a user, event id or campaign). Metrics
+//! are registered on an injected registry and updated per batch.
+
+use prometheus::{
+    Encoder, GaugeVec, Histogram, HistogramOpts, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry, TextEncoder,
+};
+
+use apportion_contract::{ModelId, RejectReason};
+
+/// Event types used as label values.
+pub const EVENT_TYPES: [&str; 4] = ["touch", "conversion", "erase", "unknown"];
+/// Event outcomes used as label values.
+pub const OUTCOMES: [&str; 5] = ["accepted", "rejected", "duplicate", "late_dropped", "late_applied"];
+
+/// The service's metrics.
+#[derive(Clone)]
+pub struct Metrics {
+    /// The registry they live on.
+    pub registry: Registry,
+    /// apportion_ready.
+    pub ready: IntGauge,
+    /// apportion_events_consumed_total{type,outcome}.
+    pub events_consumed: IntCounterVec,
+    /// apportion_events_rejected_total{reason}.
+    pub events_rejected: IntCounterVec,
+    /// apportion_events_late_total{action}.
+    pub events_late: IntCounterVec,
+    /// apportion_journeys_open.
+    pub journeys_open: IntGauge,
+    /// apportion_journeys_closed_total{reason}.
+    pub journeys_closed: IntCounterVec,
+    /// apportion_credit_rows_total{model}.
+    pub credit_rows: IntCounterVec,
+    /// apportion_conversions_credited_total{attributed}.
+    pub conversions: IntCounterVec,
+    /// apportion_paths_closed_total{converted}.
+    pub paths_closed: IntCounterVec,
+    /// apportion_processing_latency_seconds.
+    pub latency: Histogram,
+    /// apportion_batch_duration_seconds.
+    pub batch_duration: Histogram,
+    /// apportion_watermark_lag_seconds{topic,partition}.
+    pub watermark_lag: GaugeVec,
+    /// apportion_consumer_lag_messages{topic,partition}.
+    pub consumer_lag: IntGaugeVec,
+    /// apportion_store_size_bytes.
+    pub store_size: IntGauge,
+    /// apportion_store_disk_available_bytes.
+    pub disk_available: IntGauge,
+    /// apportion_model_last_refit_timestamp_seconds{model}.
+    pub refit_time: GaugeVec,
+    /// apportion_model_last_refit_duration_seconds{model}.
+    pub refit_duration: GaugeVec,
+    /// apportion_model_refit_failures_total{model}.
+    pub refit_failures: IntCounterVec,
+    /// apportion_sink_rows_total{sink,kind}.
+    pub sink_rows: IntCounterVec,
+    /// apportion_sink_errors_total{sink}.
+    pub sink_errors: IntCounterVec,
+    /// apportion_sink_retries_total{sink}.
+    pub sink_retries: IntCounterVec,
+    _build: IntGaugeVec,
+}
+
+fn counter(r: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
+    let c = IntCounterVec::new(Opts::new(name, help), labels).expect("valid metric");
+    r.register(Box::new(c.clone())).expect("metric registered once");
+    c
+}
+
+impl Metrics {
+    /// Registers every metric on `registry` and pre-creates every label
+    /// combination, so series exist (at 0) from the start.
+    pub fn new(registry: Registry) -> Metrics {
+        let r = &registry;
+        let gauge = |name: &str, help: &str| {
+            let g = IntGauge::new(name, help).expect("valid metric");
+            r.register(Box::new(g.clone())).expect("registered once");
+            g
+        };
+        let fgauge_vec = |name: &str, help: &str, labels: &[&str]| {
+            let g = GaugeVec::new(Opts::new(name, help), labels).expect("valid metric");
+            r.register(Box::new(g.clone())).expect("registered once");
+            g
+        };
+        let build = IntGaugeVec::new(Opts::new("apportion_build_info", "Build information; always 1."), &["version"])
+            .expect("valid metric");
+        r.register(Box::new(build.clone())).expect("registered once");
+        build.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);
+
+        let latency = Histogram::with_opts(
+            HistogramOpts::new(
+                "apportion_processing_latency_seconds",
+                "Time from the arrival of a conversion event to its credit rows being produced.",
+            )
+            .buckets(vec![0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 120.0, 300.0]),
+        )
+        .expect("valid metric");
+        r.register(Box::new(latency.clone())).expect("registered once");
+        let batch_duration = Histogram::with_opts(
+            HistogramOpts::new(
+                "apportion_batch_duration_seconds",
+                "Time to process one input batch: apply, write to sinks, commit the store.",
+            )
+            .buckets(vec![0.001, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0]),
+        )
+        .expect("valid metric");
+        r.register(Box::new(batch_duration.clone())).expect("registered once");
+        let watermark_lag = fgauge_vec(
+            "apportion_watermark_lag_seconds",
+            "Processing time minus the partition's watermark.",
+            &["topic", "partition"],
+        );
+        let consumer_lag = IntGaugeVec::new(
+            Opts::new(
+                "apportion_consumer_lag_messages",
+                "Messages between the partition's end and the consumer's position.",
+            ),
+            &["topic", "partition"],
+        )
+        .expect("valid metric");
+        r.register(Box::new(consumer_lag.clone())).expect("registered once");
+
+        let m = Metrics {
+            ready: gauge("apportion_ready", "1 when the service is ready: store open and partitions assigned."),
+            events_consumed: counter(
+                r,
+                "apportion_events_consumed_total",
+                "Input events consumed, by type and outcome.",
+                &["type", "outcome"],
+            ),
+            events_rejected: counter(
+                r,
+                "apportion_events_rejected_total",
+                "Input events sent to the dead-letter output, by reason.",
+                &["reason"],
+            ),
+            events_late: counter(
+                r,
+                "apportion_events_late_total",
+                "Events older than the watermark, by what was done with them.",
+                &["action"],
+            ),
+            journeys_open: gauge("apportion_journeys_open", "Open journeys held in the store."),
+            journeys_closed: counter(r, "apportion_journeys_closed_total", "Journeys closed, by reason.", &["reason"]),
+            credit_rows: counter(r, "apportion_credit_rows_total", "Credit rows emitted, by model.", &["model"]),
+            conversions: counter(
+                r,
+                "apportion_conversions_credited_total",
+                "Conversions credited, by whether any touch was eligible.",
+                &["attributed"],
+            ),
+            paths_closed: counter(
+                r,
+                "apportion_paths_closed_total",
+                "Closed paths, converting or not.",
+                &["converted"],
+            ),
+            latency,
+            batch_duration,
+            watermark_lag,
+            consumer_lag,
+            store_size: gauge("apportion_store_size_bytes", "Size of the sled store on disk."),
+            disk_available: gauge(
+                "apportion_store_disk_available_bytes",
+                "Free bytes on the data directory's filesystem.",
+            ),
+            refit_time: fgauge_vec(
+                "apportion_model_last_refit_timestamp_seconds",
+                "Unix time of the last successful refit.",
+                &["model"],
+            ),
+            refit_duration: fgauge_vec(
+                "apportion_model_last_refit_duration_seconds",
+                "Duration of the last refit.",
+                &["model"],
+            ),
+            refit_failures: counter(r, "apportion_model_refit_failures_total", "Failed refits.", &["model"]),
+            sink_rows: counter(r, "apportion_sink_rows_total", "Rows written, by sink and kind.", &["sink", "kind"]),
+            sink_errors: counter(r, "apportion_sink_errors_total", "Sink and producer errors.", &["sink"]),
+            sink_retries: counter(r, "apportion_sink_retries_total", "Batches retried at a sink.", &["sink"]),
+            _build: build,
+            registry,
+        };
+        for t in EVENT_TYPES {
+            for o in OUTCOMES {
+                m.events_consumed.with_label_values(&[t, o]);
+            }
+        }
+        for r in RejectReason::ALL {
+            m.events_rejected.with_label_values(&[r.code()]);
+        }
+        for a in ["dropped", "applied"] {
+            m.events_late.with_label_values(&[a]);
+        }
+        for r in ["converted", "expired", "erased"] {
+            m.journeys_closed.with_label_values(&[r]);
+        }
+        for model in ModelId::ALL {
+            m.credit_rows.with_label_values(&[model.as_str()]);
+        }
+        for model in ModelId::DATA_DRIVEN {
+            m.refit_failures.with_label_values(&[model.as_str()]);
+        }
+        for b in ["true", "false"] {
+            m.conversions.with_label_values(&[b]);
+            m.paths_closed.with_label_values(&[b]);
+        }
+        m
+    }
+
+    /// Pre-creates the series of one sink.
+    pub fn register_sink(&self, sink: &str) {
+        for k in ["credit", "path", "dead_letter"] {
+            self.sink_rows.with_label_values(&[sink, k]);
+        }
+        self.sink_errors.with_label_values(&[sink]);
+        self.sink_retries.with_label_values(&[sink]);
+    }
+
+    /// The Prometheus text exposition.
+    pub fn render(&self) -> String {
+        let mut buf = Vec::new();
+        TextEncoder::new().encode(&self.registry.gather(), &mut buf).expect("text encoding");
+        String::from_utf8(buf).expect("UTF-8 exposition")
+    }
+}
+
+/// The sinks' layers report their retries and failures here.
+impl apportion_sinks::Observer for Metrics {
+    fn failed(&self, sink: &'static str) {
+        self.sink_errors.with_label_values(&[sink]).inc();
+    }
+    fn retried(&self, sink: &'static str) {
+        self.sink_retries.with_label_values(&[sink]).inc();
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Every metric in docs/telemetry.md is exposed, and nothing else.
+    #[test]
+    fn exposition_matches_the_written_spec() {
+        let spec = include_str!("../../../docs/telemetry.md");
+        let m = Metrics::new(Registry::new());
+        m.register_sink("kafka");
+        m.watermark_lag.with_label_values(&["events", "0"]).set(1.0);
+        m.consumer_lag.with_label_values(&["events", "0"]).set(1);
+        m.refit_time.with_label_values(&["shapley"]).set(1.0);
+        m.refit_duration.with_label_values(&["shapley"]).set(1.0);
+        let text = m.render();
+        let exposed: std::collections::BTreeSet<String> = text
+            .lines()
+            .filter_map(|l| l.strip_prefix("# TYPE "))
+            .map(|l| l.split_whitespace().next().unwrap().to_string())
+            .collect();
+        let documented: std::collections::BTreeSet<String> = spec
+            .split(|c: char| !(c.is_ascii_alphanumeric() || c == '_'))
+            .filter(|w| w.starts_with("apportion_") && w.len() > "apportion_".len())
+            .filter(|w| !w.ends_with("_bucket") && !w.ends_with("_sum") && !w.ends_with("_count"))
+            .map(str::to_string)
+            .collect();
+        for e in &exposed {
+            assert!(documented.contains(e), "{e} is exposed but not in docs/telemetry.md");
+        }
+        for d in &documented {
+            assert!(exposed.contains(d), "{d} is in docs/telemetry.md but not exposed");
+        }
+        // Histogram buckets as written in the spec.
+        for (name, line) in [
+            (
+                "apportion_processing_latency_seconds",
+                spec.lines()
+                    .skip_while(|l| !l.contains("### `apportion_processing_latency_seconds`"))
+                    .find(|l| l.starts_with("- buckets:")),
+            ),
+            (
+                "apportion_batch_duration_seconds",
+                spec.lines()
+                    .skip_while(|l| !l.contains("### `apportion_batch_duration_seconds`"))
+                    .find(|l| l.starts_with("- buckets:")),
+            ),
+        ] {
+            let line = line.unwrap_or_else(|| panic!("no buckets line for {name} in the spec"));
+            let want: Vec<String> =
+                line.trim_start_matches("- buckets:").split(',').map(|b| b.trim().to_string()).collect();
+            let got: Vec<String> = text
+                .lines()
+                .filter(|l| l.starts_with(&format!("{name}_bucket{{le=")) && !l.contains("+Inf"))
+                .map(|l| l.split('"').nth(1).unwrap().to_string())
+                .collect();
+            assert_eq!(got, want, "{name} buckets differ from docs/telemetry.md");
+        }
+    }
+}

@@ -1,0 +1,72 @@
+//! From journey effects to output rows: credit rows under every model, path
+//! rows, the partition's path statistics and the counters that go with them.
+
+use std::collections::HashMap;
+use std::time::Instant;
+
+use apportion_contract::{DeadLetter, Rejection, Timestamp};
+use apportion_engine::datadriven::PathStats;
+use apportion_engine::replay::effect_rows;
+use apportion_engine::{Effect, Model, Outcome};
+use apportion_sinks::OutputBatch;
+
+use crate::metrics::Metrics;
+use crate::source::PartId;
+
+/// Appends the rows of `effects` to `out`, adds closed paths to `stats`, and
+/// counts them. `arrivals` maps conversion ids to their arrival time (for
+/// the latency histogram). Returns true when a path was added to `stats`.
+pub fn emit(
+    effects: &[Effect],
+    models: &[Box<dyn Model>],
+    stats: &mut PathStats,
+    arrivals: &mut HashMap<String, Instant>,
+    metrics: &Metrics,
+    out: &mut OutputBatch,
+) -> bool {
+    let mut stats_changed = false;
+    for e in effects {
+        match e {
+            Effect::Journey { outcome, .. } => {
+                if let Some((converted, path)) = outcome.closed_path() {
+                    let chans: Vec<&str> = path.iter().map(|t| t.channel.as_str()).collect();
+                    stats.add_path(&chans, converted);
+                    stats_changed = true;
+                    metrics.paths_closed.with_label_values(&[if converted { "true" } else { "false" }]).inc();
+                }
+                match outcome {
+                    Outcome::Converted { conversion, path } => {
+                        metrics.journeys_closed.with_label_values(&["converted"]).inc();
+                        let attributed = if path.is_empty() { "false" } else { "true" };
+                        metrics.conversions.with_label_values(&[attributed]).inc();
+                        if let Some(t) = arrivals.remove(&conversion.event_id) {
+                            metrics.latency.observe(t.elapsed().as_secs_f64());
+                        }
+                    }
+                    Outcome::Expired { .. } => metrics.journeys_closed.with_label_values(&["expired"]).inc(),
+                }
+            }
+            Effect::Erased { .. } => metrics.journeys_closed.with_label_values(&["erased"]).inc(),
+        }
+        let (rows, path) = effect_rows(e, models);
+        for r in &rows {
+            metrics.credit_rows.with_label_values(&[r.model.as_str()]).inc();
+        }
+        out.credit.extend(rows);
+        out.paths.extend(path);
+    }
+    stats_changed
+}
+
+/// The dead letter of a message of partition `id`.
+pub fn dead_letter(id: &PartId, offset: i64, r: &Rejection, event_id: Option<String>, received_at: i64) -> DeadLetter {
+    DeadLetter {
+        reason: r.reason,
+        detail: r.detail.clone(),
+        source: id.source.clone(),
+        partition: Some(id.partition),
+        offset: Some(offset),
+        event_id,
+        received_at: Timestamp(received_at),
+    }
+}

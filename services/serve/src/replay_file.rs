@@ -1,0 +1,402 @@
+//! `apportion replay` over a file: credit a whole NDJSON input in path order
+//! with the engine's replay driver (`apportion_engine::replay::two_pass`).
+//!
+//! Memory stays bounded for large inputs: the first pass validates every
+//! line and keeps only (time, byte offset, length) of valid events (24 bytes
+//! each); after sorting by (time, offset), which is (time, input order), the
+//! events are read back by offset and applied through the engine's replay
+//! driver. Open journeys live in the sled store behind a byte-bounded cache
+//! (`cache_bytes`): they stay in memory while they fit, and the least
+//! recently used ones are written to sled when they do not. With data-driven
+//! models the events are applied twice: first to fit on every closed path,
+//! then to credit with that one snapshot (docs/contract.md, "Models", Fitting).
+//!
+//! Measured figures (10M events) are in load/RESULTS.md.
+
+use std::cell::Cell;
+use std::fs::File;
+use std::io::{BufRead, BufReader, IsTerminal, Read, Write};
+use std::os::unix::fs::FileExt;
+use std::path::PathBuf;
+use std::rc::Rc;
+use std::time::Instant;
+
+use anyhow::{Context, Result};
+use apportion_contract::event::parse_event_limited;
+use apportion_contract::UserKey;
+use apportion_engine::datadriven::PathStats;
+use apportion_engine::replay::two_pass::{self, Pass};
+use apportion_engine::replay::{effect_rows, FirstSeen};
+use apportion_engine::{Effect, Journey, JourneyEvent, JourneyStore, Outcome, Pseudonymizer};
+use apportion_store::{PartitionStore, Store, StoreError};
+
+use crate::config::Config;
+use crate::output::{OutputFile, Rejected};
+
+/// Where replay reads and writes.
+pub struct ReplayIo {
+    /// NDJSON input, `-` for stdin.
+    pub input: String,
+    /// Credit rows, `-` for stdout.
+    pub output: String,
+    /// Path rows (optional).
+    pub paths: Option<PathBuf>,
+    /// Rejected lines (optional; otherwise the first few go to stderr).
+    pub rejected: Option<PathBuf>,
+    /// Show progress on stderr (when it is a terminal).
+    pub progress: bool,
+}
+
+/// Counts reported at the end.
+#[derive(Debug, Default, Clone, serde::Serialize)]
+pub struct Summary {
+    /// Non-empty input lines.
+    pub lines: u64,
+    /// Valid events applied (duplicates excluded).
+    pub events: u64,
+    /// Conversions credited.
+    pub conversions: u64,
+    /// Conversions without an eligible touch.
+    pub unattributed: u64,
+    /// Lines rejected.
+    pub rejected: u64,
+    /// Duplicate events dropped.
+    pub duplicates: u64,
+    /// Credit rows written.
+    pub rows: u64,
+    /// Closed paths.
+    pub paths: u64,
+    /// Journey writes to sled because open journeys did not fit
+    /// `cache_bytes` (credit pass); 0 when everything stayed in memory.
+    pub spilled: u64,
+    /// Seconds taken.
+    pub seconds: f64,
+}
+
+/// One valid event of the input: where to read it back. The byte offset
+/// also serves as the arrival sequence (it grows with the line number).
+#[derive(Clone, Copy)]
+struct Rec {
+    ts: i64,
+    offset: u64,
+    len: u32,
+}
+
+/// The input file with an index of its valid events.
+pub struct Indexed {
+    file: File,
+    recs: Vec<Rec>,
+    _spool: Option<tempfile::NamedTempFile>,
+}
+
+/// Reads lines back by offset with a small block cache (sorted input reads
+/// sequentially; unsorted input falls back to positioned reads).
+struct LineReader<'a> {
+    file: &'a File,
+    block: Vec<u8>,
+    block_start: u64,
+}
+
+impl<'a> LineReader<'a> {
+    const BLOCK: usize = 1 << 20;
+
+    fn new(file: &'a File) -> Self {
+        LineReader { file, block: Vec::new(), block_start: 0 }
+    }
+
+    fn read(&mut self, offset: u64, len: u32, buf: &mut Vec<u8>) -> std::io::Result<()> {
+        let len = len as usize;
+        let end = offset + len as u64;
+        if offset < self.block_start || end > self.block_start + self.block.len() as u64 {
+            // Only a read at or just past the current block (input in time
+            // order) refills the block; a jump elsewhere (unsorted input)
+            // reads just its line, so it does not copy a whole block per event.
+            let next = self.block_start + self.block.len() as u64;
+            let sequential =
+                self.block.is_empty() || (offset >= self.block_start && offset <= next + Self::BLOCK as u64);
+            if len > Self::BLOCK || !sequential {
+                buf.resize(len, 0);
+                return self.file.read_exact_at(buf, offset);
+            }
+            self.block.resize(Self::BLOCK, 0);
+            let mut got = 0;
+            while got < Self::BLOCK {
+                let n = self.file.read_at(&mut self.block[got..], offset + got as u64)?;
+                if n == 0 {
+                    break;
+                }
+                got += n;
+            }
+            self.block.truncate(got);
+            self.block_start = offset;
+            if got < len {
+                return Err(std::io::Error::new(std::io::ErrorKind::UnexpectedEof, "input changed while replaying"));
+            }
+        }
+        let s = (offset - self.block_start) as usize;
+        buf.clear();
+        buf.extend_from_slice(&self.block[s..s + len]);
+        Ok(())
+    }
+}
+
+/// Reads the input once: rejects invalid lines (to `rejected`), drops
+/// duplicates (first occurrence in input order wins) and sorts the valid
+/// events by (time, byte offset).
+pub fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut Summary) -> Result<Indexed> {
+    let (file, spool) = if io.input == "-" {
+        let mut spool = tempfile::NamedTempFile::new().context("creating a spool file for stdin")?;
+        std::io::copy(&mut std::io::stdin().lock(), spool.as_file_mut()).context("reading stdin")?;
+        (spool.reopen()?, Some(spool))
+    } else {
+        (File::open(&io.input).with_context(|| format!("cannot open input {}", io.input))?, None)
+    };
+    let total = file.metadata().map(|m| m.len()).unwrap_or(0);
+    let mut reader = BufReader::with_capacity(1 << 20, (&file).take(u64::MAX));
+    let mut recs: Vec<Rec> = Vec::new();
+    let mut buf = Vec::with_capacity(4096);
+    let mut offset = 0u64;
+    let mut line = 0u64;
+    let mut progress = Progress::new(io.progress, "reading", total);
+    let mut seen = FirstSeen::default();
+    // Sized once from the first lines' average length, so that neither the
+    // index nor the id set doubles (and briefly holds both copies) at scale.
+    let mut sized = false;
+    loop {
+        buf.clear();
+        let n = reader.read_until(b'\n', &mut buf).context("reading input")?;
+        if n == 0 {
+            break;
+        }
+        line += 1;
+        let start = offset;
+        offset += n as u64;
+        let mut body = &buf[..];
+        while let Some((&last, rest)) = body.split_last() {
+            if last == b'\n' || last == b'\r' {
+                body = rest;
+            } else {
+                break;
+            }
+        }
+        if body.iter().all(u8::is_ascii_whitespace) {
+            continue;
+        }
+        summary.lines += 1;
+        if !sized && (summary.lines == 4096 || offset >= total) {
+            sized = true;
+            let estimate = (total as f64 / offset.max(1) as f64 * summary.lines as f64 * 1.05) as usize;
+            recs.reserve_exact(estimate.saturating_sub(recs.len()));
+            seen.reserve(estimate.saturating_sub(seen.len()));
+        }
+        match parse_event_limited(body, cfg.max_event_bytes) {
+            Ok(ev) => {
+                // Duplicates: the first occurrence in input order wins, as
+                // the first arrival does in the streaming service.
+                if !seen.first(ev.kind, &ev.event_id) {
+                    summary.duplicates += 1;
+                } else {
+                    // parse_event_limited bounds the length by max_event_bytes (< 4 GiB).
+                    let len = u32::try_from(body.len()).context("event longer than 4 GiB")?;
+                    recs.push(Rec { ts: ev.timestamp_ms, offset: start, len });
+                }
+            }
+            Err(r) => {
+                summary.rejected += 1;
+                rejected.write(line, &r)?;
+            }
+        }
+        progress.tick(offset);
+    }
+    progress.done();
+    drop(seen);
+    // Offsets are unique, so an unstable (in-place) sort keeps ties in
+    // input order.
+    recs.sort_unstable_by_key(|r| (r.ts, r.offset));
+    recs.shrink_to_fit();
+    Ok(Indexed { file, recs, _spool: spool })
+}
+
+/// The store of one pass: a partition of `store` named after the pass, in
+/// replay mode (it spills the least recently used journeys to sled itself
+/// when they outgrow `cache_bytes`). When dropped it adds its count of
+/// journeys written to sled to `spilled`.
+struct PassStore {
+    inner: PartitionStore,
+    spilled: Rc<Cell<u64>>,
+}
+
+impl Drop for PassStore {
+    fn drop(&mut self) {
+        self.spilled.set(self.spilled.get() + self.inner.spilled());
+    }
+}
+
+impl JourneyStore for PassStore {
+    type Error = StoreError;
+    fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
+        self.inner.load(key)
+    }
+    fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), StoreError> {
+        self.inner.save(key, journey, wake)
+    }
+    fn due(&mut self, watermark: i64) -> Result<Vec<UserKey>, StoreError> {
+        self.inner.due(watermark)
+    }
+    fn keys(&mut self) -> Result<Vec<UserKey>, StoreError> {
+        self.inner.keys()
+    }
+}
+
+fn pass_store(store: &Store, cfg: &Config, pass: Pass, spilled: Rc<Cell<u64>>) -> Result<PassStore> {
+    store.drop_partition(pass.name())?;
+    Ok(PassStore { inner: store.partition(pass.name(), cfg.cache_bytes)?.with_auto_spill(), spilled })
+}
+
+/// Hands every indexed event, in path order, to `apply`.
+fn apply_events(
+    idx: &Indexed,
+    pseudo: &Pseudonymizer,
+    pass: Pass,
+    show: bool,
+    apply: &mut dyn FnMut(JourneyEvent) -> Result<()>,
+) -> Result<()> {
+    let mut reader = LineReader::new(&idx.file);
+    let mut buf = Vec::new();
+    let mut progress = Progress::new(show, pass.name(), idx.recs.len() as u64);
+    for (i, rec) in idx.recs.iter().enumerate() {
+        reader.read(rec.offset, rec.len, &mut buf).context("reading input back")?;
+        let mut ev = parse_event_limited(&buf, usize::MAX).map_err(|e| {
+            anyhow::anyhow!("the input changed while replaying (event at byte offset {}): {e}", rec.offset)
+        })?;
+        let key = pseudo.key_for(&ev.user_id);
+        ev.user_id.clear();
+        // The byte offset is the arrival sequence (it grows with the line).
+        apply(JourneyEvent::from_event(ev, key, rec.offset))?;
+        progress.tick(i as u64 + 1);
+    }
+    progress.done();
+    Ok(())
+}
+
+/// One pass over every indexed event with a fresh store; `emit` gets every
+/// effect. Returns the number of events applied.
+pub fn apply_pass(
+    idx: &Indexed,
+    cfg: &Config,
+    pseudo: &Pseudonymizer,
+    store: &Store,
+    pass: Pass,
+    show: bool,
+    emit: impl FnMut(&Effect) -> Result<()>,
+) -> Result<u64> {
+    let part = pass_store(store, cfg, pass, Rc::default())?;
+    let n = two_pass::apply_pass(cfg.rules(), part, |apply| apply_events(idx, pseudo, pass, show, apply), emit)?;
+    store.drop_partition(pass.name())?;
+    Ok(n)
+}
+
+/// The fit pass alone: the path statistics of every closed path.
+pub fn fit(idx: &Indexed, cfg: &Config, pseudo: &Pseudonymizer, store: &Store, show: bool) -> Result<PathStats> {
+    let mut stats = PathStats::new(cfg.markov_order);
+    apply_pass(idx, cfg, pseudo, store, Pass::Fit, show, |e| {
+        two_pass::add_closed_path(&mut stats, e);
+        Ok(())
+    })?;
+    Ok(stats)
+}
+
+/// Runs replay; returns the summary.
+pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summary> {
+    let started = Instant::now();
+    let mut summary = Summary::default();
+    let store = match cfg.data_dir() {
+        Some(dir) => Store::open(&dir)?,
+        None => Store::temporary()?,
+    };
+    let mut rejected = Rejected::open(io.rejected.as_deref())?;
+    let idx = index(io, cfg, &mut rejected, &mut summary)?;
+    rejected.finish()?;
+
+    let mut out = OutputFile::create(&io.output)?;
+    let mut paths_out = match &io.paths {
+        Some(p) => Some(OutputFile::create(&p.to_string_lossy())?),
+        None => None,
+    };
+    let spilled: Rc<Cell<u64>> = Rc::default();
+    let replayed = two_pass::run(
+        &cfg.model_plan(),
+        cfg.rules(),
+        |pass| pass_store(&store, cfg, pass, if pass == Pass::Credit { spilled.clone() } else { Rc::default() }),
+        |pass, apply| apply_events(&idx, pseudo, pass, io.progress, apply),
+        |e: &Effect, models| {
+            if let Effect::Journey { outcome: Outcome::Converted { path, .. }, .. } = e {
+                summary.conversions += 1;
+                if path.is_empty() {
+                    summary.unattributed += 1;
+                }
+            }
+            let (rows, path) = effect_rows(e, models);
+            for r in &rows {
+                serde_json::to_writer(&mut out, r)?;
+                out.write_all(b"\n")?;
+            }
+            summary.rows += rows.len() as u64;
+            if let Some(p) = path {
+                summary.paths += 1;
+                if let Some(w) = paths_out.as_mut() {
+                    serde_json::to_writer(&mut *w, &p)?;
+                    w.write_all(b"\n")?;
+                }
+            }
+            Ok(())
+        },
+    )?;
+    out.commit()?;
+    if let Some(p) = paths_out {
+        p.commit()?;
+    }
+    for pass in [Pass::Fit, Pass::Credit] {
+        store.drop_partition(pass.name())?;
+    }
+    summary.events = replayed.events;
+    summary.spilled = spilled.get();
+    summary.seconds = started.elapsed().as_secs_f64();
+    Ok(summary)
+}
+
+/// A progress line on stderr, only when stderr is a terminal.
+struct Progress {
+    on: bool,
+    what: String,
+    total: u64,
+    last: Instant,
+}
+
+impl Progress {
+    fn new(want: bool, what: &str, total: u64) -> Self {
+        Progress { on: want && std::io::stderr().is_terminal(), what: what.into(), total, last: Instant::now() }
+    }
+
+    fn tick(&mut self, done: u64) {
+        if self.on && self.last.elapsed().as_millis() >= 250 {
+            self.last = Instant::now();
+            let pct = if self.total > 0 { done as f64 * 100.0 / self.total as f64 } else { 0.0 };
+            let width = 30usize;
+            let filled = ((pct / 100.0) * width as f64) as usize;
+            eprint!(
+                "\r{:>8} [{}{}] {:5.1}%",
+                self.what,
+                "#".repeat(filled.min(width)),
+                " ".repeat(width - filled.min(width)),
+                pct
+            );
+        }
+    }
+
+    fn done(&mut self) {
+        if self.on {
+            eprint!("\r{}\r", " ".repeat(60));
+        }
+    }
+}

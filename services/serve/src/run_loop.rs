@@ -1,0 +1,191 @@
+//! The processing loop: poll a batch from the source, apply it through the
+//! [`Pipeline`], write the output to every sink (retrying with backoff; a
+//! batch is never dropped), then commit state and offsets, then acknowledge
+//! to the source. It runs on one thread; the service around it
+//! ([`crate::service`]) serves HTTP and turns signals into the stop flag.
+//! Stopping finishes the current batch, flushes the store and commits.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use anyhow::{bail, Result};
+use apportion_sinks::{OutputBatch, Sink};
+
+use crate::metrics::Metrics;
+use crate::pipeline::Pipeline;
+use crate::source::Source;
+
+/// State shared with the admin endpoints.
+#[derive(Debug, Default)]
+pub struct Shared {
+    /// Ready for traffic.
+    pub ready: bool,
+    /// Consumer lag (messages), if known.
+    pub lag: Option<u64>,
+    /// The fitted models as JSON (model endpoint).
+    pub models: serde_json::Value,
+    /// Set when the processing loop stopped with an error.
+    pub failed: Option<String>,
+}
+
+/// Writes `out` to every sink, retrying each with exponential backoff until
+/// it succeeds, a permanent error occurs, or shutdown is requested.
+///
+/// Sinks are written in order (the primary output first); a sink that fails
+/// is retried before the next one is tried, so a paused sink holds the
+/// batch and nothing commits. On shutdown during the retries the batch is
+/// given up uncommitted: sinks written before may hold its rows already,
+/// and its re-delivery writes them again (at least once; rows carry
+/// deterministic ids). The backoff sleep wakes up for shutdown at once; a
+/// `write()` in progress (e.g. the PostgreSQL sink's own retries) is not
+/// interrupted.
+pub fn write_sinks(
+    sinks: &mut [Box<dyn Sink>],
+    out: &OutputBatch,
+    stop: &AtomicBool,
+    metrics: &Metrics,
+    shared: &Mutex<Shared>,
+) -> Result<()> {
+    const MAX_BACKOFF: Duration = Duration::from_secs(30);
+    const SLICE: Duration = Duration::from_millis(50);
+    for sink in sinks.iter_mut() {
+        let mut backoff = Duration::from_millis(100);
+        loop {
+            match sink.write(out) {
+                Ok(()) => {
+                    let name = sink.name();
+                    metrics.sink_rows.with_label_values(&[name, "credit"]).inc_by(out.credit.len() as u64);
+                    metrics.sink_rows.with_label_values(&[name, "path"]).inc_by(out.paths.len() as u64);
+                    if sink.keeps_dead_letters() {
+                        metrics
+                            .sink_rows
+                            .with_label_values(&[name, "dead_letter"])
+                            .inc_by(out.dead_letters.len() as u64);
+                    }
+                    break;
+                }
+                Err(e) => {
+                    metrics.sink_errors.with_label_values(&[sink.name()]).inc();
+                    if !e.retryable {
+                        bail!("{e}");
+                    }
+                    let shutdown = || {
+                        bail!("shutdown while retrying: {e}; the batch was not committed and will be re-delivered on restart (HTTP clients got no 202 and must resend)")
+                    };
+                    if stop.load(Ordering::SeqCst) {
+                        return shutdown();
+                    }
+                    tracing::warn!(sink = sink.name(), error = %e, retry_in_ms = backoff.as_millis() as u64, "sink write failed; retrying the same batch");
+                    metrics.sink_retries.with_label_values(&[sink.name()]).inc();
+                    // Not ready while a sink holds the batch (backpressure).
+                    metrics.ready.set(0);
+                    shared.lock().expect("shared state").ready = false;
+                    let until = Instant::now() + backoff;
+                    while Instant::now() < until {
+                        if stop.load(Ordering::SeqCst) {
+                            return shutdown();
+                        }
+                        std::thread::sleep(SLICE.min(until.saturating_duration_since(Instant::now())));
+                    }
+                    backoff = (backoff * 2).min(MAX_BACKOFF);
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// The processing loop. Returns when `stop` is set (after finishing the
+/// current batch), when a finite source is exhausted (after closing every
+/// journey), or on a permanent error.
+pub fn run_loop(
+    mut pipeline: Pipeline,
+    mut source: Box<dyn Source>,
+    mut sinks: Vec<Box<dyn Sink>>,
+    stop: Arc<AtomicBool>,
+    metrics: Metrics,
+    shared: Arc<Mutex<Shared>>,
+) -> Result<()> {
+    let batch_size = pipeline.config().batch_size;
+    let max_ready_lag = pipeline.config().admin.max_ready_lag;
+    let mut last_lag = Instant::now() - Duration::from_secs(60);
+    publish_models(&pipeline, &shared);
+    let result = (|| -> Result<()> {
+        while !stop.load(Ordering::SeqCst) {
+            let batch = source.poll(&mut pipeline, batch_size, Duration::from_millis(200))?;
+            let started = Instant::now();
+            let had_input = !batch.is_empty();
+            let mut out = OutputBatch::default();
+            let mut statuses = Vec::with_capacity(batch.len());
+            for (id, msgs) in &batch {
+                statuses.push((id.clone(), pipeline.process(id, msgs, &mut out)?));
+            }
+            let finished = !had_input && source.exhausted();
+            if finished {
+                pipeline.drain(&mut out)?;
+            } else {
+                pipeline.tick(Instant::now(), &mut out)?;
+            }
+            if had_input || !out.is_empty() {
+                if let Err(e) = write_sinks(&mut sinks, &out, &stop, &metrics, &shared) {
+                    // Nothing of this batch is committed: it is re-delivered.
+                    pipeline.rollback()?;
+                    return Err(e);
+                }
+                pipeline.commit()?;
+                source.committed(&pipeline, statuses)?;
+                metrics.batch_duration.observe(started.elapsed().as_secs_f64());
+            }
+            if finished {
+                break;
+            }
+            if pipeline.maybe_refit() {
+                publish_models(&pipeline, &shared);
+            }
+            if last_lag.elapsed() >= Duration::from_secs(5) {
+                source.update_lag(&metrics);
+                pipeline.update_gauges();
+                update_disk(&pipeline, &metrics);
+                last_lag = Instant::now();
+            }
+            let lag = source.lag();
+            let ready = source.ready() && (max_ready_lag == 0 || lag.is_none_or(|l| l <= max_ready_lag));
+            metrics.ready.set(ready as i64);
+            let mut s = shared.lock().expect("shared state");
+            s.ready = ready;
+            s.lag = lag;
+        }
+        Ok(())
+    })();
+    metrics.ready.set(0);
+    shared.lock().expect("shared state").ready = false;
+    if let Err(e) = &result {
+        shared.lock().expect("shared state").failed = Some(format!("{e:#}"));
+        return result;
+    }
+    pipeline.flush()?;
+    for s in sinks.iter_mut() {
+        s.close()?;
+    }
+    source.close(&mut pipeline)?;
+    tracing::info!("processing stopped cleanly: batch finished, store flushed, offsets committed");
+    Ok(())
+}
+
+fn publish_models(pipeline: &Pipeline, shared: &Arc<Mutex<Shared>>) {
+    shared.lock().expect("shared state").models = pipeline.models_json();
+}
+
+fn update_disk(pipeline: &Pipeline, metrics: &Metrics) {
+    if let Some(dir) = pipeline.config().data_dir() {
+        if let Ok(n) = fs_available(&dir) {
+            metrics.disk_available.set(n as i64);
+        }
+    }
+}
+
+/// Free bytes on the filesystem holding `dir`.
+fn fs_available(dir: &std::path::Path) -> Result<u64> {
+    Ok(fs2::available_space(dir)?)
+}
