@@ -228,3 +228,12 @@ pub fn table(rows: &[CreditRow], models: &[String]) -> String {
     }
     s
 }
+
+/// Ends the demo: the comparison report of its credit and path rows
+/// (`apportion compare --credits DIR --paths DIR --format html`), written
+/// to `out_dir/report.html`; returns its path.
+pub fn write_report(out_dir: &Path) -> Result<PathBuf> {
+    let path = out_dir.join("report.html");
+    crate::compare::html_report(out_dir, &path)?;
+    Ok(path)
+}

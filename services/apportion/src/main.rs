@@ -10,6 +10,7 @@
 //! - `replay.rs`: `apportion replay`, batch credit of an NDJSON file.
 //! - `demo.rs`: `apportion demo`, the invented shop scenario.
 //! - `explain.rs`: `apportion explain`, the fitted models and one conversion's terms.
+//! - `compare.rs`: `apportion compare`, the model comparison report (apportion-report).
 //! - `models.rs`: builds the configured models.
 //! - `output.rs`: atomic output files and the rejected-lines file.
 //! - `serve/`: the streaming service: `pipeline.rs` (partitions, watermarks,
@@ -20,6 +21,7 @@
 #![forbid(unsafe_code)]
 
 mod admin;
+mod compare;
 mod config;
 mod demo;
 mod explain;
@@ -60,6 +62,8 @@ enum Command {
     Demo(DemoArgs),
     /// Show the fitted shapley and markov models, and why one conversion got its credit.
     Explain(ExplainArgs),
+    /// Compare models on credit and path rows: totals, shifts, bootstrap intervals, lift tests.
+    Compare(compare::CompareArgs),
     /// Run the streaming service (Kafka, or embedded HTTP/file input without a [kafka] section).
     Serve,
     /// Show or check the configuration.
@@ -275,6 +279,7 @@ fn run(cli: Cli) -> Result<()> {
             let pseudo = pseudonymizer(&cfg);
             explain::run(&a.input, a.conversion.as_deref(), a.json, &cfg, &pseudo)
         }
+        Command::Compare(a) => compare::run(&a),
         Command::Serve => service::serve(load_config(cli.config.as_ref())?),
         Command::Health { url } => service::health(&url),
     }
@@ -312,6 +317,7 @@ fn run_demo(config: Option<&PathBuf>, a: DemoArgs) -> Result<()> {
     println!("\nevents:      {}", events.display());
     println!("credit rows: {}/credit-*.ndjson ({} rows)", a.out_dir.display(), run.rows.len());
     println!("paths:       {}/paths-*.ndjson ({} closed paths)", a.out_dir.display(), run.paths);
+    println!("report:      {} (apportion compare, every model against last_touch)", demo::write_report(&a.out_dir)?.display());
     println!("\nCredit is correlational: it is not proof that a channel caused a sale.");
     Ok(())
 }

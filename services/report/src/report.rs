@@ -114,14 +114,16 @@ impl Report {
                     t.model, t.conversions, c.conversions
                 ));
             }
-            if t.snapshots > 1 {
-                notes.push(format!(
-                    "The {} rows come from {} fitted snapshots (the model was refitted while crediting, as serve \
-                     does); the bootstrap's point values come from one fit on all the paths given and can differ \
-                     from the rows' shares.",
-                    t.model, t.snapshots
-                ));
-            }
+        }
+        let refitted: Vec<String> =
+            c.model_totals.iter().filter(|t| t.snapshots > 1).map(|t| format!("{} ({})", t.model, t.snapshots)).collect();
+        if !refitted.is_empty() {
+            notes.push(format!(
+                "The rows of {} come from several fitted snapshots (the models were refitted while crediting, as \
+                 serve does); the bootstrap's point values come from one fit on all the paths given and can differ \
+                 from the rows' shares.",
+                refitted.join(" and ")
+            ));
         }
         for l in &c.lift_tests {
             if !l.channel_seen {

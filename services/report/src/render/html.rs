@@ -18,7 +18,7 @@ use crate::report::Report;
 const STYLE: &str = r#"
 :root { color-scheme: light; }
 body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, "Noto Sans", "DejaVu Sans", sans-serif; color: #1b1b1b; background: #fff; margin: 0; line-height: 1.45; }
-main { max-width: 1040px; margin: 0 auto; padding: 24px 28px 48px; }
+main { max-width: 1180px; margin: 0 auto; padding: 24px 28px 48px; }
 h1 { font-size: 1.7rem; margin: 0 0 .3rem; }
 h2 { font-size: 1.3rem; margin: 2.2rem 0 .5rem; border-bottom: 2px solid #0072B2; padding-bottom: .2rem; }
 h3 { font-size: 1.05rem; margin: 1.4rem 0 .4rem; }
@@ -28,14 +28,14 @@ nav a { color: #005a8c; }
 .cautions { border-left: 6px solid #D55E00; background: #fff6ef; padding: .6rem 1rem; margin: 1rem 0; }
 .cautions h2 { border: 0; margin-top: .4rem; font-size: 1.15rem; }
 .notes { border-left: 6px solid #56B4E9; background: #f1f8fd; padding: .5rem 1rem; margin: 1rem 0; }
+.notes h2 { border: 0; margin-top: .4rem; font-size: 1.15rem; }
 figure { margin: .6rem 0 .4rem; }
 figcaption { font-size: .9rem; color: #444; margin-top: .2rem; }
 svg.chart { max-width: 100%; height: auto; display: block; }
-svg text { fill: #1b1b1b; }
 .table-wrap { overflow-x: auto; }
-table { border-collapse: collapse; margin: .5rem 0 1rem; font-size: .88rem; }
+table { border-collapse: collapse; margin: .5rem 0 1rem; font-size: .84rem; }
 caption { text-align: left; font-weight: 600; padding: .3rem 0; }
-th, td { padding: .22rem .55rem; border-bottom: 1px solid #ddd; }
+th, td { padding: .2rem .45rem; border-bottom: 1px solid #ddd; }
 thead th { background: #f0f0f0; text-align: right; vertical-align: bottom; }
 thead th:first-child, tbody th, tfoot th { text-align: left; }
 td { text-align: right; font-variant-numeric: tabular-nums; }

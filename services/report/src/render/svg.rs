@@ -14,10 +14,11 @@ use std::fmt::Write;
 
 use super::num;
 
-/// Series colours, in order (Okabe and Ito 2008), yellow late because it
-/// is the faintest on white; every bar has a dark outline.
+/// Series colours, in order: the Okabe-Ito colours (Okabe and Ito 2008)
+/// with a dark grey in place of black, and yellow last because it is the
+/// faintest on white; every bar has a dark outline.
 pub(crate) const PALETTE: [&str; 8] =
-    ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000"];
+    ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#4D4D4D", "#F0E442"];
 
 /// The colour of series `i`.
 pub(crate) fn color(i: usize) -> &'static str {
