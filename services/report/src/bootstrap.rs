@@ -36,7 +36,8 @@
 //! finite B is itself an estimate.
 //!
 //! ## Determinism
-//! Resample b draws its paths from ChaCha8 seeded with `seed` on stream b,
+//! The paths are put in `path_id` order first, so the order of files and
+//! rows does not matter. Resample b draws its paths from ChaCha8 seeded with `seed` on stream b,
 //! so resample b is the same whatever thread runs it: the result depends
 //! on (paths, seed, B, level, order), never on the number of threads. The
 //! resamples are spread over threads with `std::thread::scope`.
@@ -166,7 +167,7 @@ struct Compact {
 }
 
 impl Compact {
-    fn new(paths: &[PathRecord]) -> Self {
+    fn new(paths: &[&PathRecord]) -> Self {
         let mut names: Vec<String> = paths.iter().flat_map(|p| p.channels.iter().cloned()).collect();
         names.sort_unstable();
         names.dedup();
@@ -279,7 +280,11 @@ pub fn bootstrap(paths: &[PathRecord], opts: &BootstrapOptions) -> Result<Bootst
     if opts.threads == 0 {
         return invalid("at least one thread is needed".into());
     }
-    let c = Compact::new(paths);
+    // Resampling indexes into the paths, so fix their order first: the
+    // result then does not depend on the order of files or rows.
+    let mut sorted: Vec<&PathRecord> = paths.iter().collect();
+    sorted.sort_by(|a, b| (&a.path_id, &a.channels, a.converted).cmp(&(&b.path_id, &b.channels, b.converted)));
+    let c = Compact::new(&sorted);
     let n = c.items.len();
     let mut all = vec![0u32; c.uniques.len()];
     for &u in &c.items {

@@ -238,7 +238,7 @@ impl Comparison {
                 let (ma, a) = &per_model[i];
                 let (mb, b) = &per_model[j];
                 let (ma, mb, a, b) = if ma < mb { (*ma, *mb, a, b) } else { (*mb, *ma, b, a) };
-                add_shift(self.shifts.entry((ma, mb)).or_default(), a, b);
+                add_shift(self.shifts.entry((ma, mb)).or_default(), a, b, &self.keys);
             }
         }
         Ok(())
@@ -423,28 +423,30 @@ impl Comparison {
 }
 
 /// Adds one conversion's shift from credit `a` to credit `b` (crate docs).
-fn add_shift(cells: &mut HashMap<(usize, usize), Exact>, a: &PerKey, b: &PerKey) {
-    let mut keys: BTreeMap<usize, (f64, f64)> = BTreeMap::new();
+/// Keys are taken in name order, so the floating-point steps within a
+/// conversion do not depend on the order in which keys were first seen.
+fn add_shift(cells: &mut HashMap<(usize, usize), Exact>, a: &PerKey, b: &PerKey, names: &[String]) {
+    let mut keys: BTreeMap<&str, (usize, f64, f64)> = BTreeMap::new();
     for &(k, c, _) in a {
-        keys.entry(k).or_default().0 = c;
+        keys.entry(names[k].as_str()).or_insert((k, 0.0, 0.0)).1 = c;
     }
     for &(k, c, _) in b {
-        keys.entry(k).or_default().1 = c;
+        keys.entry(names[k].as_str()).or_insert((k, 0.0, 0.0)).2 = c;
     }
     let mut gain = 0.0;
-    for &(x, y) in keys.values() {
+    for &(_, x, y) in keys.values() {
         if y > x {
             gain += y - x;
         }
     }
-    for (&i, &(ai, bi)) in &keys {
+    for &(i, ai, bi) in keys.values() {
         let keep = ai.min(bi);
         if keep > 0.0 {
             cells.entry((i, i)).or_default().add(keep);
         }
         let loss = ai - bi;
         if loss > 0.0 && gain > 0.0 {
-            for (&j, &(aj, bj)) in &keys {
+            for &(j, aj, bj) in keys.values() {
                 let g = bj - aj;
                 if g > 0.0 {
                     cells.entry((i, j)).or_default().add(loss * g / gain);
