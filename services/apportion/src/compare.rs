@@ -89,11 +89,8 @@ pub fn run(a: &CompareArgs) -> Result<()> {
 /// The HTML report of the credit and path rows in `dir` (as `apportion
 /// compare --credits DIR --paths DIR --format html`), written to `output`.
 pub fn html_report(dir: &Path, output: &Path) -> Result<()> {
-    let inputs = ReportInputs {
-        credits: vec![dir.to_path_buf()],
-        paths: vec![dir.to_path_buf()],
-        ..ReportInputs::default()
-    };
+    let inputs =
+        ReportInputs { credits: vec![dir.to_path_buf()], paths: vec![dir.to_path_buf()], ..ReportInputs::default() };
     let report = build_report(&inputs)?;
     write_out(&render(&report, Format::Html), Some(output))
 }

@@ -317,7 +317,8 @@ fn run_demo(config: Option<&PathBuf>, a: DemoArgs) -> Result<()> {
     println!("\nevents:      {}", events.display());
     println!("credit rows: {}/credit-*.ndjson ({} rows)", a.out_dir.display(), run.rows.len());
     println!("paths:       {}/paths-*.ndjson ({} closed paths)", a.out_dir.display(), run.paths);
-    println!("report:      {} (apportion compare, every model against last_touch)", demo::write_report(&a.out_dir)?.display());
+    let report = demo::write_report(&a.out_dir)?;
+    println!("report:      {} (apportion compare, every model against last_touch)", report.display());
     println!("\nCredit is correlational: it is not proof that a channel caused a sale.");
     Ok(())
 }

@@ -307,9 +307,7 @@ pub fn bootstrap(paths: &[PathRecord], opts: &BootstrapOptions) -> Result<Bootst
         let handles: Vec<_> = (0..threads)
             .map(|t| {
                 let resample = &resample;
-                s.spawn(move || {
-                    (t..opts.resamples).step_by(threads).map(|b| (b, resample(b))).collect::<Vec<_>>()
-                })
+                s.spawn(move || (t..opts.resamples).step_by(threads).map(|b| (b, resample(b))).collect::<Vec<_>>())
             })
             .collect();
         for h in handles {
@@ -380,11 +378,7 @@ mod tests {
     }
 
     fn path(id: usize, channels: &[&str], converted: bool) -> PathRecord {
-        PathRecord {
-            path_id: format!("p{id}"),
-            converted,
-            channels: channels.iter().map(|c| c.to_string()).collect(),
-        }
+        PathRecord { path_id: format!("p{id}"), converted, channels: channels.iter().map(|c| c.to_string()).collect() }
     }
 
     #[test]
@@ -395,12 +389,8 @@ mod tests {
         // (v(ab) - v(b)) = 3/4, phi(b) = 1/4 (derived by hand from the
         // definition, Shapley 1953). Converting paths: {a} (a gets 1) and
         // {a,b} (3/4, 1/4): shares a = 7/8, b = 1/8.
-        let paths = vec![
-            path(0, &["a"], true),
-            path(1, &["a"], false),
-            path(2, &["a", "b"], true),
-            path(3, &["b"], false),
-        ];
+        let paths =
+            vec![path(0, &["a"], true), path(1, &["a"], false), path(2, &["a", "b"], true), path(3, &["b"], false)];
         let r = bootstrap(&paths, &BootstrapOptions { resamples: 20, threads: 1, ..Default::default() }).unwrap();
         assert_eq!((r.paths, r.converting_paths), (4, 2));
         let a = &r.channels[0];

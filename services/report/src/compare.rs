@@ -26,7 +26,8 @@ use crate::ReportError;
 
 /// The models of the contract in their usual order (rule models first);
 /// other model names follow in name order.
-pub const MODEL_ORDER: [&str; 7] = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped", "shapley", "markov"];
+pub const MODEL_ORDER: [&str; 7] =
+    ["last_touch", "first_touch", "linear", "time_decay", "u_shaped", "shapley", "markov"];
 
 /// Channel name of a conversion with no eligible touch.
 pub const UNATTRIBUTED: &str = "unattributed";

@@ -104,7 +104,11 @@ fn split_csv(line: &str) -> Result<Vec<String>, String> {
             quoted = true;
             was_quoted = true;
         } else if c == ',' {
-            fields.push(if was_quoted { std::mem::take(&mut cur) } else { std::mem::take(&mut cur).trim().to_string() });
+            fields.push(if was_quoted {
+                std::mem::take(&mut cur)
+            } else {
+                std::mem::take(&mut cur).trim().to_string()
+            });
             was_quoted = false;
         } else if was_quoted {
             if !c.is_whitespace() {
@@ -199,9 +203,8 @@ pub fn parse_experiments(text: &str, name: &str) -> Result<Vec<Experiment>, Repo
         }
         let instant = |c: &str, end: bool| -> Result<i64, ReportError> {
             let s = get(c);
-            parse_instant(s, end).ok_or_else(|| {
-                err(n, format!("{c} is not an ISO 8601 date (YYYY-MM-DD) or an RFC 3339 time: {s:?}"))
-            })
+            parse_instant(s, end)
+                .ok_or_else(|| err(n, format!("{c} is not an ISO 8601 date (YYYY-MM-DD) or an RFC 3339 time: {s:?}")))
         };
         let start_ms = instant("start", false)?;
         let end_ms = instant("end", true)?;
@@ -257,8 +260,8 @@ pub fn parse_experiments(text: &str, name: &str) -> Result<Vec<Experiment>, Repo
 
 /// Reads and parses an experiments file.
 pub fn read_experiments(path: &Path) -> Result<Vec<Experiment>, ReportError> {
-    let text = std::fs::read_to_string(path)
-        .map_err(|source| ReportError::Io { path: path.display().to_string(), source })?;
+    let text =
+        std::fs::read_to_string(path).map_err(|source| ReportError::Io { path: path.display().to_string(), source })?;
     parse_experiments(&text, &path.display().to_string())
 }
 

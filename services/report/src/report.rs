@@ -115,8 +115,12 @@ impl Report {
                 ));
             }
         }
-        let refitted: Vec<String> =
-            c.model_totals.iter().filter(|t| t.snapshots > 1).map(|t| format!("{} ({})", t.model, t.snapshots)).collect();
+        let refitted: Vec<String> = c
+            .model_totals
+            .iter()
+            .filter(|t| t.snapshots > 1)
+            .map(|t| format!("{} ({})", t.model, t.snapshots))
+            .collect();
         if !refitted.is_empty() {
             notes.push(format!(
                 "The rows of {} come from several fitted snapshots (the models were refitted while crediting, as \

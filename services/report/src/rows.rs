@@ -304,7 +304,10 @@ fn for_batches(
         if !names.contains(*c) {
             return Err(ReportError::Parquet {
                 path: path.display().to_string(),
-                detail: format!("no column {c:?}: not a file of the {} table", if columns.contains(&"credit") { "credit" } else { "paths" }),
+                detail: format!(
+                    "no column {c:?}: not a file of the {} table",
+                    if columns.contains(&"credit") { "credit" } else { "paths" }
+                ),
             });
         }
     }
@@ -395,7 +398,8 @@ fn read_paths_parquet(path: &Path, out: &mut Vec<PathRecord>) -> Result<(), Repo
                 return Err(bad("a required field is null"));
             }
             let list = channels.value(i);
-            let names = list.as_any().downcast_ref::<StringArray>().ok_or_else(|| bad("channels is not a list of strings"))?;
+            let names =
+                list.as_any().downcast_ref::<StringArray>().ok_or_else(|| bad("channels is not a list of strings"))?;
             let chans: Vec<String> = (0..names.len()).map(|k| names.value(k).to_string()).collect();
             if chans.is_empty() {
                 return Err(bad("a path has at least one channel"));

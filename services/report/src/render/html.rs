@@ -57,7 +57,9 @@ fn cell(path: &str, value: Option<f64>, text: &str, class: &str) -> String {
 
 /// An id fragment from a name: `[a-z0-9_-]`, anything else as `-`.
 pub(crate) fn slug(s: &str) -> String {
-    s.chars().map(|c| if c.is_ascii_alphanumeric() || c == '_' || c == '-' { c.to_ascii_lowercase() } else { '-' }).collect()
+    s.chars()
+        .map(|c| if c.is_ascii_alphanumeric() || c == '_' || c == '-' { c.to_ascii_lowercase() } else { '-' })
+        .collect()
 }
 
 fn figure(o: &mut String, chart: &str, caption: &str) {
@@ -112,7 +114,14 @@ pub(crate) fn page(r: &Report) -> String {
 
     // Credit and value per key and model.
     for (section, metric, total_metric, title, unit, decimals) in [
-        ("credit", "conversions", "credited_conversions", format!("Conversions credited per {by}"), "conversions".to_string(), 2),
+        (
+            "credit",
+            "conversions",
+            "credited_conversions",
+            format!("Conversions credited per {by}"),
+            "conversions".to_string(),
+            2,
+        ),
         ("value", "value", "credited_value", format!("Value credited per {by}"), currency.clone(), 2),
     ] {
         let values: Vec<Vec<f64>> = c
@@ -232,11 +241,7 @@ pub(crate) fn page(r: &Report) -> String {
             }
             o.push_str("</tbody></table></div>");
         }
-        let _ = write!(
-            o,
-            "<p>Relative differences are n/a where {} gives the {by} nothing.</p>",
-            esc(&base)
-        );
+        let _ = write!(o, "<p>Relative differences are n/a where {} gives the {by} nothing.</p>", esc(&base));
     }
     o.push_str("</section>");
 
@@ -445,12 +450,7 @@ pub(crate) fn page(r: &Report) -> String {
         for (e, l) in c.lift_tests.iter().enumerate() {
             let label = format!("{} {} to {}", l.channel, &l.start[..10], &l.end[..10]);
             for (mi, m) in l.models.iter().enumerate() {
-                let _ = write!(
-                    o,
-                    r#"<tr><th scope="row" title="source: {}">{}</th>"#,
-                    esc(&l.source),
-                    esc(&label)
-                );
+                let _ = write!(o, r#"<tr><th scope="row" title="source: {}">{}</th>"#, esc(&l.source), esc(&label));
                 o.push_str(&cell(&format!("/lift_tests/{e}/measured"), Some(l.measured), &num(l.measured, 1), ""));
                 o.push_str(&cell(&format!("/lift_tests/{e}/low"), Some(l.low), &num(l.low, 1), ""));
                 o.push_str(&cell(&format!("/lift_tests/{e}/high"), Some(l.high), &num(l.high, 1), ""));
@@ -460,7 +460,12 @@ pub(crate) fn page(r: &Report) -> String {
                     "inside".into()
                 };
                 let _ = write!(o, r#"<td class="model">{}</td>"#, esc(&m.model));
-                o.push_str(&cell(&format!("/lift_tests/{e}/models/{mi}/credited"), Some(m.credited), &num(m.credited, 1), ""));
+                o.push_str(&cell(
+                    &format!("/lift_tests/{e}/models/{mi}/credited"),
+                    Some(m.credited),
+                    &num(m.credited, 1),
+                    "",
+                ));
                 let _ = write!(
                     o,
                     r#"<td class="verdict{}" data-outside="{}">{}</td></tr>"#,

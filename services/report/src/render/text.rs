@@ -54,8 +54,11 @@ pub(crate) fn table(r: &Report) -> String {
             "mixed currencies".into()
         }
     });
-    let mut credit: Vec<(String, Vec<String>)> =
-        c.rows.iter().map(|row| (row.key.clone(), row.models.iter().map(|m| num(m.conversions, 2)).collect())).collect();
+    let mut credit: Vec<(String, Vec<String>)> = c
+        .rows
+        .iter()
+        .map(|row| (row.key.clone(), row.models.iter().map(|m| num(m.conversions, 2)).collect()))
+        .collect();
     credit.push(("total".into(), c.model_totals.iter().map(|t| num(t.credited_conversions, 2)).collect()));
     grid(&mut s, "Conversions credited (sum of credit)", by, &cols, &credit);
     let mut value: Vec<(String, Vec<String>)> =
@@ -192,7 +195,15 @@ pub(crate) fn csv(r: &Report) -> String {
             line("credit", &m.model, base, &row.key, "", "conversions", m.conversions.to_string());
             line("credit", &m.model, base, &row.key, "", "value", m.value.to_string());
             line("credit", &m.model, base, &row.key, "", "share", m.share.to_string());
-            line("credit", &m.model, base, &row.key, "", "conversions_difference", m.conversions_difference.to_string());
+            line(
+                "credit",
+                &m.model,
+                base,
+                &row.key,
+                "",
+                "conversions_difference",
+                m.conversions_difference.to_string(),
+            );
             line("credit", &m.model, base, &row.key, "", "conversions_relative", opt(m.conversions_relative));
             line("credit", &m.model, base, &row.key, "", "value_difference", m.value_difference.to_string());
             line("credit", &m.model, base, &row.key, "", "value_relative", opt(m.value_relative));

@@ -46,18 +46,19 @@ fn reproducible_with_a_seed() {
 #[test]
 fn strongest_channel_interval_excludes_do_nothing_channels() {
     let (truth, paths) = simulated_paths(6000, 17);
-    let strongest = truth
-        .channels
-        .iter()
-        .max_by(|a, b| a.incremental_conversions.total_cmp(&b.incremental_conversions))
-        .unwrap();
+    let strongest =
+        truth.channels.iter().max_by(|a, b| a.incremental_conversions.total_cmp(&b.incremental_conversions)).unwrap();
     let nulls: Vec<&str> = truth.channels.iter().filter(|c| c.does_nothing).map(|c| c.channel.as_str()).collect();
     assert_eq!(nulls, ["social", "display", "push"]);
     let r = bootstrap(&paths, &BootstrapOptions { resamples: 100, seed: 5, ..Default::default() }).unwrap();
     let s = interval(&r, &strongest.channel, "shapley");
     for n in &nulls {
         let share = interval(&r, n, "shapley").point;
-        assert!(share < s.low || share > s.high, "shapley: {n} ({share}) inside {}'s interval {s:?}", strongest.channel);
+        assert!(
+            share < s.low || share > s.high,
+            "shapley: {n} ({share}) inside {}'s interval {s:?}",
+            strongest.channel
+        );
         let (m, ms) = (interval(&r, &strongest.channel, "markov"), interval(&r, n, "markov").point);
         eprintln!(
             "{}: shapley [{:.4}, {:.4}] vs {n} {share:.4}; markov [{:.4}, {:.4}] vs {n} {ms:.4}",

@@ -202,7 +202,9 @@ fn html_tables_show_the_json_numbers_and_escape_names() {
     // The other formats carry the same numbers.
     let csv = render(&report, Format::Csv);
     let total = &report.comparison.model_totals[0];
-    assert!(csv.contains(&format!("model_total,{},,,,credited_conversions,{}\n", total.model, total.credited_conversions)));
+    assert!(
+        csv.contains(&format!("model_total,{},,,,credited_conversions,{}\n", total.model, total.credited_conversions))
+    );
     let table = render(&report, Format::Table);
     assert!(table.contains("Conversions credited") && table.contains(&report.cautions[0]));
 }

@@ -48,12 +48,8 @@ fn report_flags_exactly_the_models_outside_the_interval() {
     drop(f);
     let credits = dir.path().join("credit.ndjson");
     std::fs::write(&credits, ndjson(&sim.replay.rows)).unwrap();
-    let report = build_report(&ReportInputs {
-        credits: vec![credits],
-        experiments: Some(file),
-        ..Default::default()
-    })
-    .unwrap();
+    let report =
+        build_report(&ReportInputs { credits: vec![credits], experiments: Some(file), ..Default::default() }).unwrap();
     let checks = &report.comparison.lift_tests;
     assert_eq!(checks.len(), channels.len());
     let (mut inside, mut outside) = (0, 0);

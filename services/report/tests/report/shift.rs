@@ -84,12 +84,7 @@ fn hand_worked_three_conversions() {
     assert_eq!(r.shifts.len(), 1);
     let s = &r.shifts[0];
     assert_eq!((s.from_model.as_str(), s.to_model.as_str()), ("model_a", "model_b"));
-    let want = [
-        [0.5, 0.125, 0.5, 0.375],
-        [0.0, 0.25, 0.0, 0.5],
-        [0.0, 0.125, 0.0, 0.375],
-        [0.0, 0.0, 0.0, 0.25],
-    ];
+    let want = [[0.5, 0.125, 0.5, 0.375], [0.0, 0.25, 0.0, 0.5], [0.0, 0.125, 0.0, 0.375], [0.0, 0.0, 0.0, 0.25]];
     for (got, want) in s.matrix.iter().zip(want) {
         assert_eq!(got.as_slice(), want.as_slice());
     }
@@ -138,8 +133,20 @@ fn check_margins(r: &ComparisonResult, tol: f64) {
         for (i, row) in r.rows.iter().enumerate() {
             let row_sum: f64 = s.matrix[i].iter().sum();
             let col_sum: f64 = s.matrix.iter().map(|m| m[i]).sum();
-            assert!((row_sum - row.models[f].conversions).abs() < tol, "{} -> {} row {}", s.from_model, s.to_model, row.key);
-            assert!((col_sum - row.models[t].conversions).abs() < tol, "{} -> {} col {}", s.from_model, s.to_model, row.key);
+            assert!(
+                (row_sum - row.models[f].conversions).abs() < tol,
+                "{} -> {} row {}",
+                s.from_model,
+                s.to_model,
+                row.key
+            );
+            assert!(
+                (col_sum - row.models[t].conversions).abs() < tol,
+                "{} -> {} col {}",
+                s.from_model,
+                s.to_model,
+                row.key
+            );
             assert!(s.matrix[i].iter().all(|&x| x >= 0.0));
         }
     }

@@ -46,10 +46,7 @@ pub fn simulated_paths(users: u64, seed: u64) -> (Truth, Vec<PathRecord>) {
     let lines: Vec<&str> = text.lines().collect();
     let pseudo = Pseudonymizer::new(LOAD_PSEUDONYM_KEY.as_bytes());
     let replay = replay_lines(&lines, Rules::default(), &pseudo, false, |_| Vec::new());
-    let paths = replay
-        .paths
-        .iter()
-        .map(|p| PathRecord::from_json(&serde_json::to_string(p).unwrap()).unwrap())
-        .collect();
+    let paths =
+        replay.paths.iter().map(|p| PathRecord::from_json(&serde_json::to_string(p).unwrap()).unwrap()).collect();
     (truth, paths)
 }
