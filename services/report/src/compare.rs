@@ -219,7 +219,7 @@ impl Comparison {
                     self.lift[e].seen = true;
                 }
             }
-            if per_model.last().map_or(true, |(pm, _)| *pm != m) {
+            if !matches!(per_model.last(), Some((pm, _)) if *pm == m) {
                 per_model.push((m, Vec::new()));
             }
             let keys = &mut per_model.last_mut().expect("pushed above").1;

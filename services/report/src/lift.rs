@@ -173,7 +173,8 @@ pub fn parse_experiments(text: &str, name: &str) -> Result<Vec<Experiment>, Repo
                 }
             }
             let has = |c: &str| idx[COLUMNS.iter().position(|x| *x == c).expect("listed")].is_some();
-            if !has("std_error") && !(has("low") && has("high")) {
+            let interval_columns = has("std_error") || (has("low") && has("high"));
+            if !interval_columns {
                 return Err(err(n, "the header needs a \"std_error\" column or both \"low\" and \"high\"".into()));
             }
             header = Some((idx, fields.len()));

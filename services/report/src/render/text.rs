@@ -106,29 +106,27 @@ pub(crate) fn table(r: &Report) -> String {
         }
         let _ = writeln!(s, "\n(The JSON output has the shift matrix of every pair of models.)");
     }
-    match &r.bootstrap {
-        Some(b) => {
-            let cols: Vec<String> = b.channels.first().map_or(Vec::new(), |ch| {
-                ch.models.iter().map(|m| format!("{} share [{:.0}% interval]", m.model, b.level * 100.0)).collect()
-            });
-            let rows: Vec<(String, Vec<String>)> = b
-                .channels
-                .iter()
-                .map(|ch| {
-                    let cells = ch
-                        .models
-                        .iter()
-                        .map(|m| format!("{} [{}, {}]", pct(m.point), pct(m.low), pct(m.high)))
-                        .collect();
-                    (ch.channel.clone(), cells)
-                })
-                .collect();
-            grid(&mut s, &format!("Data-driven shares: {}", b.method), "channel", &cols, &rows);
-            if let Some(l) = &r.bootstrap_limits {
-                let _ = writeln!(s, "{l}");
-            }
+    if let Some(b) = &r.bootstrap {
+        let cols: Vec<String> = b.channels.first().map_or(Vec::new(), |ch| {
+            ch.models.iter().map(|m| format!("{} share [{:.0}% interval]", m.model, b.level * 100.0)).collect()
+        });
+        let mut order: Vec<&crate::bootstrap::ChannelShares> = b.channels.iter().collect();
+        order.sort_by(|x, y| {
+            let p = |c: &crate::bootstrap::ChannelShares| c.models.first().map_or(0.0, |m| m.point);
+            p(y).total_cmp(&p(x)).then(x.channel.cmp(&y.channel))
+        });
+        let rows: Vec<(String, Vec<String>)> = order
+            .iter()
+            .map(|ch| {
+                let cells =
+                    ch.models.iter().map(|m| format!("{} [{}, {}]", pct(m.point), pct(m.low), pct(m.high))).collect();
+                (ch.channel.clone(), cells)
+            })
+            .collect();
+        grid(&mut s, &format!("Data-driven shares: {}", b.method), "channel", &cols, &rows);
+        if let Some(l) = &r.bootstrap_limits {
+            let _ = writeln!(s, "{l}");
         }
-        None => {}
     }
     if !c.lift_tests.is_empty() {
         let _ = writeln!(s, "\nLift tests: each model's credited conversions beside the measured lift");
