@@ -101,12 +101,12 @@ pub use rows::{read_credit, read_paths, CreditRecord, PathRecord};
 #[non_exhaustive]
 pub enum ReportError {
     /// Reading a file failed.
-    #[error("{path}: {source}")]
+    #[error("{path}: {error}")]
     Io {
         /// The file or directory.
         path: String,
-        /// The error.
-        source: std::io::Error,
+        /// The error (in the message, not chained, so it is said once).
+        error: std::io::Error,
     },
     /// A row could not be read.
     #[error("{path}: row {row}: {detail}")]

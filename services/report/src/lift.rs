@@ -262,7 +262,7 @@ pub fn parse_experiments(text: &str, name: &str) -> Result<Vec<Experiment>, Repo
 /// Reads and parses an experiments file.
 pub fn read_experiments(path: &Path) -> Result<Vec<Experiment>, ReportError> {
     let text =
-        std::fs::read_to_string(path).map_err(|source| ReportError::Io { path: path.display().to_string(), source })?;
+        std::fs::read_to_string(path).map_err(|error| ReportError::Io { path: path.display().to_string(), error })?;
     parse_experiments(&text, &path.display().to_string())
 }
 

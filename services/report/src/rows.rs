@@ -203,7 +203,7 @@ enum Source {
 }
 
 fn io_err(path: &Path) -> impl Fn(std::io::Error) -> ReportError + '_ {
-    move |source| ReportError::Io { path: path.display().to_string(), source }
+    move |error| ReportError::Io { path: path.display().to_string(), error }
 }
 
 fn is_parquet(p: &Path) -> bool {

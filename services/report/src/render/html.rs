@@ -12,7 +12,7 @@
 use std::fmt::Write;
 
 use super::svg::{self, color, esc, Bars, Heat, Intervals, LiftRow};
-use super::{num, pct, signed, signed_pct};
+use super::{num, pct, period, signed, signed_pct};
 use crate::report::Report;
 
 const STYLE: &str = r#"
@@ -80,7 +80,7 @@ pub(crate) fn page(r: &Report) -> String {
             "mixed currencies".into()
         }
     });
-    let period = match (&c.first_conversion, &c.last_conversion) {
+    let conversions_span = match (&c.first_conversion, &c.last_conversion) {
         (Some(a), Some(b)) => format!("{} to {}", &a[..10], &b[..10]),
         _ => "no conversions".into(),
     };
@@ -91,7 +91,7 @@ pub(crate) fn page(r: &Report) -> String {
     );
     let _ = write!(
         o,
-        r#"<header><h1>How credit moves between attribution models</h1><p class="lead" id="summary">{} conversions from {period}, grouped by {by}; {} models compared with the baseline <strong>{}</strong>. Values in {}.</p>"#,
+        r#"<header><h1>How credit moves between attribution models</h1><p class="lead" id="summary">{} conversions from {conversions_span}, grouped by {by}; {} models compared with the baseline <strong>{}</strong>. Values in {}.</p>"#,
         c.conversions,
         c.models.len(),
         esc(&base),
@@ -422,7 +422,8 @@ pub(crate) fn page(r: &Report) -> String {
             .lift_tests
             .iter()
             .map(|l| LiftRow {
-                label: format!("{} {} to {}", l.channel, &l.start[..10], &l.end[..10]),
+                label: l.channel.clone(),
+                period: period(&l.start, &l.end),
                 measured: l.measured,
                 low: l.low,
                 high: l.high,
@@ -448,7 +449,7 @@ pub(crate) fn page(r: &Report) -> String {
         figure(&mut o, &chart, title);
         o.push_str(r#"<div class="table-wrap"><table id="table-lift"><caption>Credited conversions per model beside each experiment</caption><thead><tr><th scope="col">experiment</th><th scope="col">measured</th><th scope="col">low</th><th scope="col">high</th><th scope="col">model</th><th scope="col">credited</th><th scope="col">against the interval</th></tr></thead><tbody>"#);
         for (e, l) in c.lift_tests.iter().enumerate() {
-            let label = format!("{} {} to {}", l.channel, &l.start[..10], &l.end[..10]);
+            let label = format!("{}, {}", l.channel, period(&l.start, &l.end));
             for (mi, m) in l.models.iter().enumerate() {
                 let _ = write!(o, r#"<tr><th scope="row" title="source: {}">{}</th>"#, esc(&l.source), esc(&label));
                 o.push_str(&cell(&format!("/lift_tests/{e}/measured"), Some(l.measured), &num(l.measured, 1), ""));
@@ -479,10 +480,9 @@ pub(crate) fn page(r: &Report) -> String {
         for l in &c.lift_tests {
             let _ = write!(
                 o,
-                "<li>{} ({} to {}): {}; interval {}.</li>",
+                "<li>{} ({}): {}; interval {}.</li>",
                 esc(&l.channel),
-                esc(&l.start[..10]),
-                esc(&l.end[..10]),
+                esc(&period(&l.start, &l.end)),
                 esc(&l.source),
                 esc(&l.interval)
             );

@@ -52,6 +52,20 @@ pub fn json(report: &Report) -> String {
     s
 }
 
+/// A period `[start, end)` of RFC 3339 times for reading: dates only when
+/// both fall on midnight UTC, the last day then inclusive
+/// (`2026-03-01 to 2026-03-31`); else the times as given.
+pub(crate) fn period(start: &str, end: &str) -> String {
+    let midnight = |t: &str| t.len() >= 10 && t[10..].trim_start_matches('T').starts_with("00:00:00.000");
+    match apportion_engine::time_fmt::parse_rfc3339_ms(end) {
+        Some(e) if midnight(start) && midnight(end) => {
+            let last = apportion_engine::time_fmt::date_of_ms(e - 1);
+            format!("{} to {last}", &start[..10])
+        }
+        _ => format!("{start} to {end} (exclusive)"),
+    }
+}
+
 /// `x` with `decimals` digits (`-0.00` shown as `0.00`).
 pub(crate) fn num(x: f64, decimals: usize) -> String {
     let s = format!("{x:.decimals$}");
@@ -96,5 +110,11 @@ mod tests {
         assert_eq!(pct(0.1234), "12.3%");
         assert_eq!(signed_pct(-0.5), "-50.0%");
         assert!("pdf".parse::<Format>().is_err());
+        // Derived by hand: the end is exclusive, so the last whole day is the day before.
+        assert_eq!(period("2026-03-01T00:00:00.000Z", "2026-04-01T00:00:00.000Z"), "2026-03-01 to 2026-03-31");
+        assert_eq!(
+            period("2026-03-01T12:00:00.000Z", "2026-03-02T00:00:00.000Z"),
+            "2026-03-01T12:00:00.000Z to 2026-03-02T00:00:00.000Z (exclusive)"
+        );
     }
 }

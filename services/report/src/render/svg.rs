@@ -325,7 +325,7 @@ pub(crate) fn heat(h: &Heat) -> String {
     let gid = format!("{}-scale", h.id);
     let _ = write!(
         o,
-        r##"<defs><linearGradient id="{gid}"><stop offset="0" stop-color="{}"/><stop offset="1" stop-color="{}"/></linearGradient></defs><rect x="{lw:.1}" y="{sy:.1}" width="160" height="12" fill="url(#{gid})" stroke="#999"/><text x="{lw:.1}" y="{:.1}" font-size="11">0</text><text x="{:.1}" y="{:.1}" font-size="11" text-anchor="end">{} moved</text><rect x="{:.1}" y="{sy:.1}" width="12" height="12" fill="#e4e4e4" stroke="#999"/><text x="{:.1}" y="{:.1}" font-size="11">kept (diagonal, italic)</text></svg>"##,
+        r##"<defs><linearGradient id="{gid}"><stop offset="0" stop-color="{}"/><stop offset="1" stop-color="{}"/></linearGradient></defs><rect x="{lw:.1}" y="{sy:.1}" width="160" height="12" fill="url(#{gid})" stroke="#999"/><text x="{lw:.1}" y="{:.1}" font-size="11">0</text><text x="{:.1}" y="{:.1}" font-size="11" text-anchor="end">{} (largest move)</text><rect x="{:.1}" y="{sy:.1}" width="12" height="12" fill="#e4e4e4" stroke="#999"/><text x="{:.1}" y="{:.1}" font-size="11">kept (diagonal, italic)</text></svg>"##,
         blue(0.0),
         blue(1.0),
         sy + 26.0,
@@ -428,6 +428,7 @@ pub(crate) fn intervals(c: &Intervals) -> String {
 /// One experiment of the lift chart.
 pub(crate) struct LiftRow {
     pub label: String,
+    pub period: String,
     pub measured: f64,
     pub low: f64,
     pub high: f64,
@@ -439,8 +440,8 @@ pub(crate) struct LiftRow {
 /// line, each model's credit as a marker (circle inside, diamond outside).
 pub(crate) fn lift(id: &str, title: &str, desc: &str, rows: &[LiftRow]) -> String {
     let labels: Vec<String> = rows.iter().map(|r| short(&r.label, 30)).collect();
-    let longest = labels.iter().map(|l| l.chars().count()).max().unwrap_or(4) as f64;
-    let lw = (longest * 7.0 + 24.0).clamp(70.0, 240.0);
+    let longest = labels.iter().chain(rows.iter().map(|r| &r.period)).map(|l| l.chars().count().min(40)).max();
+    let lw = (longest.unwrap_or(4) as f64 * 6.6 + 24.0).clamp(70.0, 280.0);
     let width = 960.0;
     let plot_w = width - lw - 110.0;
     let top = 34.0;
@@ -489,7 +490,7 @@ pub(crate) fn lift(id: &str, title: &str, desc: &str, rows: &[LiftRow]) -> Strin
         let h = heights[r];
         let _ = write!(
             o,
-            r##"<rect class="band" x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="#d9d9d9" stroke="#8c8c8c"><title>{}: interval {} to {}</title></rect><line x1="{:.1}" x2="{:.1}" y1="{:.1}" y2="{:.1}" stroke="#000" stroke-width="2"><title>measured {}</title></line><text x="{:.1}" y="{:.1}" font-size="12" text-anchor="end">{}<title>{}</title></text>"##,
+            r##"<rect class="band" x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="#d9d9d9" stroke="#8c8c8c"><title>{}: interval {} to {}</title></rect><line x1="{:.1}" x2="{:.1}" y1="{:.1}" y2="{:.1}" stroke="#000" stroke-width="2"><title>measured {}</title></line><text x="{:.1}" y="{:.1}" font-size="12" font-weight="600" text-anchor="end">{}<title>{}</title></text><text x="{:.1}" y="{:.1}" font-size="11" text-anchor="end">{}</text>"##,
             x(row.low),
             y0 + 3.0,
             (x(row.high) - x(row.low)).max(1.0),
@@ -503,9 +504,12 @@ pub(crate) fn lift(id: &str, title: &str, desc: &str, rows: &[LiftRow]) -> Strin
             y0 + h - 1.0,
             num(row.measured, 1),
             lw - 8.0,
-            y0 + h / 2.0 + 4.0,
+            y0 + h / 2.0 - 3.0,
             esc(&labels[r]),
-            esc(&row.label)
+            esc(&row.label),
+            lw - 8.0,
+            y0 + h / 2.0 + 12.0,
+            esc(&short(&row.period, 40))
         );
         for (i, (model, col, v, outside)) in row.models.iter().enumerate() {
             let (cx, cy) = (x(*v), y0 + 14.0 + i as f64 * 16.0);

@@ -2,10 +2,10 @@
 
 use std::fmt::Write;
 
-use super::{num, pct, signed, signed_pct};
+use super::{num, pct, period as span, signed, signed_pct};
 use crate::report::Report;
 
-fn period(r: &Report) -> String {
+fn conversions_span(r: &Report) -> String {
     match (&r.comparison.first_conversion, &r.comparison.last_conversion) {
         (Some(a), Some(b)) => format!("{} to {}", &a[..10], &b[..10]),
         _ => "no conversions".into(),
@@ -42,7 +42,7 @@ pub(crate) fn table(r: &Report) -> String {
         s,
         "Model comparison by {by}: {} conversions ({}), models {}; baseline {}",
         c.conversions,
-        period(r),
+        conversions_span(r),
         c.models.join(", "),
         c.baseline.as_deref().unwrap_or("none")
     );
@@ -133,10 +133,9 @@ pub(crate) fn table(r: &Report) -> String {
         for l in &c.lift_tests {
             let _ = writeln!(
                 s,
-                "\n{} from {} to {} (source: {}): measured {} [{}, {}], {}",
+                "\n{}, {} (source: {}): measured {} [{}, {}], {}",
                 l.channel,
-                &l.start[..10],
-                &l.end[..10],
+                span(&l.start, &l.end),
                 l.source,
                 num(l.measured, 1),
                 num(l.low, 1),
