@@ -82,8 +82,9 @@ fn parquet_tree_reads_like_ndjson() {
     let dir = tempfile::tempdir().unwrap();
     let pq = dir.path().join("parquet");
     let mut sink = ParquetSink::open(&pq, 1 << 30, Duration::from_secs(3600)).unwrap();
-    let credit: Vec<_> = sim.replay.rows.chunks(997).collect();
-    let paths: Vec<_> = sim.replay.paths.chunks(97).collect();
+    // Three batches (each stages one segment per date and fsyncs it).
+    let credit: Vec<_> = sim.replay.rows.chunks(sim.replay.rows.len() / 3 + 1).collect();
+    let paths: Vec<_> = sim.replay.paths.chunks(sim.replay.paths.len() / 2 + 1).collect();
     for i in 0..credit.len().max(paths.len()) {
         let batch = OutputBatch {
             credit: credit.get(i).map_or(Vec::new(), |c| c.to_vec()),
