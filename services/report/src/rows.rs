@@ -294,6 +294,7 @@ fn pq_err(path: &Path) -> impl Fn(parquet::errors::ParquetError) -> ReportError 
 /// `columns`.
 fn for_batches(
     path: &Path,
+    table: Table,
     columns: &[&str],
     mut f: impl FnMut(&RecordBatch, u64) -> Result<(), ReportError>,
 ) -> Result<(), ReportError> {
@@ -304,10 +305,7 @@ fn for_batches(
         if !names.contains(*c) {
             return Err(ReportError::Parquet {
                 path: path.display().to_string(),
-                detail: format!(
-                    "no column {c:?}: not a file of the {} table",
-                    if columns.contains(&"credit") { "credit" } else { "paths" }
-                ),
+                detail: format!("no column {c:?}: not a file of the {} table", table.name()),
             });
         }
     }
@@ -348,7 +346,7 @@ const CREDIT_COLUMNS: [&str; 11] = [
 ];
 
 fn read_credit_parquet(path: &Path, out: &mut Vec<CreditRecord>) -> Result<(), ReportError> {
-    for_batches(path, &CREDIT_COLUMNS, |b, first_row| {
+    for_batches(path, Table::Credit, &CREDIT_COLUMNS, |b, first_row| {
         let conv = column::<StringArray>(b, "conversion_id", path)?;
         let model = column::<StringArray>(b, "model", path)?;
         let version = column::<StringArray>(b, "model_version", path)?;
@@ -387,7 +385,7 @@ fn read_credit_parquet(path: &Path, out: &mut Vec<CreditRecord>) -> Result<(), R
 }
 
 fn read_paths_parquet(path: &Path, out: &mut Vec<PathRecord>) -> Result<(), ReportError> {
-    for_batches(path, &["path_id", "converted", "channels"], |b, first_row| {
+    for_batches(path, Table::Paths, &["path_id", "converted", "channels"], |b, first_row| {
         let id = column::<StringArray>(b, "path_id", path)?;
         let converted = column::<BooleanArray>(b, "converted", path)?;
         let channels = column::<ListArray>(b, "channels", path)?;

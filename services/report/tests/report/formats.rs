@@ -105,6 +105,9 @@ fn parquet_tree_reads_like_ndjson() {
         let got = json(&build_report(&inputs(&credits, &paths)).unwrap());
         assert!(got == want, "{} differs from the NDJSON report", credits.display());
     }
+    // Path files given as credit rows: an error that says so.
+    let e = build_report(&inputs(&pq.join("paths"), &pq)).unwrap_err().to_string();
+    assert!(e.contains("no column \"model\": not a file of the credit table"), "{e}");
 }
 
 /// Finds `name="..."` in a tag.
