@@ -38,6 +38,7 @@ caption { text-align: left; font-weight: 600; padding: .3rem 0; }
 th, td { padding: .2rem .45rem; border-bottom: 1px solid #ddd; }
 thead th { background: #f0f0f0; text-align: right; vertical-align: bottom; }
 thead th:first-child, tbody th, tfoot th { text-align: left; }
+thead th[colspan] { text-align: center; border-bottom: 1px solid #ccc; }
 td { text-align: right; font-variant-numeric: tabular-nums; }
 tbody tr:nth-child(even) { background: #fafafa; }
 tfoot td, tfoot th { border-top: 2px solid #999; font-weight: 600; }
