@@ -23,6 +23,8 @@ trap cleanup EXIT
 if [[ -z "${SKIP_SERVERS:-}" ]]; then
   echo "== promtool"
   bash deploy/dev/promtool.sh
+  echo "== Chromium (Debian), the browser that renders the HTML report"
+  command -v chromium >/dev/null || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium)
   echo "== DuckDB (PyPI), the outside reader of the Parquet output"
   python3 -c "import duckdb" 2>/dev/null || python3 -m pip install --quiet duckdb
   echo "== Kafka broker"

@@ -6,4 +6,5 @@
 mod embedded;
 mod kafka_stream;
 mod metrics_lint;
+mod report_browser;
 mod warehouse;

@@ -24,6 +24,8 @@
 //! - `simulate.rs`: one journey per user, events and [`simulate::Truth`].
 //! - `groundtruth.rs`: crediting (binary or in process) and scoring.
 //! - `gen.rs`: the streaming load generator.
+//! - `lift.rs`: simulated lift tests (true incremental conversions of one
+//!   channel and the standard error of an idealized experiment).
 //! - `lines.rs`, `timefmt.rs`: fast NDJSON and RFC 3339 writing.
 //! - `stats.rs`: average ranks, Spearman, mean and standard deviation.
 //! - `main.rs`: the `apportion-load` command line.
@@ -32,6 +34,7 @@
 
 pub mod gen;
 pub mod groundtruth;
+pub mod lift;
 pub mod lines;
 pub mod scenario;
 pub mod simulate;

@@ -41,6 +41,8 @@ enum Command {
     Demo(DemoArgs),
     /// Show the fitted shapley and markov models, and why one conversion got its credit.
     Explain(ExplainArgs),
+    /// Compare models on credit and path rows: totals, shifts, bootstrap intervals, lift tests.
+    Compare(cmd::compare::CompareArgs),
     /// Run the streaming service (Kafka, or embedded HTTP/file input without a [kafka] section).
     Serve,
     /// Show or check the configuration.
@@ -149,6 +151,7 @@ fn run(cli: Cli) -> Result<()> {
             let pseudo = pseudonymizer(&cfg);
             cmd::explain::run(&a.input, a.conversion.as_deref(), a.json, &cfg, &pseudo)
         }
+        Command::Compare(a) => cmd::compare::run(&a),
         Command::Serve => cmd::serve::run(load_config(file)?),
         Command::Health { url } => cmd::health::run(&url),
     }

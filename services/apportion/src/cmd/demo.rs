@@ -254,6 +254,16 @@ pub fn run(cfg: &Config, pseudo: Pseudonymizer, out_dir: &Path, users: u32, seed
     println!("\nevents:      {}", events.display());
     println!("credit rows: {}/credit-*.ndjson ({} rows)", out_dir.display(), run.rows.len());
     println!("paths:       {}/paths-*.ndjson ({} closed paths)", out_dir.display(), run.paths);
+    let report = write_report(out_dir)?;
+    println!("report:      {} (apportion compare, every model against last_touch)", report.display());
     println!("\nCredit is correlational: it is not proof that a channel caused a sale.");
     Ok(())
+}
+
+/// Writes the HTML comparison report of the demo's rows and paths
+/// (`apportion compare`) as `out_dir/report.html`; returns its path.
+pub fn write_report(out_dir: &Path) -> Result<PathBuf> {
+    let path = out_dir.join("report.html");
+    super::compare::html_report(out_dir, &path)?;
+    Ok(path)
 }

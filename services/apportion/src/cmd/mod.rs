@@ -1,6 +1,7 @@
 //! One module per command; each parses nothing (clap did) and wires the
 //! libraries together.
 
+pub mod compare;
 pub mod config;
 pub mod demo;
 pub mod explain;
