@@ -78,9 +78,26 @@ fn http_ingest_equals_replay() {
     let (status, reply) = http(ingest, "POST", "/v1/events", body.as_bytes()).unwrap();
     assert_eq!(status, 202);
     assert_eq!(serde_json::from_str::<Value>(&reply).unwrap()["duplicates"], 10);
+    let (status, live) = s.get("/v1/compare").unwrap();
+    assert_eq!(status, 200, "{live}");
+    let live: Value = serde_json::from_str(&live).unwrap();
     assert_eq!(s.signal("TERM").code(), Some(0), "{}", std::fs::read_to_string(&s.log).unwrap());
     let got = read_rows(&dir.path().join("out"), "credit");
     assert_eq!(canonical(&got), canonical(&want));
+    // The running comparison of /v1/compare equals `apportion compare` on
+    // the rows the service wrote (every field the two have in common).
+    let o =
+        apportion().args(["compare", "--format", "json", "--credits"]).arg(dir.path().join("out")).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let batch: Value = serde_json::from_slice(&o.stdout).unwrap();
+    let mut common = 0;
+    for (k, v) in live.as_object().unwrap() {
+        if let Some(b) = batch.get(k) {
+            assert_eq!(v, b, "/v1/compare field {k}");
+            common += 1;
+        }
+    }
+    assert!(common >= 5 && live["conversions"].as_u64().unwrap() > 0, "{live}");
     // Small rotate_bytes: the output was split over several sealed files.
     let n = std::fs::read_dir(dir.path().join("out")).unwrap().count();
     assert!(n > 3, "{n} files");

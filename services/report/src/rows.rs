@@ -144,6 +144,25 @@ impl CreditRecord {
         Self::from_raw(raw)
     }
 
+    /// The fields the comparison reads, straight from a typed row of the
+    /// contract (the streaming service feeds its rows this way, with no
+    /// JSON in between).
+    pub fn from_row(r: &apportion_engine::CreditRow) -> Self {
+        CreditRecord {
+            conversion_id: r.conversion_id.clone(),
+            model: r.model.as_str().to_string(),
+            model_version: r.model_version.clone(),
+            goal: r.goal.clone(),
+            channel: r.channel.clone(),
+            campaign: r.campaign.clone(),
+            position: r.position,
+            conversion_ms: r.conversion_timestamp.ms(),
+            credit: r.credit,
+            credited_value: r.credited_value,
+            currency: r.currency.clone(),
+        }
+    }
+
     /// The conversion time as RFC 3339 (UTC, milliseconds).
     pub fn conversion_timestamp(&self) -> String {
         format_ms(self.conversion_ms)

@@ -1,5 +1,5 @@
-//! The admin HTTP endpoints: `/metrics`, `/healthz`, `/readyz` and
-//! `/v1/models`, all read-only. (The ingest endpoint of embedded mode is in
+//! The admin HTTP endpoints: `/metrics`, `/healthz`, `/readyz`,
+//! `/v1/models` and `/v1/compare`, all read-only. (The ingest endpoint of embedded mode is in
 //! [`crate::embedded::http`].)
 
 use std::sync::{Arc, Mutex};
@@ -26,6 +26,7 @@ pub fn admin_router(metrics: Metrics, shared: Arc<Mutex<Shared>>) -> Router {
         .route("/healthz", get(healthz))
         .route("/readyz", get(readyz))
         .route("/v1/models", get(models))
+        .route("/v1/compare", get(compare))
         .with_state(AdminState { metrics, shared })
 }
 
@@ -53,4 +54,21 @@ async fn readyz(State(s): State<AdminState>) -> Response {
 async fn models(State(s): State<AdminState>) -> Response {
     let v = s.shared.lock().expect("shared").models.clone();
     Json(v).into_response()
+}
+
+/// The comparison of the models over the conversions credited since start:
+/// the JSON of `apportion compare --format json` (without bootstrap and
+/// lift tests, which need the path rows and an experiments file).
+async fn compare(State(s): State<AdminState>) -> Response {
+    let sh = s.shared.lock().expect("shared");
+    match sh.compare.as_ref() {
+        None => (StatusCode::NOT_FOUND, "the running comparison is off (admin.compare = false)\n").into_response(),
+        Some(c) if c.conversions() == 0 => {
+            (StatusCode::SERVICE_UNAVAILABLE, "no conversion credited yet\n").into_response()
+        }
+        Some(c) => match c.result() {
+            Ok(r) => Json(r).into_response(),
+            Err(e) => (StatusCode::INTERNAL_SERVER_ERROR, format!("{e}\n")).into_response(),
+        },
+    }
 }

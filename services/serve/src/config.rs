@@ -118,6 +118,9 @@ pub struct AdminConfig {
     pub listen: String,
     /// /readyz fails while consumer lag exceeds this many messages (0: no limit).
     pub max_ready_lag: u64,
+    /// Keep a running comparison of the models for /v1/compare (a little
+    /// work and memory per credited conversion).
+    pub compare: bool,
 }
 
 /// Embedded mode.
@@ -206,7 +209,7 @@ impl Default for Config {
 
 impl Default for AdminConfig {
     fn default() -> Self {
-        AdminConfig { listen: "127.0.0.1:9464".into(), max_ready_lag: 0 }
+        AdminConfig { listen: "127.0.0.1:9464".into(), max_ready_lag: 0, compare: true }
     }
 }
 

@@ -27,6 +27,29 @@ pub struct Shared {
     pub models: serde_json::Value,
     /// Set when the processing loop stopped with an error.
     pub failed: Option<String>,
+    /// The comparison of the models over every conversion credited since
+    /// the process started (`/v1/compare`); `None` when turned off
+    /// (`admin.compare = false`).
+    pub compare: Option<apportion_report::Comparison>,
+}
+
+/// Adds the committed batch's conversions to the running comparison. The
+/// rows of one conversion are contiguous in a batch (every model's rows of
+/// a conversion are emitted together).
+fn feed_comparison(shared: &Mutex<Shared>, out: &OutputBatch) {
+    let mut sh = shared.lock().expect("shared state");
+    let Some(cmp) = sh.compare.as_mut() else { return };
+    let mut start = 0;
+    while start < out.credit.len() {
+        let id = &out.credit[start].conversion_id;
+        let end = start + out.credit[start..].iter().take_while(|r| &r.conversion_id == id).count();
+        let rows: Vec<apportion_report::CreditRecord> =
+            out.credit[start..end].iter().map(apportion_report::CreditRecord::from_row).collect();
+        if let Err(e) = cmp.add_conversion(&rows) {
+            tracing::warn!(error = %e, "a conversion could not be added to the /v1/compare comparison");
+        }
+        start = end;
+    }
 }
 
 /// Writes `out` to every sink, retrying each with exponential backoff until
@@ -134,6 +157,7 @@ pub fn run_loop(
                     return Err(e);
                 }
                 pipeline.commit()?;
+                feed_comparison(&shared, &out);
                 source.committed(&pipeline, statuses)?;
                 metrics.batch_duration.observe(started.elapsed().as_secs_f64());
             }

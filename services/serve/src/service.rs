@@ -85,7 +85,10 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
     let data_dir = cfg.data_dir().unwrap_or_else(|| PathBuf::from("apportion-data"));
     let store = Store::open(&data_dir)?;
     let metrics = Metrics::new(prometheus::Registry::new());
-    let shared = Arc::new(Mutex::new(Shared::default()));
+    let shared = Arc::new(Mutex::new(Shared {
+        compare: cfg.admin.compare.then(|| apportion_report::Comparison::new(Default::default())),
+        ..Shared::default()
+    }));
     let stop = Arc::new(AtomicBool::new(false));
     let mut pipeline = Pipeline::new(cfg.clone(), Pseudonymizer::new(&key), store, metrics.clone())?;
 

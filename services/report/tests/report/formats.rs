@@ -51,6 +51,8 @@ fn streaming_feed_equals_the_batch_command() {
     let mut groups: Vec<Vec<CreditRecord>> = Vec::new();
     for r in rows {
         let rec = CreditRecord::from_serialized(r).unwrap();
+        // The service's direct conversion (no JSON) reads the same fields.
+        assert_eq!(CreditRecord::from_row(r), rec);
         match groups.last_mut() {
             Some(g) if g[0].conversion_id == rec.conversion_id => g.push(rec),
             _ => groups.push(vec![rec]),
