@@ -54,11 +54,15 @@ pub enum RejectReason {
     InvalidCurrency,
     /// Event time older than the watermark allows (streaming, by policy).
     Late,
+    /// Event time further ahead of processing time than `max_future_skew`
+    /// (a producer's clock far off, or a bad value); it would otherwise drag
+    /// the partition's watermark into the future.
+    FutureTimestamp,
 }
 
 impl RejectReason {
     /// Every reason, in a fixed order (for metrics pre-registration and docs).
-    pub const ALL: [RejectReason; 20] = [
+    pub const ALL: [RejectReason; 21] = [
         RejectReason::TooLarge,
         RejectReason::InvalidUtf8,
         RejectReason::InvalidJson,
@@ -79,6 +83,7 @@ impl RejectReason {
         RejectReason::InvalidValue,
         RejectReason::InvalidCurrency,
         RejectReason::Late,
+        RejectReason::FutureTimestamp,
     ];
 
     /// Stable snake_case code.
@@ -104,6 +109,7 @@ impl RejectReason {
             RejectReason::InvalidValue => "invalid_value",
             RejectReason::InvalidCurrency => "invalid_currency",
             RejectReason::Late => "late",
+            RejectReason::FutureTimestamp => "future_timestamp",
         }
     }
 }

@@ -86,8 +86,10 @@ pub struct Config {
     pub allowed_lateness: Period,
     /// Streaming: what to do with events later than that.
     pub late_policy: LatePolicy,
-    /// Streaming: after this long without input, the watermark advances by processing time.
+    /// Streaming: after this long caught up with its input, a partition's watermark advances by processing time.
     pub idle_timeout: Period,
+    /// Events more than this far ahead of processing time are rejected (`future_timestamp`).
+    pub max_future_skew: Period,
     /// Streaming: how often the data-driven models are refitted.
     pub refit_interval: Period,
     /// Streaming: how long event ids are remembered for duplicate detection (event time).
@@ -193,6 +195,7 @@ impl Default for Config {
             allowed_lateness: Period::seconds(5),
             late_policy: LatePolicy::DeadLetter,
             idle_timeout: Period::seconds(60),
+            max_future_skew: Period(15 * 60_000),
             refit_interval: Period(15 * 60_000),
             dedupe_horizon: Period::days(7),
             batch_size: 5000,

@@ -1,15 +1,26 @@
 //! The models `serve` credits with, and when the data-driven ones are
-//! refitted (docs/contract.md, "Models", Fitting): every `refit_interval`,
-//! from the path statistics of every open partition. Each refit fits
-//! `shapley` and `markov` once; the same fitted models credit conversions
-//! and describe themselves on `/v1/models`.
+//! refitted (docs/contract.md, "Models", Fitting).
+//!
+//! A [`Snapshot`] is the set of configured models, the data-driven ones
+//! fitted on one value of the path statistics; its version is the
+//! statistics' fingerprint, so equal statistics give equal snapshots (and
+//! the same `model_version`s). Every `refit_interval` a new snapshot is
+//! fitted on the statistics of every open partition. Partitions adopt it at
+//! their next commit, in the same atomic batch as their offsets, and the
+//! store keeps the statistics of every snapshot a partition names: a
+//! partition reopened after a crash credits with the snapshot it had, so a
+//! redelivered batch gets the data-driven credit it got the first time.
 
+use std::collections::HashMap;
+use std::sync::Arc;
 use std::time::Instant;
 
+use anyhow::Result;
 use apportion_contract::ModelId;
 use apportion_engine::datadriven::{MarkovModel, PathStats, ShapleyModel};
 use apportion_engine::registry::{rule_model, ModelPlan};
 use apportion_engine::Model;
+use apportion_store::Store;
 
 use crate::metrics::Metrics;
 
@@ -17,22 +28,25 @@ use crate::metrics::Metrics;
 /// above 20 channels; reported with the result).
 pub const GLOBAL_SEED: u64 = 20_260_101;
 
-/// The current model snapshot and its refit schedule.
-pub struct Refit {
-    plan: ModelPlan,
-    interval_ms: i64,
+/// The configured models, the data-driven ones fitted on one value of the
+/// path statistics.
+pub struct Snapshot {
+    version: Option<String>,
     models: Vec<Box<dyn Model>>,
     json: serde_json::Value,
-    last_fit: Option<Instant>,
-    metrics: Metrics,
 }
 
-impl Refit {
-    /// The models of `plan`, the data-driven ones fitted on no paths yet.
-    pub fn new(plan: ModelPlan, interval_ms: i64, metrics: Metrics) -> Self {
-        let empty = plan.empty_stats();
-        let (models, json) = fit(&plan, &empty);
-        Refit { plan, interval_ms, models, json, last_fit: None, metrics }
+impl Snapshot {
+    /// Fits the plan's models on `stats`.
+    pub fn fit(plan: &ModelPlan, stats: &PathStats) -> Snapshot {
+        let (models, json) = fit(plan, stats);
+        let version = plan.data_driven().then(|| format!("o{}-{}", stats.markov_order(), stats.fingerprint()));
+        Snapshot { version, models, json }
+    }
+
+    /// The snapshot's key in the store (`None` without data-driven models).
+    pub fn version(&self) -> Option<&str> {
+        self.version.as_deref()
     }
 
     /// The models, in output order.
@@ -40,10 +54,55 @@ impl Refit {
         &self.models
     }
 
-    /// The snapshot for the read-only model endpoint: every model's name and
-    /// version, and for the data-driven ones the fitted weights.
+    /// The description for `/v1/models`.
     pub fn json(&self) -> &serde_json::Value {
         &self.json
+    }
+}
+
+/// The current snapshot, the snapshots partitions still credit with, and
+/// the refit schedule.
+pub struct Refit {
+    plan: ModelPlan,
+    interval_ms: i64,
+    current: Arc<Snapshot>,
+    loaded: HashMap<String, Arc<Snapshot>>,
+    last_fit: Option<Instant>,
+    metrics: Metrics,
+}
+
+impl Refit {
+    /// The models of `plan`, the data-driven ones fitted on no paths yet.
+    pub fn new(plan: ModelPlan, interval_ms: i64, metrics: Metrics) -> Self {
+        let current = Arc::new(Snapshot::fit(&plan, &plan.empty_stats()));
+        Refit { plan, interval_ms, current, loaded: HashMap::new(), last_fit: None, metrics }
+    }
+
+    /// The current snapshot.
+    pub fn current(&self) -> &Arc<Snapshot> {
+        &self.current
+    }
+
+    /// The snapshot a partition committed with (`version`), from the store;
+    /// the current one for a partition without one. A named snapshot the
+    /// store lacks is an error: crediting with another would change the
+    /// credit of a redelivered batch.
+    pub fn snapshot_for(&mut self, store: &Store, version: Option<&str>) -> Result<Arc<Snapshot>> {
+        let Some(v) = version.filter(|_| self.plan.data_driven()) else { return Ok(self.current.clone()) };
+        if self.current.version() == Some(v) {
+            return Ok(self.current.clone());
+        }
+        if let Some(s) = self.loaded.get(v) {
+            return Ok(s.clone());
+        }
+        let stats = store.snapshot(v, self.plan.markov_order)?.ok_or_else(|| {
+            anyhow::anyhow!(
+                "the store names model snapshot {v} but does not hold its statistics; the data dir is damaged"
+            )
+        })?;
+        let s = Arc::new(Snapshot::fit(&self.plan, &stats));
+        self.loaded.insert(v.to_string(), s.clone());
+        Ok(s)
     }
 
     /// True when the plan has a data-driven model and `refit_interval` has
@@ -52,18 +111,15 @@ impl Refit {
         self.plan.data_driven() && self.last_fit.is_none_or(|t| t.elapsed().as_millis() as i64 >= self.interval_ms)
     }
 
-    /// Refits the data-driven models on `stats`. Returns true when a
-    /// model's version changed.
-    pub fn refit(&mut self, stats: &PathStats) -> bool {
+    /// Fits a new snapshot on `stats` and stores its statistics. Returns it
+    /// when its version differs from the current one.
+    pub fn refit(&mut self, store: &Store, stats: &PathStats) -> Result<Option<Arc<Snapshot>>> {
         self.last_fit = Some(Instant::now());
         if !self.plan.data_driven() {
-            return false;
+            return Ok(None);
         }
         let started = Instant::now();
-        let before: Vec<Option<String>> = self.models.iter().map(|m| m.version().map(str::to_string)).collect();
-        let (models, json) = fit(&self.plan, stats);
-        self.models = models;
-        self.json = json;
+        let s = Snapshot::fit(&self.plan, stats);
         let secs = started.elapsed().as_secs_f64();
         let now =
             std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_secs_f64()).unwrap_or(0.0);
@@ -71,14 +127,33 @@ impl Refit {
             self.metrics.refit_time.with_label_values(&[m.as_str()]).set(now);
             self.metrics.refit_duration.with_label_values(&[m.as_str()]).set(secs);
         }
+        if s.version() == self.current.version() {
+            return Ok(None);
+        }
         tracing::info!(
             paths = stats.paths(),
             conversions = stats.conversions(),
             seconds = secs,
             "refitted data-driven models"
         );
-        let after: Vec<Option<String>> = self.models.iter().map(|m| m.version().map(str::to_string)).collect();
-        before != after
+        store.save_snapshot(s.version().expect("data-driven"), stats)?;
+        self.current = Arc::new(s);
+        Ok(Some(self.current.clone()))
+    }
+
+    /// Forgets loaded snapshots no partition uses and deletes their stored
+    /// statistics.
+    pub fn prune(&mut self, store: &Store, in_use: &[&str]) -> Result<()> {
+        if !self.plan.data_driven() {
+            return Ok(());
+        }
+        self.loaded.retain(|v, _| in_use.contains(&v.as_str()));
+        let mut keep: Vec<&str> = in_use.to_vec();
+        if let Some(v) = self.current.version() {
+            keep.push(v);
+        }
+        store.prune_snapshots(&keep)?;
+        Ok(())
     }
 }
 

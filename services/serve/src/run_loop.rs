@@ -52,6 +52,19 @@ fn feed_comparison(shared: &Mutex<Shared>, out: &OutputBatch) {
     }
 }
 
+/// What became of a batch's output.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Written {
+    /// Every sink has it; `stalled` when some sink needed retries first.
+    Done {
+        /// A sink held the batch for a while (the idle clocks restart).
+        stalled: bool,
+    },
+    /// Shutdown came while a sink held the batch: it is given up
+    /// uncommitted and delivered again after the restart.
+    Abandoned,
+}
+
 /// Writes `out` to every sink, retrying each with exponential backoff until
 /// it succeeds, a permanent error occurs, or shutdown is requested.
 ///
@@ -61,15 +74,16 @@ fn feed_comparison(shared: &Mutex<Shared>, out: &OutputBatch) {
 /// given up uncommitted: sinks written before may hold its rows already,
 /// and its re-delivery writes them again (at least once; rows carry
 /// deterministic ids). The backoff sleep wakes up for shutdown at once; a
-/// `write()` in progress (e.g. the PostgreSQL sink's own retries) is not
-/// interrupted.
+/// `write()` in progress is not interrupted (the PostgreSQL sink bounds one
+/// attempt by its connect and statement timeouts).
 pub fn write_sinks(
     sinks: &mut [Box<dyn Sink>],
     out: &OutputBatch,
     stop: &AtomicBool,
     metrics: &Metrics,
     shared: &Mutex<Shared>,
-) -> Result<()> {
+) -> Result<Written> {
+    let mut stalled = false;
     const MAX_BACKOFF: Duration = Duration::from_secs(30);
     const SLICE: Duration = Duration::from_millis(50);
     for sink in sinks.iter_mut() {
@@ -93,8 +107,10 @@ pub fn write_sinks(
                     if !e.retryable {
                         bail!("{e}");
                     }
+                    stalled = true;
                     let shutdown = || {
-                        bail!("shutdown while retrying: {e}; the batch was not committed and will be re-delivered on restart (HTTP clients got no 202 and must resend)")
+                        tracing::warn!(sink = sink.name(), error = %e, "shutdown while a sink holds the batch: the batch is not committed and is delivered again after the restart (HTTP clients got no 202 and must resend)");
+                        Ok(Written::Abandoned)
                     };
                     if stop.load(Ordering::SeqCst) {
                         return shutdown();
@@ -116,7 +132,7 @@ pub fn write_sinks(
             }
         }
     }
-    Ok(())
+    Ok(Written::Done { stalled })
 }
 
 /// The processing loop. Returns when `stop` is set (after finishing the
@@ -145,27 +161,48 @@ pub fn run_loop(
                 statuses.push((id.clone(), pipeline.process(id, msgs, &mut out)?));
             }
             let finished = !had_input && source.exhausted();
+            let now = Instant::now();
+            for id in pipeline.open_partitions() {
+                pipeline.set_caught_up(&id, source.caught_up(&id), now);
+            }
             if finished {
                 pipeline.drain(&mut out)?;
             } else {
-                pipeline.tick(Instant::now(), &mut out)?;
+                pipeline.tick(now, &mut out)?;
             }
             if had_input || !out.is_empty() {
-                if let Err(e) = write_sinks(&mut sinks, &out, &stop, &metrics, &shared) {
-                    // Nothing of this batch is committed: it is re-delivered.
-                    pipeline.rollback()?;
-                    return Err(e);
+                // Decisions that depended on processing time are durable
+                // before any output that depends on them is written.
+                pipeline.persist_decisions()?;
+                match write_sinks(&mut sinks, &out, &stop, &metrics, &shared) {
+                    Ok(Written::Done { stalled }) => {
+                        if stalled {
+                            pipeline.restart_idle_clocks(Instant::now());
+                        }
+                    }
+                    Ok(Written::Abandoned) => {
+                        // Nothing of this batch is committed: it is re-delivered.
+                        pipeline.rollback()?;
+                        break;
+                    }
+                    Err(e) => {
+                        pipeline.rollback()?;
+                        return Err(e);
+                    }
                 }
+                // A refit takes effect at this commit: the snapshot each
+                // partition credits with is committed with its offsets.
+                let refitted = pipeline.maybe_refit()?;
                 pipeline.commit()?;
+                if refitted {
+                    publish_models(&pipeline, &shared);
+                }
                 feed_comparison(&shared, &out);
                 source.committed(&pipeline, statuses)?;
                 metrics.batch_duration.observe(started.elapsed().as_secs_f64());
             }
             if finished {
                 break;
-            }
-            if pipeline.maybe_refit() {
-                publish_models(&pipeline, &shared);
             }
             if last_lag.elapsed() >= Duration::from_secs(5) {
                 source.update_lag(&metrics);

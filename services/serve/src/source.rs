@@ -53,8 +53,12 @@ pub struct InMsg {
     pub offset: i64,
     /// The bytes.
     pub payload: Vec<u8>,
-    /// When the service received it.
+    /// When the service received it (latency metric).
     pub arrived: Instant,
+    /// Processing time of the message, epoch ms: the Kafka record's
+    /// timestamp, else when the service read it. Future-dated events are
+    /// judged against it (`max_future_skew`).
+    pub timestamp_ms: i64,
 }
 
 /// What became of one message.
@@ -85,6 +89,12 @@ pub trait Source: Send {
     }
     /// True once the source has its partitions.
     fn ready(&self) -> bool;
+    /// True when the partition has no more input to hand over right now
+    /// (read up to its end). Only a caught-up partition can become idle
+    /// (`idle_timeout`); a partition with a backlog never does.
+    fn caught_up(&self, _part: &PartId) -> bool {
+        false
+    }
     /// True when a finite source has handed over everything (the demo, the
     /// tests): the run loop then closes every journey, as at the end of a
     /// replay, and stops.
@@ -141,11 +151,12 @@ impl Source for MemorySource {
             return Ok(Vec::new());
         }
         let now = Instant::now();
+        let wall = crate::pipeline::now_ms();
         let msgs = self
             .pending
             .drain(..n)
             .map(|payload| {
-                let m = InMsg { offset: self.next_offset, payload, arrived: now };
+                let m = InMsg { offset: self.next_offset, payload, arrived: now, timestamp_ms: wall };
                 self.next_offset += 1;
                 m
             })
@@ -166,6 +177,10 @@ impl Source for MemorySource {
 
     fn exhausted(&self) -> bool {
         self.opened && self.pending.is_empty()
+    }
+
+    fn caught_up(&self, part: &PartId) -> bool {
+        *part == self.part && self.pending.is_empty()
     }
 }
 

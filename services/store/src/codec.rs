@@ -8,6 +8,9 @@
 //! | clock | 1 | version, largest event time seen (8 bytes BE), watermark (8 bytes BE) |
 //! | path statistics | 1 | version, JSON of [`PathStats`] (the serde form documented there) |
 //! | input offset | none | 8 bytes big endian (a bare offset, unchanged since the first release) |
+//! | decision (key `d` + offset + kind) | none | `f`: a future-dated event rejected at that offset (empty value); `a`: a processing-time advance of the watermark after that offset (8 bytes BE) |
+//! | active snapshot (`m` `snapshot`) | none | the `model_version` the partition credits with (UTF-8) |
+//! | snapshot (tree `snapshots`, key = version) | 1 | as path statistics |
 
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::Journey;
@@ -145,4 +148,68 @@ pub(crate) fn ordered_i64(v: i64) -> [u8; 8] {
 /// Inverse of [`ordered_i64`].
 pub(crate) fn from_ordered_i64(b: &[u8]) -> i64 {
     (u64::from_be_bytes(b.try_into().expect("8 bytes")) ^ (1 << 63)) as i64
+}
+
+/// A decision that depended on processing time, recorded with the input
+/// offset it applies at, so that a redelivery of the same messages makes it
+/// again (docs/contract.md, "Determinism").
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum Decision {
+    /// The event at `offset` was rejected as too far in the future.
+    FutureRejected {
+        /// Offset of the event.
+        offset: i64,
+    },
+    /// After the message at `after_offset`, the watermark moved to
+    /// `watermark` by processing time (an idle partition).
+    Advance {
+        /// Offset of the last message before the advance.
+        after_offset: i64,
+        /// The new watermark.
+        watermark: i64,
+    },
+}
+
+impl Decision {
+    /// The offset the decision is keyed by.
+    pub fn offset(&self) -> i64 {
+        match *self {
+            Decision::FutureRejected { offset } => offset,
+            Decision::Advance { after_offset, .. } => after_offset,
+        }
+    }
+
+    pub(crate) fn key(&self) -> Vec<u8> {
+        let mut k = Vec::with_capacity(10);
+        k.push(b'd');
+        k.extend_from_slice(&ordered_i64(self.offset()));
+        k.push(match self {
+            Decision::FutureRejected { .. } => b'f',
+            Decision::Advance { .. } => b'a',
+        });
+        k
+    }
+
+    pub(crate) fn value(&self) -> Vec<u8> {
+        match self {
+            Decision::FutureRejected { .. } => Vec::new(),
+            Decision::Advance { watermark, .. } => watermark.to_be_bytes().to_vec(),
+        }
+    }
+
+    pub(crate) fn decode(key: &[u8], value: &[u8]) -> Result<Decision, StoreError> {
+        let corrupt = |d: &str| StoreError::Corrupt { prefix: 'd', detail: d.to_string() };
+        if key.len() != 10 {
+            return Err(corrupt("decision key of the wrong length"));
+        }
+        let offset = from_ordered_i64(&key[1..9]);
+        match key[9] {
+            b'f' => Ok(Decision::FutureRejected { offset }),
+            b'a' => {
+                let w: [u8; 8] = value.try_into().map_err(|_| corrupt("advance without an 8-byte watermark"))?;
+                Ok(Decision::Advance { after_offset: offset, watermark: i64::from_be_bytes(w) })
+            }
+            _ => Err(corrupt("unknown decision kind")),
+        }
+    }
 }

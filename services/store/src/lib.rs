@@ -13,7 +13,8 @@
 //! | `e` | event-id digest (16 bytes) | event time: duplicate detection |
 //! | `f` | event time + digest | empty: age index of `e` for pruning |
 //! | `o` | source name | input offset (8 bytes) |
-//! | `m` | `clock` / `stats` | the partition's clock and path statistics (formats in `codec.rs`) |
+//! | `m` | `clock` / `stats` / `snapshot` / `source` | the partition's clock, path statistics, active model snapshot and source position (formats in `codec.rs`) |
+//! | `d` | offset + kind | decisions that depended on processing time (`codec::Decision`) |
 //!
 //! Why a write-back cache: one sled write per event is far slower than the
 //! engine (it costs more than all the rest of the work an event needs). [`PartitionStore`] keeps recently
@@ -32,7 +33,7 @@ mod partition;
 
 pub use codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats, Clock,
-    StoredJourney, JOURNEY_FORMAT_VERSION,
+    Decision, StoredJourney, JOURNEY_FORMAT_VERSION,
 };
 pub use partition::PartitionStore;
 
@@ -120,6 +121,42 @@ impl Store {
             .filter_map(|n| String::from_utf8(n.to_vec()).ok())
             .filter_map(|n| n.strip_prefix("p/").map(str::to_string))
             .collect()
+    }
+
+    /// Stores the path statistics a model snapshot was fitted on, under its
+    /// version (kept once; partitions name the snapshot they credit with).
+    pub fn save_snapshot(
+        &self,
+        version: &str,
+        stats: &apportion_engine::datadriven::PathStats,
+    ) -> Result<(), StoreError> {
+        let t = self.db.open_tree("snapshots")?;
+        if !t.contains_key(version.as_bytes())? {
+            t.insert(version.as_bytes(), codec::encode_stats(stats))?;
+        }
+        Ok(())
+    }
+
+    /// The path statistics of a stored snapshot.
+    pub fn snapshot(
+        &self,
+        version: &str,
+        markov_order: usize,
+    ) -> Result<Option<apportion_engine::datadriven::PathStats>, StoreError> {
+        let t = self.db.open_tree("snapshots")?;
+        t.get(version.as_bytes())?.map(|b| codec::decode_stats(&b, markov_order)).transpose()
+    }
+
+    /// Deletes stored snapshots other than `keep`.
+    pub fn prune_snapshots(&self, keep: &[&str]) -> Result<(), StoreError> {
+        let t = self.db.open_tree("snapshots")?;
+        for item in t.iter() {
+            let (k, _) = item?;
+            if !keep.iter().any(|v| v.as_bytes() == &k[..]) {
+                t.remove(k)?;
+            }
+        }
+        Ok(())
     }
 
     /// Drops a partition's state (e.g. after handing it to another instance).

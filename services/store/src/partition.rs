@@ -9,7 +9,7 @@ use apportion_engine::datadriven::PathStats;
 
 use crate::codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats,
-    from_ordered_i64, ordered_i64, Clock,
+    from_ordered_i64, ordered_i64, Clock, Decision,
 };
 use crate::StoreError;
 
@@ -19,8 +19,11 @@ const E: u8 = b'e';
 const F: u8 = b'f';
 const O: u8 = b'o';
 const M: u8 = b'm';
+const D: u8 = b'd';
 const META_CLOCK: &str = "clock";
 const META_STATS: &str = "stats";
+const META_SNAPSHOT: &str = "snapshot";
+const META_SOURCE: &str = "source";
 
 /// One cached user: the encoded journey record (the same bytes sled holds,
 /// so memory is counted exactly and spilling needs no re-encoding).
@@ -254,6 +257,71 @@ impl PartitionStore {
         self.stage_meta(META_STATS, encode_stats(stats));
     }
 
+    /// The model snapshot the partition credits with (its `model_version`),
+    /// if one was committed.
+    pub fn active_snapshot(&self) -> Result<Option<String>, StoreError> {
+        self.meta(META_SNAPSHOT)?
+            .map(|b| {
+                String::from_utf8(b.to_vec())
+                    .map_err(|_| StoreError::Corrupt { prefix: 'm', detail: "snapshot name is not UTF-8".into() })
+            })
+            .transpose()
+    }
+
+    /// Stages the active snapshot to be committed with the next batch.
+    pub fn stage_active_snapshot(&mut self, version: &str) {
+        self.stage_meta(META_SNAPSHOT, version.as_bytes().to_vec());
+    }
+
+    /// The committed source position (opaque to the store: e.g. the
+    /// identity of a followed file), if any.
+    pub fn source_position(&self) -> Result<Option<Vec<u8>>, StoreError> {
+        Ok(self.meta(META_SOURCE)?.map(|b| b.to_vec()))
+    }
+
+    /// Stages the source position to be committed with the next batch.
+    pub fn stage_source_position(&mut self, bytes: Vec<u8>) {
+        self.stage_meta(META_SOURCE, bytes);
+    }
+
+    /// Every recorded decision, in offset order.
+    pub fn decisions(&self) -> Result<Vec<Decision>, StoreError> {
+        let mut out = Vec::new();
+        for item in self.tree.scan_prefix([D]) {
+            let (k, v) = item?;
+            out.push(Decision::decode(&k, &v)?);
+        }
+        Ok(out)
+    }
+
+    /// Records decisions durably at once (before the output that depends on
+    /// them is written anywhere).
+    pub fn record_decisions(&mut self, decisions: &[Decision]) -> Result<(), StoreError> {
+        if decisions.is_empty() {
+            return Ok(());
+        }
+        let mut batch = sled::Batch::default();
+        for d in decisions {
+            batch.insert(d.key(), d.value());
+        }
+        self.tree.apply_batch(batch)?;
+        self.db.flush()?;
+        Ok(())
+    }
+
+    /// Stages the removal of decisions at or before `offset` (their effect
+    /// is in the state committed with that offset).
+    pub fn stage_forget_decisions(&mut self, offset: i64) -> Result<(), StoreError> {
+        let mut end = vec![D];
+        end.extend_from_slice(&ordered_i64(offset));
+        end.push(0xff);
+        for item in self.tree.range(vec![D]..end) {
+            let (k, _) = item?;
+            self.staged.push((k.to_vec(), None));
+        }
+        Ok(())
+    }
+
     /// Adds the writes that persist `key`'s cached state to `batch`, and
     /// marks the entry clean. Returns the change in persisted journeys.
     fn persist_into(&mut self, key: &UserKey, batch: &mut sled::Batch) -> i64 {
@@ -393,6 +461,38 @@ impl PartitionStore {
             // Smaller sled batches keep sled's own memory small.
             self.evict_lru(10_000)?;
             return Ok(true);
+        }
+        Ok(false)
+    }
+}
+
+impl PartitionStore {
+    /// True when some journey has something to do at `watermark` (what
+    /// [`JourneyStore::due`] would return is not empty), without moving the
+    /// store's scan position.
+    pub fn has_due(&self, watermark: i64) -> Result<bool, StoreError> {
+        if self.pending_wake.first().is_some_and(|(w, _)| *w <= watermark) {
+            return Ok(true);
+        }
+        if self.open_journeys == 0 || watermark <= self.scanned_upto {
+            return Ok(false);
+        }
+        let mut start = vec![W];
+        start.extend_from_slice(&ordered_i64(self.scanned_upto.saturating_add(1)));
+        let mut end = vec![W];
+        end.extend_from_slice(&ordered_i64(watermark));
+        end.extend_from_slice(&[0xff; 33]);
+        for item in self.tree.range(start..end) {
+            let (k, _) = item?;
+            let key = UserKey(
+                k[9..41]
+                    .try_into()
+                    .map_err(|_| StoreError::Corrupt { prefix: 'w', detail: "short wake key".into() })?,
+            );
+            // The cache is authoritative for users it holds with changes.
+            if !self.cache.get(&key).is_some_and(|c| c.dirty) {
+                return Ok(true);
+            }
         }
         Ok(false)
     }

@@ -16,7 +16,7 @@ use anyhow::Result;
 use crate::config::Format;
 use crate::pipeline::Pipeline;
 use crate::source::{InMsg, MsgStatus, PartId, Payload, Source};
-use file::Follower;
+use file::{Follower, Identity};
 use http::{IngestReply, IngestRequest, LineError};
 
 struct Waiting {
@@ -32,6 +32,8 @@ pub struct EmbeddedSource {
     file: Option<Follower>,
     http: PartId,
     file_part: PartId,
+    /// The last poll left HTTP requests waiting (a backlog).
+    http_backlog: bool,
 }
 
 impl EmbeddedSource {
@@ -42,19 +44,33 @@ impl EmbeddedSource {
         let committed = pipeline.open_partition(&http, Payload::Event(Format::Json))?;
         let file = match watch_file {
             Some(path) => {
-                let pos = pipeline.open_partition(&file_part, Payload::Event(Format::Json))?.unwrap_or(0).max(0) as u64;
-                Some(Follower::new(path, pos))
+                let offset = pipeline.open_partition(&file_part, Payload::Event(Format::Json))?;
+                let identity = pipeline.source_position(&file_part)?.and_then(|b| Identity::from_bytes(&b));
+                Some(Follower::new(path, offset, identity))
             }
             None => None,
         };
-        Ok(EmbeddedSource { rx, next_seq: committed.map_or(0, |c| c + 1), waiting: Vec::new(), file, http, file_part })
+        Ok(EmbeddedSource {
+            rx,
+            next_seq: committed.map_or(0, |c| c + 1),
+            waiting: Vec::new(),
+            file,
+            http,
+            file_part,
+            http_backlog: false,
+        })
     }
 }
 
 impl Source for EmbeddedSource {
-    fn poll(&mut self, _pipeline: &mut Pipeline, max: usize, wait: Duration) -> Result<Vec<(PartId, Vec<InMsg>)>> {
+    fn poll(&mut self, pipeline: &mut Pipeline, max: usize, wait: Duration) -> Result<Vec<(PartId, Vec<InMsg>)>> {
         let mut http = Vec::new();
         let file = self.file.as_mut().map(|f| f.read(max)).unwrap_or_default();
+        if let Some(id) = self.file.as_ref().and_then(|f| f.identity()) {
+            if !file.is_empty() {
+                pipeline.set_source_position(&self.file_part, id.to_bytes());
+            }
+        }
         let first = if file.is_empty() {
             self.rx.recv_timeout(wait)
         } else {
@@ -63,9 +79,10 @@ impl Source for EmbeddedSource {
         let mut next = first.ok();
         while let Some(req) = next.take() {
             let now = Instant::now();
+            let wall = crate::pipeline::now_ms();
             let mut lines = Vec::with_capacity(req.lines.len());
             for (n, l) in req.lines {
-                http.push(InMsg { offset: self.next_seq, payload: l, arrived: now });
+                http.push(InMsg { offset: self.next_seq, payload: l, arrived: now, timestamp_ms: wall });
                 self.next_seq += 1;
                 lines.push(n);
             }
@@ -74,6 +91,7 @@ impl Source for EmbeddedSource {
                 next = self.rx.try_recv().ok();
             }
         }
+        self.http_backlog = http.len() >= max;
         let mut out = Vec::new();
         if !http.is_empty() {
             out.push((self.http.clone(), http));
@@ -107,5 +125,15 @@ impl Source for EmbeddedSource {
 
     fn ready(&self) -> bool {
         true
+    }
+
+    fn caught_up(&self, part: &PartId) -> bool {
+        if *part == self.http {
+            !self.http_backlog
+        } else if *part == self.file_part {
+            self.file.as_ref().is_some_and(|f| f.caught_up())
+        } else {
+            false
+        }
     }
 }

@@ -12,7 +12,7 @@ use super::consumer_config;
 use super::repartition::Repartitioner;
 use crate::config::{Config, Format};
 use crate::metrics::Metrics;
-use crate::pipeline::Pipeline;
+use crate::pipeline::{now_ms, Pipeline};
 use crate::source::ErrorLog;
 use crate::source::{InMsg, MsgStatus, PartId, Payload, Source};
 
@@ -26,6 +26,10 @@ pub struct KafkaSource {
     metrics: Metrics,
     lag: Option<u64>,
     errors: ErrorLog,
+    /// When each partition's position was last seen at its end.
+    caught_up_at: BTreeMap<PartId, Instant>,
+    /// When each partition last handed over a message.
+    last_message: BTreeMap<PartId, Instant>,
 }
 
 impl KafkaSource {
@@ -53,6 +57,8 @@ impl KafkaSource {
             repartition,
             lag: None,
             errors: ErrorLog::default(),
+            caught_up_at: BTreeMap::new(),
+            last_message: BTreeMap::new(),
             metrics: metrics.clone(),
         })
     }
@@ -88,15 +94,23 @@ impl Source for KafkaSource {
             match self.consumer.poll(if n == 0 { left } else { Duration::ZERO }) {
                 Some(Ok(m)) => {
                     let id = PartId::new(m.topic(), m.partition());
+                    // Processing time of the message: its record timestamp
+                    // (in the log, so a redelivery sees the same one).
+                    let timestamp_ms = m.timestamp().to_millis().unwrap_or_else(now_ms);
+                    self.last_message.insert(id.clone(), Instant::now());
                     got.entry(id).or_default().push(InMsg {
                         offset: m.offset(),
                         payload: m.payload().unwrap_or_default().to_vec(),
                         arrived: Instant::now(),
+                        timestamp_ms,
                     });
                     n += 1;
                 }
                 Some(Err(e)) => {
                     self.errors.report("Kafka consumer error", &e);
+                    // The broker may be away: no partition counts as caught
+                    // up until a new lag reading says so.
+                    self.caught_up_at.clear();
                     break;
                 }
                 None => {
@@ -129,10 +143,16 @@ impl Source for KafkaSource {
     }
 
     fn update_lag(&mut self, metrics: &Metrics) {
-        let Ok(positions) = self.consumer.position() else { return };
+        let Ok(positions) = self.consumer.position() else {
+            self.caught_up_at.clear();
+            return;
+        };
         let mut total = 0u64;
+        let now = Instant::now();
         for e in positions.elements() {
+            let id = PartId::new(e.topic(), e.partition());
             let Ok((_, high)) = self.consumer.fetch_watermarks(e.topic(), e.partition(), Duration::from_secs(1)) else {
+                self.caught_up_at.remove(&id);
                 continue;
             };
             let pos = match e.offset() {
@@ -141,6 +161,11 @@ impl Source for KafkaSource {
             };
             let lag = (high - pos).max(0) as u64;
             total += lag;
+            if lag == 0 {
+                self.caught_up_at.insert(id, now);
+            } else {
+                self.caught_up_at.remove(&id);
+            }
             metrics.consumer_lag.with_label_values(&[e.topic(), &e.partition().to_string()]).set(lag as i64);
         }
         self.lag = Some(total);
@@ -152,6 +177,16 @@ impl Source for KafkaSource {
 
     fn ready(&self) -> bool {
         !self.assigned.is_empty()
+    }
+
+    /// Caught up: the last lag reading found the partition's position at
+    /// its end, and no message came since.
+    fn caught_up(&self, part: &PartId) -> bool {
+        match (self.caught_up_at.get(part), self.last_message.get(part)) {
+            (Some(at), Some(msg)) => at > msg,
+            (Some(_), None) => true,
+            (None, _) => false,
+        }
     }
 
     fn close(&mut self, _pipeline: &mut Pipeline) -> Result<()> {

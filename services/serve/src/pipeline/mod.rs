@@ -35,7 +35,8 @@ use crate::config::Config;
 use crate::metrics::Metrics;
 use crate::refit::Refit;
 use crate::source::{InMsg, MsgStatus, PartId, Payload};
-use partition::PartState;
+use apportion_store::Decision;
+use partition::{Idle, PartState};
 use policy::Lateness;
 
 /// Processing time, epoch ms.
@@ -76,9 +77,9 @@ impl Pipeline {
         &self.cfg
     }
 
-    /// Current models.
+    /// The models of the current snapshot.
     pub fn models(&self) -> &[Box<dyn Model>] {
-        self.refit.models()
+        self.refit.current().models()
     }
 
     /// The current snapshot as JSON for the read-only model endpoint: every
@@ -86,7 +87,7 @@ impl Pipeline {
     /// weights (Shapley value per channel in the game over all channels,
     /// Markov conversion probability and removal effect per channel).
     pub fn models_json(&self) -> serde_json::Value {
-        self.refit.json().clone()
+        self.refit.current().json().clone()
     }
 
     /// Opens a partition's state (on assignment); returns its committed offset.
@@ -94,7 +95,10 @@ impl Pipeline {
         if let Some(p) = self.parts.get(id) {
             return Ok(p.committed);
         }
-        let part = PartState::open(&self.store, id, payload, self.cfg.cache_bytes, self.cfg.markov_order)?;
+        let (store, refit) = (&self.store, &mut self.refit);
+        let part = PartState::open(store, id, payload, self.cfg.cache_bytes, self.cfg.markov_order, |v| {
+            refit.snapshot_for(store, v)
+        })?;
         let committed = part.committed;
         self.parts.insert(id.clone(), part);
         Ok(committed)
@@ -115,97 +119,198 @@ impl Pipeline {
         self.parts.get(id).map(|p| p.clock.watermark)
     }
 
+    /// Applies the recorded advances of a partition that are due after the
+    /// message at `offset` (every recorded advance for `None`: those a
+    /// reopened partition committed before it made them durable).
+    fn replay_advances(&mut self, id: &PartId, offset: Option<i64>, out: &mut OutputBatch) -> Result<()> {
+        let part = self.parts.get_mut(id).expect("open partition");
+        let upto = match offset.or(part.committed) {
+            Some(o) => o,
+            None => return Ok(()),
+        };
+        let mut effects = Vec::new();
+        for w in part.decisions.take_advances_upto(upto) {
+            if w > part.clock.watermark {
+                part.clock.watermark = w;
+                effects.extend(self.processor.advance(&mut part.store, w)?);
+            }
+        }
+        if !effects.is_empty() {
+            self.emit(id, &effects, out);
+        }
+        Ok(())
+    }
+
     /// Applies one batch of a partition's messages; appends output to `out`.
+    ///
+    /// Every message is judged and applied against the watermark as it is
+    /// after the messages before it, and the watermark moves after each
+    /// message: the output is the same however the messages are cut into
+    /// batches (docs/contract.md, "Determinism").
     pub fn process(&mut self, id: &PartId, msgs: &[InMsg], out: &mut OutputBatch) -> Result<Vec<MsgStatus>> {
         let payload = self.parts.get(id).context("partition not open")?.payload;
+        // Advances recorded at or before the committed offset (a reopened
+        // partition) come before any new message.
+        self.replay_advances(id, None, out)?;
         let mut statuses = Vec::with_capacity(msgs.len());
-        let mut effects: Vec<Effect> = Vec::new();
         let received_at = now_ms();
+        let skew = self.cfg.max_future_skew.ms();
+        let lateness = self.cfg.allowed_lateness.ms();
         for m in msgs {
-            let decoded = decode::decode(payload, &m.payload, self.cfg.max_event_bytes);
             let part = self.parts.get_mut(id).expect("checked above");
             if part.committed.is_some_and(|c| m.offset <= c) {
                 statuses.push(MsgStatus::AlreadyApplied);
                 continue;
             }
             part.pending_offset = Some(part.pending_offset.map_or(m.offset, |o| o.max(m.offset)));
-            part.last_input = m.arrived;
-            let (mut ev, key) = match decoded {
-                Ok(v) => v,
-                Err(r) => {
-                    let (kind, event_id) = decode::sniff(payload, &m.payload);
-                    self.metrics.events_consumed.with_label_values(&[kind, "rejected"]).inc();
-                    self.metrics.events_rejected.with_label_values(&[r.reason.code()]).inc();
-                    out.dead_letters.push(emit::dead_letter(id, m.offset, &r, event_id, received_at));
-                    statuses.push(MsgStatus::Rejected(r));
-                    continue;
-                }
-            };
-            let kind = ev.kind.as_str();
-            let key = key.unwrap_or_else(|| self.pseudo.key_for(&ev.user_id));
-            ev.user_id.clear();
-            if ev.kind != EventKind::Erase && !part.store.mark_seen(event_id_digest(&ev.event_id), ev.timestamp_ms)? {
-                self.metrics.events_consumed.with_label_values(&[kind, "duplicate"]).inc();
-                statuses.push(MsgStatus::Duplicate);
-                continue;
-            }
-            let mut outcome = "accepted";
-            match policy::judge(ev.timestamp_ms, part.clock.watermark, self.cfg.late_policy) {
-                Lateness::OnTime => {}
-                Lateness::DeadLetter => {
-                    let r = Rejection::new(
-                        RejectReason::Late,
-                        format!(
-                            "event time {} is before the partition watermark {}",
-                            format_ms(ev.timestamp_ms),
-                            format_ms(part.clock.watermark)
-                        ),
-                    );
-                    self.metrics.events_consumed.with_label_values(&[kind, "late_dropped"]).inc();
-                    self.metrics.events_late.with_label_values(&["dropped"]).inc();
-                    self.metrics.events_rejected.with_label_values(&["late"]).inc();
-                    out.dead_letters.push(emit::dead_letter(id, m.offset, &r, Some(ev.event_id.clone()), received_at));
-                    statuses.push(MsgStatus::Rejected(r));
-                    continue;
-                }
-                Lateness::Apply => {
-                    self.metrics.events_late.with_label_values(&["applied"]).inc();
-                    outcome = "late_applied";
-                }
-            }
-            self.metrics.events_consumed.with_label_values(&[kind, outcome]).inc();
-            if ev.kind == EventKind::Conversion {
-                self.arrivals.insert(ev.event_id.clone(), m.arrived);
-            }
-            part.clock.max_ts = part.clock.max_ts.max(ev.timestamp_ms);
-            let seq = m.offset.max(0) as u64;
-            let wm = part.clock.watermark;
-            effects.extend(self.processor.apply(&mut part.store, JourneyEvent::from_event(ev, key, seq), wm)?);
-            statuses.push(MsgStatus::Accepted);
+            part.idle = None;
+            let status = self.process_one(id, payload, m, received_at, skew, lateness, out)?;
+            statuses.push(status);
+            self.replay_advances(id, Some(m.offset), out)?;
         }
-        // Move the watermark: max event time - allowed lateness.
         let part = self.parts.get_mut(id).expect("checked above");
-        let wm = policy::watermark_after_input(part.clock.watermark, part.clock.max_ts, self.cfg.allowed_lateness.ms());
+        if part.pending_offset.is_some() {
+            part.idle = None;
+        }
+        Ok(statuses)
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn process_one(
+        &mut self,
+        id: &PartId,
+        payload: Payload,
+        m: &InMsg,
+        received_at: i64,
+        skew: i64,
+        lateness: i64,
+        out: &mut OutputBatch,
+    ) -> Result<MsgStatus> {
+        let decoded = decode::decode(payload, &m.payload, self.cfg.max_event_bytes);
+        let (mut ev, key) = match decoded {
+            Ok(v) => v,
+            Err(r) => {
+                let (kind, event_id) = decode::sniff(payload, &m.payload);
+                self.metrics.events_consumed.with_label_values(&[kind, "rejected"]).inc();
+                self.metrics.events_rejected.with_label_values(&[r.reason.code()]).inc();
+                out.dead_letters.push(emit::dead_letter(id, m.offset, &r, event_id, received_at));
+                return Ok(MsgStatus::Rejected(r));
+            }
+        };
+        let kind = ev.kind.as_str();
+        let part = self.parts.get_mut(id).expect("open partition");
+        // Future-dated: judged against the message's processing time, or as
+        // recorded when the same message came before.
+        let recorded = part.decisions.future.contains(&m.offset);
+        if recorded || policy::too_far_ahead(ev.timestamp_ms, m.timestamp_ms, skew) {
+            if !recorded {
+                part.decisions.record(Decision::FutureRejected { offset: m.offset });
+            }
+            let r = Rejection::new(
+                RejectReason::FutureTimestamp,
+                format!(
+                    "event time {} is more than max_future_skew ({}) ahead of processing time",
+                    format_ms(ev.timestamp_ms),
+                    self.cfg.max_future_skew,
+                ),
+            );
+            self.metrics.events_consumed.with_label_values(&[kind, "rejected"]).inc();
+            self.metrics.events_rejected.with_label_values(&[r.reason.code()]).inc();
+            out.dead_letters.push(emit::dead_letter(id, m.offset, &r, Some(ev.event_id.clone()), received_at));
+            return Ok(MsgStatus::Rejected(r));
+        }
+        let key = key.unwrap_or_else(|| self.pseudo.key_for(&ev.user_id));
+        ev.user_id.clear();
+        if ev.kind != EventKind::Erase && !part.store.mark_seen(event_id_digest(&ev.event_id), ev.timestamp_ms)? {
+            self.metrics.events_consumed.with_label_values(&[kind, "duplicate"]).inc();
+            return Ok(MsgStatus::Duplicate);
+        }
+        let mut outcome = "accepted";
+        match policy::judge(ev.timestamp_ms, part.clock.watermark, self.cfg.late_policy) {
+            Lateness::OnTime => {}
+            Lateness::DeadLetter => {
+                let r = Rejection::new(
+                    RejectReason::Late,
+                    format!(
+                        "event time {} is before the partition watermark {}",
+                        format_ms(ev.timestamp_ms),
+                        format_ms(part.clock.watermark)
+                    ),
+                );
+                self.metrics.events_consumed.with_label_values(&[kind, "late_dropped"]).inc();
+                self.metrics.events_late.with_label_values(&["dropped"]).inc();
+                self.metrics.events_rejected.with_label_values(&["late"]).inc();
+                out.dead_letters.push(emit::dead_letter(id, m.offset, &r, Some(ev.event_id.clone()), received_at));
+                return Ok(MsgStatus::Rejected(r));
+            }
+            Lateness::Apply => {
+                self.metrics.events_late.with_label_values(&["applied"]).inc();
+                outcome = "late_applied";
+            }
+        }
+        self.metrics.events_consumed.with_label_values(&[kind, outcome]).inc();
+        if ev.kind == EventKind::Conversion {
+            self.arrivals.insert(ev.event_id.clone(), m.arrived);
+        }
+        part.clock.max_ts = part.clock.max_ts.max(ev.timestamp_ms);
+        let seq = m.offset.max(0) as u64;
+        let wm = part.clock.watermark;
+        let mut effects = self.processor.apply(&mut part.store, JourneyEvent::from_event(ev, key, seq), wm)?;
+        // Move the watermark: largest event time - allowed lateness.
+        let wm = policy::watermark_after_input(part.clock.watermark, part.clock.max_ts, lateness);
         if wm > part.clock.watermark {
             part.clock.watermark = wm;
             effects.extend(self.processor.advance(&mut part.store, wm)?);
         }
-        part.wm_at_input = part.clock.watermark;
         self.emit(id, &effects, out);
-        Ok(statuses)
+        Ok(MsgStatus::Accepted)
     }
 
-    /// Advances idle partitions by processing time (after `idle_timeout`
-    /// without input, event time is assumed to move with the clock).
+    /// Tells the pipeline whether a partition has read all of its input
+    /// (see [`crate::source::Source::caught_up`]); a partition starts its
+    /// idle clock when it becomes caught up.
+    pub fn set_caught_up(&mut self, id: &PartId, caught_up: bool, now: Instant) {
+        if let Some(p) = self.parts.get_mut(id) {
+            match (caught_up, p.idle) {
+                (true, None) => p.idle = Some(Idle { since: now, watermark: p.clock.watermark }),
+                (false, _) => p.idle = None,
+                (true, Some(_)) => {}
+            }
+        }
+    }
+
+    /// A stall (a sink that held a batch, a broker away): every idle clock
+    /// starts again, so that time spent stalled never counts as quiet.
+    pub fn restart_idle_clocks(&mut self, now: Instant) {
+        for p in self.parts.values_mut() {
+            if p.idle.is_some() {
+                p.idle = Some(Idle { since: now, watermark: p.clock.watermark });
+            }
+        }
+    }
+
+    /// Advances idle partitions by processing time: a partition caught up
+    /// for `idle_timeout` moves its watermark on by the time passed since it
+    /// caught up, when that makes some journey close. The advance is
+    /// recorded with the partition's last offset (durable before the output
+    /// is written, see [`Pipeline::persist_decisions`]), so a redelivery
+    /// makes it at the same point.
     pub fn tick(&mut self, now: Instant, out: &mut OutputBatch) -> Result<()> {
         let idle = self.cfg.idle_timeout.ms().max(0);
         let ids: Vec<PartId> = self.parts.keys().cloned().collect();
         for id in ids {
+            self.replay_advances(&id, None, out)?;
             let part = self.parts.get_mut(&id).expect("listed");
-            let quiet = now.saturating_duration_since(part.last_input).as_millis() as i64;
-            let Some(wm) = policy::idle_watermark(part.clock.watermark, part.wm_at_input, quiet, idle) else {
+            let Some(state) = part.idle else { continue };
+            let quiet = now.saturating_duration_since(state.since).as_millis() as i64;
+            let Some(wm) = policy::idle_watermark(part.clock.watermark, state.watermark, quiet, idle) else {
                 continue;
             };
+            if !part.store.has_due(wm)? {
+                continue;
+            }
+            let Some(after) = part.last_offset() else { continue };
+            part.decisions.record(Decision::Advance { after_offset: after, watermark: wm });
             part.clock.watermark = wm;
             let effects = self.processor.advance(&mut part.store, wm)?;
             if part.pending_offset.is_none() {
@@ -218,19 +323,61 @@ impl Pipeline {
 
     fn emit(&mut self, id: &PartId, effects: &[Effect], out: &mut OutputBatch) {
         let part = self.parts.get_mut(id).expect("open partition");
-        if emit::emit(effects, self.refit.models(), &mut part.stats, &mut self.arrivals, &self.metrics, out) {
+        let models = part.snapshot.models();
+        if emit::emit(effects, models, &mut part.stats, &mut self.arrivals, &self.metrics, out) {
             part.stats_dirty = true;
         }
     }
 
-    /// Commits every partition: state, statistics, clock and offsets,
-    /// each partition in one atomic batch. Call after the sinks have the
-    /// batch's output.
+    /// Makes every decision recorded in this batch durable. Call before the
+    /// batch's output is written anywhere.
+    pub fn persist_decisions(&mut self) -> Result<()> {
+        for p in self.parts.values_mut() {
+            p.persist_decisions()?;
+        }
+        Ok(())
+    }
+
+    /// Refits the data-driven models when `refit_interval` has passed, on
+    /// the statistics of every open partition; each partition switches to
+    /// the new snapshot at its next commit. Returns true when a model
+    /// version changed.
+    pub fn maybe_refit(&mut self) -> Result<bool> {
+        if !self.refit.due() {
+            return Ok(false);
+        }
+        self.refit_now()
+    }
+
+    /// Refits now (see [`Pipeline::maybe_refit`]).
+    pub fn refit_now(&mut self) -> Result<bool> {
+        let mut all = PathStats::new(self.cfg.markov_order);
+        for p in self.parts.values() {
+            all.try_merge(&p.stats).expect("partition statistics share the configured markov_order");
+        }
+        match self.refit.refit(&self.store, &all)? {
+            Some(s) => {
+                for p in self.parts.values_mut() {
+                    p.adopt = Some(s.clone());
+                }
+                Ok(true)
+            }
+            None => Ok(false),
+        }
+    }
+
+    /// Commits every partition: state, statistics, clock, offset and model
+    /// snapshot, each partition in one atomic batch. Call after the sinks
+    /// have the batch's output.
     pub fn commit(&mut self) -> Result<()> {
         let horizon = self.cfg.dedupe_horizon.ms();
         for (id, p) in self.parts.iter_mut() {
             p.commit(id, horizon)?;
         }
+        let in_use: Vec<&str> = self.parts.values().filter_map(|p| p.snapshot.version()).collect();
+        let in_use: Vec<String> = in_use.into_iter().map(str::to_string).collect();
+        let refs: Vec<&str> = in_use.iter().map(String::as_str).collect();
+        self.refit.prune(&self.store, &refs)?;
         self.update_gauges();
         Ok(())
     }
@@ -247,29 +394,42 @@ impl Pipeline {
         Ok(())
     }
 
+    /// The committed source position of a partition (opaque to the
+    /// pipeline: e.g. the identity of a followed file).
+    pub fn source_position(&self, id: &PartId) -> Result<Option<Vec<u8>>> {
+        Ok(self.parts.get(id).context("partition not open")?.store.source_position()?)
+    }
+
+    /// A source position to commit with the partition's next offset.
+    pub fn set_source_position(&mut self, id: &PartId, bytes: Vec<u8>) {
+        if let Some(p) = self.parts.get_mut(id) {
+            p.source_position = Some(bytes);
+        }
+    }
+
+    /// The open partitions.
+    pub fn open_partitions(&self) -> Vec<PartId> {
+        self.parts.keys().cloned().collect()
+    }
+
     /// Committed offsets per partition.
     pub fn committed_offsets(&self) -> Vec<(PartId, i64)> {
         self.parts.iter().filter_map(|(k, v)| v.committed.map(|o| (k.clone(), o))).collect()
     }
 
-    /// Refits the data-driven models when `refit_interval` has passed.
-    /// Returns true when a model version changed.
-    pub fn maybe_refit(&mut self) -> bool {
-        if self.refit.due() {
-            self.refit_now()
-        } else {
-            false
+    /// Resets a partition's watermark (operators, after a bad event moved it
+    /// too far; see `apportion state`): the clock is set to `to` and the
+    /// recorded advances are forgotten. Returns the previous watermark.
+    pub fn reset_watermark(&mut self, id: &PartId, to: i64) -> Result<i64> {
+        let part = self.parts.get_mut(id).context("partition not open")?;
+        let before = part.clock.watermark;
+        part.clock.watermark = to;
+        part.clock.max_ts = to.saturating_add(self.cfg.allowed_lateness.ms());
+        part.decisions.advances.clear();
+        if part.pending_offset.is_none() {
+            part.pending_offset = part.committed;
         }
-    }
-
-    /// Refits now from the statistics of every open partition. Returns true
-    /// when a model version changed.
-    pub fn refit_now(&mut self) -> bool {
-        let mut all = PathStats::new(self.cfg.markov_order);
-        for p in self.parts.values() {
-            all.try_merge(&p.stats).expect("partition statistics share the configured markov_order");
-        }
-        self.refit.refit(&all)
+        Ok(before)
     }
 
     /// Updates store gauges.

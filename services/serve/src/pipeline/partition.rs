@@ -1,13 +1,77 @@
-//! One open input partition: its store, clock, path statistics and offsets,
-//! and how they are opened from and committed to the store.
+//! One open input partition: its store, clock, path statistics, offsets,
+//! recorded decisions and model snapshot, and how they are opened from and
+//! committed to the store.
 
+use std::collections::{BTreeMap, BTreeSet};
+use std::sync::Arc;
 use std::time::Instant;
 
 use anyhow::{Context, Result};
 use apportion_engine::datadriven::PathStats;
-use apportion_store::{Clock, PartitionStore, Store};
+use apportion_store::{Clock, Decision, PartitionStore, Store};
 
+use crate::refit::Snapshot;
 use crate::source::{PartId, Payload};
+
+/// Decisions that depended on processing time, by the offset they apply at
+/// (see [`Decision`]): replayed as they were when the same messages come
+/// again.
+#[derive(Debug, Default)]
+pub struct Decisions {
+    /// Offsets of events rejected as future-dated.
+    pub future: BTreeSet<i64>,
+    /// Watermark advances by processing time, after the message at the key.
+    pub advances: BTreeMap<i64, i64>,
+    /// Recorded in memory, not yet durable.
+    pub unsaved: Vec<Decision>,
+}
+
+impl Decisions {
+    fn load(list: Vec<Decision>) -> Self {
+        let mut d = Decisions::default();
+        for x in list {
+            d.add(x);
+        }
+        d
+    }
+
+    fn add(&mut self, x: Decision) {
+        match x {
+            Decision::FutureRejected { offset } => {
+                self.future.insert(offset);
+            }
+            Decision::Advance { after_offset, watermark } => {
+                let w = self.advances.entry(after_offset).or_insert(watermark);
+                *w = (*w).max(watermark);
+            }
+        }
+    }
+
+    /// Records a new decision (durable at the next
+    /// [`PartState::persist_decisions`]).
+    pub fn record(&mut self, x: Decision) {
+        self.add(x);
+        self.unsaved.push(x);
+    }
+
+    /// Removes and returns the advances at or before `offset`, in order.
+    pub fn take_advances_upto(&mut self, offset: i64) -> Vec<i64> {
+        let later = self.advances.split_off(&(offset.saturating_add(1)));
+        let due = std::mem::replace(&mut self.advances, later);
+        due.into_values().collect()
+    }
+}
+
+/// A caught-up partition's idle clock: since when it has had nothing to
+/// read, and its watermark then.
+#[derive(Debug, Clone, Copy)]
+pub struct Idle {
+    /// When the partition was last seen with input still to read (or a
+    /// stall ended).
+    pub since: Instant,
+    /// The watermark at that moment.
+    pub watermark: i64,
+}
 
 /// The state of one open partition.
 pub struct PartState {
@@ -21,53 +85,104 @@ pub struct PartState {
     pub stats: PathStats,
     /// Statistics changed since the last commit.
     pub stats_dirty: bool,
-    /// When the last message arrived (idle detection).
-    pub last_input: Instant,
-    /// The watermark right after the last input.
-    pub wm_at_input: i64,
     /// The committed input offset.
     pub committed: Option<i64>,
     /// Offset of the last message applied in the open batch.
     pub pending_offset: Option<i64>,
     /// Batches committed since opening.
     pub batches: u64,
+    /// Decisions recorded for offsets not committed yet.
+    pub decisions: Decisions,
+    /// Set while the partition is caught up with its input.
+    pub idle: Option<Idle>,
+    /// The models this partition credits with.
+    pub snapshot: Arc<Snapshot>,
+    /// A snapshot to switch to at the next commit.
+    pub adopt: Option<Arc<Snapshot>>,
+    /// A source position to commit with the next offset.
+    pub source_position: Option<Vec<u8>>,
 }
 
 impl PartState {
-    /// Opens the partition's committed state.
-    pub fn open(store: &Store, id: &PartId, payload: Payload, cache_bytes: usize, markov_order: usize) -> Result<Self> {
+    /// Opens the partition's committed state; `snapshot` is the snapshot it
+    /// committed with (or the current one for a new partition).
+    pub fn open(
+        store: &Store,
+        id: &PartId,
+        payload: Payload,
+        cache_bytes: usize,
+        markov_order: usize,
+        snapshot: impl FnOnce(Option<&str>) -> Result<Arc<Snapshot>>,
+    ) -> Result<Self> {
         let name = id.store_name();
         let part = store.partition(&name, cache_bytes)?;
         let committed = part.offset(&name).with_context(|| format!("reading the offset of partition {name}"))?;
         let clock = part.clock().with_context(|| format!("reading the clock of partition {name}"))?;
         let stats =
             part.stats(markov_order).with_context(|| format!("reading the path statistics of partition {name}"))?;
+        let decisions =
+            Decisions::load(part.decisions().with_context(|| format!("reading the decisions of partition {name}"))?);
+        let active = part.active_snapshot().with_context(|| format!("reading the snapshot of partition {name}"))?;
+        let snapshot = snapshot(active.as_deref())?;
         Ok(PartState {
             store: part,
             payload,
             clock,
             stats,
             stats_dirty: false,
-            last_input: Instant::now(),
-            wm_at_input: clock.watermark,
             committed,
             pending_offset: None,
             batches: 0,
+            decisions,
+            idle: None,
+            snapshot,
+            adopt: None,
+            source_position: None,
         })
     }
 
-    /// Commits state, statistics, clock and the offset in one atomic batch;
-    /// every 100 batches forgets event ids older than `dedupe_horizon_ms`
-    /// before the watermark.
+    /// The offset of the last message applied (in the open batch, else the
+    /// committed one).
+    pub fn last_offset(&self) -> Option<i64> {
+        self.pending_offset.or(self.committed)
+    }
+
+    /// Makes the recorded decisions durable.
+    pub fn persist_decisions(&mut self) -> Result<()> {
+        if !self.decisions.unsaved.is_empty() {
+            self.store.record_decisions(&self.decisions.unsaved)?;
+            self.decisions.unsaved.clear();
+        }
+        Ok(())
+    }
+
+    /// Commits state, statistics, clock, the offset and the active snapshot
+    /// in one atomic batch, forgetting decisions the committed state already
+    /// reflects; every 100 batches forgets event ids older than
+    /// `dedupe_horizon_ms` before the watermark.
     pub fn commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<()> {
+        self.persist_decisions()?;
         if let Some(o) = self.pending_offset.take() {
             self.store.stage_offset(&id.store_name(), o);
             self.committed = Some(o);
+        }
+        if let Some(c) = self.committed {
+            self.store.stage_forget_decisions(c)?;
+            self.decisions.future = self.decisions.future.split_off(&(c.saturating_add(1)));
         }
         self.store.stage_clock(&self.clock);
         if self.stats_dirty {
             self.store.stage_stats(&self.stats);
             self.stats_dirty = false;
+        }
+        if let Some(s) = self.adopt.take() {
+            self.snapshot = s;
+        }
+        if let Some(v) = self.snapshot.version() {
+            self.store.stage_active_snapshot(v);
+        }
+        if let Some(b) = self.source_position.take() {
+            self.store.stage_source_position(b);
         }
         self.store.commit(true)?;
         self.batches += 1;

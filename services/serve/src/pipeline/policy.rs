@@ -27,6 +27,12 @@ pub fn judge(ts: i64, watermark: i64, policy: LatePolicy) -> Lateness {
     }
 }
 
+/// True when an event at `ts` is more than `skew_ms` ahead of the
+/// processing time `now_ms` of its message.
+pub fn too_far_ahead(ts: i64, now_ms: i64, skew_ms: i64) -> bool {
+    ts > now_ms.saturating_add(skew_ms)
+}
+
 /// The watermark of a partition after its input: the largest event time
 /// seen minus the allowed lateness, never moving back.
 pub fn watermark_after_input(current: i64, max_ts: i64, allowed_lateness_ms: i64) -> i64 {
@@ -36,9 +42,10 @@ pub fn watermark_after_input(current: i64, max_ts: i64, allowed_lateness_ms: i64
     current.max(max_ts.saturating_sub(allowed_lateness_ms))
 }
 
-/// The watermark of an idle partition: after `idle_timeout_ms` of quiet
-/// (`quiet_ms`), event time is assumed to move with processing time from
-/// the watermark the partition had at its last input. `None`: no advance.
+/// The watermark of an idle partition: after `idle_timeout_ms` caught up
+/// with its input (`quiet_ms`), event time is assumed to move with
+/// processing time from the watermark the partition had when it caught up.
+/// `None`: no advance.
 pub fn idle_watermark(current: i64, at_last_input: i64, quiet_ms: i64, idle_timeout_ms: i64) -> Option<i64> {
     if current == i64::MIN || quiet_ms < idle_timeout_ms {
         return None;
@@ -59,6 +66,13 @@ mod tests {
         assert_eq!(judge(5, 5, LatePolicy::DeadLetter), Lateness::OnTime);
         assert_eq!(judge(4, 5, LatePolicy::DeadLetter), Lateness::DeadLetter);
         assert_eq!(judge(4, 5, LatePolicy::Apply), Lateness::Apply);
+    }
+
+    #[test]
+    fn future_skew() {
+        assert!(!too_far_ahead(1_000 + 900_000, 1_000, 900_000));
+        assert!(too_far_ahead(1_000 + 900_001, 1_000, 900_000));
+        assert!(!too_far_ahead(i64::MIN, 0, 900_000));
     }
 
     #[test]
