@@ -151,13 +151,15 @@ fn repartition_gives_the_same_credit() {
     let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
     s.wait_ready(Duration::from_secs(60));
     wait_accepted(&s, events.len() as u64, Duration::from_secs(120));
-    // Then move every watermark past the scenario with far-future touches of
-    // many other users (their keys land on every repartition partition).
+    // Then move every watermark past the scenario with touches of many
+    // other users at the present time (their keys land on every repartition
+    // partition; the present, because events ahead of it are rejected).
+    let present =
+        std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64 - 60_000;
     let sentinels: Vec<_> = (0..64)
         .map(|k| {
             let line = format!(
-                r#"{{"type":"touch","event_id":"sentinel-{k}","user_id":"sentinel-{k}","timestamp":{},"channel":"none"}}"#,
-                START + 400 * 86_400_000
+                r#"{{"type":"touch","event_id":"sentinel-{k}","user_id":"sentinel-{k}","timestamp":{present},"channel":"none"}}"#,
             );
             (Some(format!("s{k}")), line.into_bytes(), Some(k % 3))
         })
@@ -186,7 +188,10 @@ fn wait_accepted(s: &Serve, n: u64, timeout: Duration) {
         }
         std::thread::sleep(Duration::from_millis(300));
     }
-    panic!("only {seen} of {n} events accepted: {}", std::fs::read_to_string(&s.log).unwrap());
+    let metrics = s.get("/metrics").map(|m| m.1).unwrap_or_default();
+    let consumed: Vec<&str> =
+        metrics.lines().filter(|l| l.starts_with("apportion_events_consumed_total{") && !l.ends_with(" 0")).collect();
+    panic!("only {seen} of {n} events accepted ({consumed:?}): {}", std::fs::read_to_string(&s.log).unwrap());
 }
 
 /// Bad messages land in the dead-letter topic with their reason; the good
@@ -407,5 +412,46 @@ fn repartition_dead_letters_use_the_output_format() {
         metrics.contains("apportion_events_consumed_total{outcome=\"rejected\",type=\"conversion\"} 1"),
         "the rejected event is counted under its kind: {metrics}"
     );
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
+
+/// Repartitioned input where one input partition is ten minutes behind the
+/// other: the repartition stage carries each input partition's progress, and
+/// a repartitioned partition's watermark follows the slowest input partition
+/// that still has a backlog, so the lagging partition's events are on time
+/// (none in the dead-letter topic) and the credit equals replay's.
+#[test]
+fn repartition_keeps_a_lagging_input_partition_on_time() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("lag");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events")], 2, &[]);
+    create_topics(&brokers, &[&format!("{prefix}-repart")], 2, &[]);
+    // Two groups of users; the second group's events are ten minutes older.
+    let mut fast = scenario(120, 51, START);
+    // (User and event ids carry the seed, so the groups do not overlap.)
+    let mut slow = scenario(120, 52, START - 10 * 60_000);
+    fast.sort_by_key(|e| e.ts);
+    slow.sort_by_key(|e| e.ts);
+    let mut all: Vec<GenEvent> = fast.iter().chain(slow.iter()).cloned().collect();
+    all.sort_by_key(|e| e.ts);
+    let file = write_events(dir.path(), &all);
+    let want = replay(&file, &["--models", "last_touch,first_touch,linear,time_decay,u_shaped"]);
+    // Input partition 0 holds the newer events, partition 1 the older ones,
+    // each in time order: whatever the interleaving of the two, the older
+    // partition is behind.
+    let mut msgs: Vec<_> = fast.iter().map(|e| (None, e.line.as_bytes().to_vec(), Some(0))).collect();
+    msgs.extend(slow.iter().map(|e| (None, e.line.as_bytes().to_vec(), Some(1))));
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, false, "");
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    wait_accepted(&s, all.len() as u64, Duration::from_secs(120));
+    let got =
+        consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| rows.len() >= want.len());
+    let (_, metrics) = s.get("/metrics").unwrap();
+    assert!(metrics.contains("apportion_events_rejected_total{reason=\"late\"} 0"), "nothing late: {metrics}");
+    assert_eq!(canonical(&got), canonical(&want), "log: {}", std::fs::read_to_string(&s.log).unwrap());
     assert_eq!(s.signal("TERM").code(), Some(0));
 }

@@ -384,3 +384,30 @@ fn print_effective_hides_secrets() {
     assert!(!text.contains("very-secret-key") && !text.contains("hunter2"), "{text}");
     assert!(text.contains("postgres://writer:<set>@db.internal:5432/wh"), "{text}");
 }
+
+/// An event dated far after the moment replay runs is rejected with
+/// `future_timestamp` (docs/contract.md, "Reject reasons"); the others are
+/// credited as usual (derived by hand: the conversion credits only `a`).
+#[test]
+fn a_future_dated_line_is_rejected() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("in.ndjson");
+    std::fs::write(
+        &input,
+        concat!(
+            r#"{"type":"touch","event_id":"a","user_id":"u","timestamp":"2026-06-01T00:00:00Z","channel":"email"}"#,
+            "\n",
+            r#"{"type":"touch","event_id":"b","user_id":"u","timestamp":"2199-06-01T00:00:00Z","channel":"seo"}"#,
+            "\n",
+            r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":"2026-06-01T01:00:00Z"}"#,
+            "\n"
+        ),
+    )
+    .unwrap();
+    let r = replay(&input, "linear", &[]);
+    assert_eq!(r.rejected.len(), 1);
+    assert_eq!(r.rejected[0]["line"], 2);
+    assert_eq!(r.rejected[0]["reason"], "future_timestamp");
+    assert_eq!(r.rows.len(), 1);
+    assert_eq!(r.rows[0]["touch_event_id"], "a");
+}

@@ -23,7 +23,8 @@ use std::time::Instant;
 
 use anyhow::{Context, Result};
 use apportion_contract::event::parse_event_limited;
-use apportion_contract::UserKey;
+use apportion_contract::time::format_ms;
+use apportion_contract::{RejectReason, Rejection, UserKey};
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::replay::two_pass::{self, Pass};
 use apportion_engine::replay::{effect_rows, FirstSeen};
@@ -159,6 +160,10 @@ pub fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut
     let mut line = 0u64;
     let mut progress = Progress::new(io.progress, "reading", total);
     let mut seen = FirstSeen::default();
+    // No input can hold events from after the replay runs: the newest
+    // plausible event time is the start of the run plus max_future_skew
+    // (docs/contract.md, "Reject reasons").
+    let newest_plausible = crate::pipeline::now_ms().saturating_add(cfg.max_future_skew.ms());
     // Sized once from the first lines' average length, so that neither the
     // index nor the id set doubles (and briefly holds both copies) at scale.
     let mut sized = false;
@@ -190,6 +195,18 @@ pub fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut
             seen.reserve(estimate.saturating_sub(seen.len()));
         }
         match parse_event_limited(body, cfg.max_event_bytes) {
+            Ok(ev) if ev.timestamp_ms > newest_plausible => {
+                summary.rejected += 1;
+                let r = Rejection::new(
+                    RejectReason::FutureTimestamp,
+                    format!(
+                        "event time {} is more than max_future_skew ({}) after the time replay started",
+                        format_ms(ev.timestamp_ms),
+                        cfg.max_future_skew
+                    ),
+                );
+                rejected.write(line, &r)?;
+            }
             Ok(ev) => {
                 // Duplicates: the first occurrence in input order wins, as
                 // the first arrival does in the streaming service.

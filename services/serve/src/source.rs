@@ -72,6 +72,8 @@ pub enum MsgStatus {
     Rejected(Rejection),
     /// Already applied before a restart (offset at or below the committed one).
     AlreadyApplied,
+    /// Not an event: progress of an input partition (repartition topic).
+    Progress,
 }
 
 /// A source of input batches.

@@ -2,6 +2,13 @@
 //! `dead-letter-<n>.ndjson` in one directory. A file is written under a
 //! `.partial` name and renamed when it reaches the size limit or the sink
 //! closes, so a reader that ignores `*.partial` never sees half a file.
+//!
+//! After a crash (kill -9, power loss) a `.partial` file may end in a torn
+//! line: the part of a batch written before the crash. Opening the sink cuts
+//! every `.partial` file back to its last complete line before sealing it.
+//! Complete lines of a batch that was not committed stay: the batch is
+//! delivered again and its rows, with the same ids, come twice (at least
+//! once; readers deduplicate on `credit_id` / `path_id`).
 
 use std::fs::{File, OpenOptions};
 use std::io::{BufWriter, Write};
@@ -30,8 +37,10 @@ impl Rotating {
             if let Some(n) = num {
                 seq = seq.max(n);
                 if name.ends_with(".partial") {
+                    cut_to_last_line(&dir.join(&name))?;
                     let done = dir.join(name.trim_end_matches(".partial"));
                     std::fs::rename(dir.join(&name), done)?;
+                    crate::atomic::sync_dir(dir)?;
                 }
             }
         }
@@ -76,6 +85,34 @@ impl Rotating {
         }
         Ok(())
     }
+}
+
+/// Cuts `path` back to just after its last newline (nothing when it has
+/// none), so a line torn by a crash is not kept. Returns the bytes removed.
+pub fn cut_to_last_line(path: &Path) -> std::io::Result<u64> {
+    use std::io::{Read, Seek, SeekFrom};
+    let mut f = OpenOptions::new().read(true).write(true).open(path)?;
+    let len = f.metadata()?.len();
+    let mut end = len;
+    let mut buf = vec![0u8; 64 << 10];
+    let keep = loop {
+        if end == 0 {
+            break 0;
+        }
+        let start = end.saturating_sub(buf.len() as u64);
+        let n = (end - start) as usize;
+        f.seek(SeekFrom::Start(start))?;
+        f.read_exact(&mut buf[..n])?;
+        if let Some(i) = buf[..n].iter().rposition(|b| *b == b'\n') {
+            break start + i as u64 + 1;
+        }
+        end = start;
+    };
+    if keep < len {
+        f.set_len(keep)?;
+        f.sync_all()?;
+    }
+    Ok(len - keep)
 }
 
 /// The embedded-mode file sink.
@@ -138,4 +175,34 @@ pub fn read_credit_rows(dir: &Path) -> std::io::Result<Vec<apportion_contract::C
         }
     }
     Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A `.partial` file torn by a crash is cut back to its last complete
+    /// line, then sealed; numbering goes on after it.
+    #[test]
+    fn a_torn_last_line_is_cut_on_open() {
+        let dir = tempfile::tempdir().unwrap();
+        let torn = dir.path().join("credit-000003.ndjson.partial");
+        std::fs::write(&torn, "{\"a\":1}\n{\"b\":2}\n{\"c\":").unwrap();
+        let empty = dir.path().join("paths-000001.ndjson.partial");
+        std::fs::write(&empty, "{\"half").unwrap();
+        let mut sink = NdjsonSink::open(dir.path(), 1 << 20).unwrap();
+        let sealed = dir.path().join("credit-000003.ndjson");
+        assert_eq!(std::fs::read_to_string(&sealed).unwrap(), "{\"a\":1}\n{\"b\":2}\n");
+        assert_eq!(std::fs::read_to_string(dir.path().join("paths-000001.ndjson")).unwrap(), "");
+        assert!(!torn.exists() && !empty.exists());
+        sink.write(&OutputBatch::default()).unwrap();
+        sink.close().unwrap();
+        // A long file without any newline near its end is scanned backwards.
+        let long = dir.path().join("x.partial");
+        let mut text = "{\"ok\":1}\n".to_string();
+        text.push_str(&"z".repeat(200_000));
+        std::fs::write(&long, &text).unwrap();
+        assert_eq!(cut_to_last_line(&long).unwrap(), 200_000);
+        assert_eq!(std::fs::read_to_string(&long).unwrap(), "{\"ok\":1}\n");
+    }
 }

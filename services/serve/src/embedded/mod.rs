@@ -109,7 +109,9 @@ impl Source for EmbeddedSource {
             let mut reply = IngestReply::default();
             for line in w.lines {
                 match it.next() {
-                    Some(MsgStatus::Accepted) | Some(MsgStatus::AlreadyApplied) => reply.accepted += 1,
+                    Some(MsgStatus::Accepted) | Some(MsgStatus::AlreadyApplied) | Some(MsgStatus::Progress) => {
+                        reply.accepted += 1
+                    }
                     Some(MsgStatus::Duplicate) => reply.duplicates += 1,
                     Some(MsgStatus::Rejected(r)) => {
                         reply.rejected += 1;

@@ -8,6 +8,7 @@ use apportion_contract::event::{parse_event_limited, MAX_EVENT_ID_BYTES};
 use apportion_contract::{Event, EventKind, RejectReason, Rejection, UserKey};
 
 use crate::config::Format;
+use crate::kafka::repartition::Carried;
 use crate::source::Payload;
 
 /// Decodes one message: the event, and its user key when the payload
@@ -51,7 +52,18 @@ fn sniff_json(bytes: &[u8]) -> (Option<EventKind>, Option<String>) {
 /// The internal repartitioned form of an event: the contract's JSON with the
 /// pseudonymous key in place of the raw `user_id` and the time in epoch ms.
 pub fn encode_pseudonymized(ev: &Event, key: &UserKey) -> Vec<u8> {
+    encode_pseudonymized_with(ev, key, None)
+}
+
+/// [`encode_pseudonymized`], carrying the progress of the event's input
+/// partition (see [`crate::kafka::repartition`]).
+pub fn encode_pseudonymized_with(ev: &Event, key: &UserKey, carried: Option<&Carried>) -> Vec<u8> {
     let mut m = serde_json::Map::new();
+    if let Some(c) = carried {
+        m.insert("source".into(), c.source.clone().into());
+        m.insert("source_max_ts".into(), c.progress.max_ts.into());
+        m.insert("source_caught_up".into(), c.progress.caught_up.into());
+    }
     m.insert("type".into(), ev.kind.as_str().into());
     if !ev.event_id.is_empty() {
         m.insert("event_id".into(), ev.event_id.clone().into());

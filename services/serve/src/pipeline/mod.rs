@@ -32,6 +32,7 @@ use apportion_sinks::OutputBatch;
 use apportion_store::Store;
 
 use crate::config::Config;
+use crate::kafka::repartition;
 use crate::metrics::Metrics;
 use crate::refit::Refit;
 use crate::source::{InMsg, MsgStatus, PartId, Payload};
@@ -172,6 +173,10 @@ impl Pipeline {
         if part.pending_offset.is_some() {
             part.idle = None;
         }
+        if payload == Payload::Pseudonymized && !part.sources.0.is_empty() {
+            // Committed with the offset: the progress of the input partitions.
+            part.source_position = Some(serde_json::to_vec(&part.sources).expect("clocks serialize"));
+        }
         Ok(statuses)
     }
 
@@ -186,6 +191,12 @@ impl Pipeline {
         lateness: i64,
         out: &mut OutputBatch,
     ) -> Result<MsgStatus> {
+        if payload == Payload::Pseudonymized {
+            if let Some(c) = repartition::read_progress(&m.payload) {
+                self.take_progress(id, &c, lateness, out)?;
+                return Ok(MsgStatus::Progress);
+            }
+        }
         let decoded = decode::decode(payload, &m.payload, self.cfg.max_event_bytes);
         let (mut ev, key) = match decoded {
             Ok(v) => v,
@@ -256,14 +267,50 @@ impl Pipeline {
         let seq = m.offset.max(0) as u64;
         let wm = part.clock.watermark;
         let mut effects = self.processor.apply(&mut part.store, JourneyEvent::from_event(ev, key, seq), wm)?;
-        // Move the watermark: largest event time - allowed lateness.
-        let wm = policy::watermark_after_input(part.clock.watermark, part.clock.max_ts, lateness);
+        // Move the watermark: largest event time - allowed lateness (for
+        // repartitioned input: of the slowest input partition).
+        if payload == Payload::Pseudonymized {
+            if let Some(c) = repartition::read_carried(&m.payload) {
+                part.sources.update(&c);
+            }
+        }
+        let wm = if payload == Payload::Pseudonymized && !part.sources.0.is_empty() {
+            // Until every input partition with a backlog has been read, the
+            // watermark waits (low_water is None).
+            part.sources
+                .low_water()
+                .map_or(part.clock.watermark, |low| policy::watermark_after_input(part.clock.watermark, low, lateness))
+        } else {
+            policy::watermark_after_input(part.clock.watermark, part.clock.max_ts, lateness)
+        };
         if wm > part.clock.watermark {
             part.clock.watermark = wm;
             effects.extend(self.processor.advance(&mut part.store, wm)?);
         }
         self.emit(id, &effects, out);
         Ok(MsgStatus::Accepted)
+    }
+
+    /// A progress record of the repartition topic: an input partition's
+    /// largest event time moved (or it caught up), which may move this
+    /// partition's watermark.
+    fn take_progress(
+        &mut self,
+        id: &PartId,
+        c: &repartition::Carried,
+        lateness: i64,
+        out: &mut OutputBatch,
+    ) -> Result<()> {
+        let part = self.parts.get_mut(id).expect("open partition");
+        part.sources.update(c);
+        let Some(low) = part.sources.low_water() else { return Ok(()) };
+        let wm = policy::watermark_after_input(part.clock.watermark, low, lateness);
+        if wm > part.clock.watermark {
+            part.clock.watermark = wm;
+            let effects = self.processor.advance(&mut part.store, wm)?;
+            self.emit(id, &effects, out);
+        }
+        Ok(())
     }
 
     /// Tells the pipeline whether a partition has read all of its input

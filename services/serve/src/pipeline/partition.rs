@@ -10,6 +10,7 @@ use anyhow::{Context, Result};
 use apportion_engine::datadriven::PathStats;
 use apportion_store::{Clock, Decision, PartitionStore, Store};
 
+use crate::kafka::repartition::SourceClocks;
 use crate::refit::Snapshot;
 use crate::source::{PartId, Payload};
 
@@ -101,6 +102,8 @@ pub struct PartState {
     pub adopt: Option<Arc<Snapshot>>,
     /// A source position to commit with the next offset.
     pub source_position: Option<Vec<u8>>,
+    /// Repartitioned input: the progress of every input partition.
+    pub sources: SourceClocks,
 }
 
 impl PartState {
@@ -124,6 +127,14 @@ impl PartState {
             Decisions::load(part.decisions().with_context(|| format!("reading the decisions of partition {name}"))?);
         let active = part.active_snapshot().with_context(|| format!("reading the snapshot of partition {name}"))?;
         let snapshot = snapshot(active.as_deref())?;
+        let sources = match payload {
+            Payload::Pseudonymized => match part.source_position()? {
+                Some(b) => serde_json::from_slice(&b)
+                    .with_context(|| format!("the source clocks of partition {name} are damaged"))?,
+                None => SourceClocks::default(),
+            },
+            Payload::Event(_) => SourceClocks::default(),
+        };
         Ok(PartState {
             store: part,
             payload,
@@ -138,6 +149,7 @@ impl PartState {
             snapshot,
             adopt: None,
             source_position: None,
+            sources,
         })
     }
 
