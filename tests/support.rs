@@ -432,3 +432,58 @@ input_keyed_by_user = {keyed}
     std::fs::write(&p, cfg).unwrap();
     p
 }
+
+/// A broker of a test's own (deploy/dev/kafka.sh with its own run
+/// directory), for tests that restart it. Stopped (and its data deleted)
+/// when dropped.
+pub struct PrivateBroker {
+    run_dir: tempfile::TempDir,
+    /// `127.0.0.1:PORT`.
+    pub brokers: String,
+}
+
+impl PrivateBroker {
+    fn script() -> PathBuf {
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/dev/kafka.sh")
+    }
+
+    fn run(&self, cmd: &str) -> String {
+        let o = Command::new("bash")
+            .arg(Self::script())
+            .arg(cmd)
+            .env("APPORTION_DEV_RUN_DIR", self.run_dir.path())
+            .output()
+            .expect("run kafka.sh");
+        let text = format!("{}{}", String::from_utf8_lossy(&o.stdout), String::from_utf8_lossy(&o.stderr));
+        assert!(o.status.success(), "kafka.sh {cmd} failed: {text}");
+        text
+    }
+
+    /// Starts a broker on free ports.
+    pub fn start() -> PrivateBroker {
+        let mut b = PrivateBroker { run_dir: tempfile::tempdir().unwrap(), brokers: String::new() };
+        let out = b.run("start");
+        b.brokers = out
+            .lines()
+            .find_map(|l| l.strip_prefix("export APPORTION_TEST_KAFKA="))
+            .expect("kafka.sh start prints the address")
+            .trim()
+            .to_string();
+        b
+    }
+
+    /// Stops the broker and starts it again on the same port, data kept.
+    pub fn restart(&self) {
+        self.run("restart");
+    }
+}
+
+impl Drop for PrivateBroker {
+    fn drop(&mut self) {
+        let _ = Command::new("bash")
+            .arg(Self::script())
+            .arg("stop")
+            .env("APPORTION_DEV_RUN_DIR", self.run_dir.path())
+            .output();
+    }
+}

@@ -5,6 +5,7 @@
 #
 #   kafka.sh start            start (or, if running, just print env); prints the env line
 #   kafka.sh stop             stop the broker and delete its data
+#   kafka.sh restart          stop the broker and start it again on the same ports, keeping its data
 #   kafka.sh status           "running ..." (exit 0) or "stopped" (exit 1)
 #   kafka.sh env              export APPORTION_TEST_KAFKA=127.0.0.1:PORT (exit 1 if stopped)
 #   kafka.sh topics-create NAME PARTITIONS [KEY=VALUE..]  create a topic (no-op if it exists)
@@ -166,6 +167,14 @@ do_start() {
     die "formatting the KRaft storage failed"
   fi
 
+  launch "$port" "$cport"
+  echo "$port" >"$PORT_FILE"
+  print_env
+}
+
+# Starts the JVM on the configuration in $RUN and waits until it answers.
+launch() {
+  local port="$1" cport="$2"
   say "starting Apache Kafka $KAFKA_VERSION on 127.0.0.1:$port (controller $cport); log $LOG_FILE"
   # The lock fd is closed for the broker, or it would hold the start/stop lock forever.
   # setsid: the broker is not in the caller's process group, so a Ctrl-C or a test
@@ -206,6 +215,17 @@ do_start() {
     kill_broker
     die "the broker opened its port but did not answer a metadata request"
   fi
+}
+
+do_restart() {
+  running || die "no broker is running"
+  local port cport
+  port="$(cat "$PORT_FILE")"
+  cport="$(cat "$RUN/controller.port")"
+  say "restarting broker pid $(cat "$PID_FILE") (data kept)"
+  kill_broker
+  rm -f "$PID_FILE" "$PORT_FILE"
+  launch "$port" "$cport"
   echo "$port" >"$PORT_FILE"
   print_env
 }
@@ -242,6 +262,7 @@ cmd="${1:-}"
 case "$cmd" in
   start) with_lock "$DEV_RUN_DIR/kafka.lock" do_start ;;
   stop) with_lock "$DEV_RUN_DIR/kafka.lock" do_stop ;;
+  restart) with_lock "$DEV_RUN_DIR/kafka.lock" do_restart ;;
   status) do_status ;;
   env) do_env ;;
   topics-create) do_topics_create "$@" ;;
@@ -255,7 +276,7 @@ case "$cmd" in
     ;;
   version) echo "$KAFKA_VERSION" ;;
   *)
-    sed -n '2,17p' "${BASH_SOURCE[0]}" | sed 's/^# \{0,1\}//' >&2
+    sed -n '2,18p' "${BASH_SOURCE[0]}" | sed 's/^# \{0,1\}//' >&2
     exit 2
     ;;
 esac

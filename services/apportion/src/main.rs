@@ -47,6 +47,9 @@ enum Command {
     Serve,
     /// Show or check the configuration.
     Config(ConfigArgs),
+    /// Show the store's partitions, or reset a partition's watermark (service stopped).
+    #[command(subcommand)]
+    State(cmd::state::StateCommand),
     /// Exit 0 when an HTTP URL answers 200 (container healthcheck).
     Health {
         /// URL to check.
@@ -153,6 +156,7 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Compare(a) => cmd::compare::run(&a),
         Command::Serve => cmd::serve::run(load_config(file)?),
+        Command::State(c) => cmd::state::run(&load_config(file)?, c),
         Command::Health { url } => cmd::health::run(&url),
     }
 }

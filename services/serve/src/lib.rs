@@ -23,6 +23,7 @@
 //! - [`admin`]: `/metrics`, `/healthz`, `/readyz`, `/v1/models`.
 //! - [`metrics`]: every metric (spec: docs/telemetry.md).
 //! - [`replay_file`], [`output`]: `replay` over a file, atomic output files.
+//! - [`state_admin`]: `apportion state` (show the store, reset a watermark).
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
 
@@ -38,6 +39,7 @@ pub mod replay_file;
 pub mod run_loop;
 pub mod service;
 pub mod source;
+pub mod state_admin;
 
 #[cfg(test)]
 mod tests;

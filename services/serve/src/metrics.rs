@@ -230,13 +230,25 @@ impl Metrics {
     }
 }
 
-/// The sinks' layers report their retries and failures here.
-impl apportion_sinks::Observer for Metrics {
+/// What the sinks' layers report to: the metrics, and the stop flag that
+/// ends their retries at shutdown.
+#[derive(Clone)]
+pub struct SinkObserver {
+    /// Metrics of retries and failures.
+    pub metrics: Metrics,
+    /// Set when the service is stopping.
+    pub stop: std::sync::Arc<std::sync::atomic::AtomicBool>,
+}
+
+impl apportion_sinks::Observer for SinkObserver {
     fn failed(&self, sink: &'static str) {
-        self.sink_errors.with_label_values(&[sink]).inc();
+        self.metrics.sink_errors.with_label_values(&[sink]).inc();
     }
     fn retried(&self, sink: &'static str) {
-        self.sink_retries.with_label_values(&[sink]).inc();
+        self.metrics.sink_retries.with_label_values(&[sink]).inc();
+    }
+    fn cancelled(&self) -> bool {
+        self.stop.load(std::sync::atomic::Ordering::SeqCst)
     }
 }
 

@@ -17,7 +17,7 @@ use apportion_sinks::{Observer, Sink};
 use apportion_store::Store;
 
 use crate::config::{Config, LogFormat};
-use crate::metrics::Metrics;
+use crate::metrics::{Metrics, SinkObserver};
 use crate::pipeline::Pipeline;
 use crate::run_loop::{run_loop, Shared};
 use crate::source::Source;
@@ -40,7 +40,12 @@ pub fn init_logging(cfg: &Config) -> Result<()> {
 
 /// The Parquet and PostgreSQL sinks configured, in that order (they follow
 /// the primary sink).
-pub fn warehouse_sinks(cfg: &Config, data_dir: &Path, metrics: &Metrics) -> Result<Vec<Box<dyn Sink>>> {
+pub fn warehouse_sinks(
+    cfg: &Config,
+    data_dir: &Path,
+    metrics: &Metrics,
+    stop: Arc<AtomicBool>,
+) -> Result<Vec<Box<dyn Sink>>> {
     let mut sinks: Vec<Box<dyn Sink>> = Vec::new();
     if let Some(p) = &cfg.parquet {
         let sink = p.build().with_context(|| format!("cannot open the Parquet sink in {}", p.dir))?;
@@ -49,7 +54,7 @@ pub fn warehouse_sinks(cfg: &Config, data_dir: &Path, metrics: &Metrics) -> Resu
     }
     match &cfg.postgres {
         Some(p) => {
-            let observer: Arc<dyn Observer> = Arc::new(metrics.clone());
+            let observer: Arc<dyn Observer> = Arc::new(SinkObserver { metrics: metrics.clone(), stop });
             let sink = p.build(data_dir, observer).context("cannot start the PostgreSQL sink")?;
             metrics.register_sink("postgres");
             sinks.push(sink);
@@ -124,7 +129,7 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
             (Box::new(source), vec![Box::new(sink) as Box<dyn Sink>], ingest)
         }
     };
-    sinks.extend(warehouse_sinks(&cfg, &data_dir, &metrics)?);
+    sinks.extend(warehouse_sinks(&cfg, &data_dir, &metrics, stop.clone())?);
 
     let http_stop = Arc::new(tokio::sync::Notify::new());
     {

@@ -62,11 +62,20 @@ impl<S: Sink> Sink for Retry<S> {
                     if !e.retryable {
                         return Err(e);
                     }
-                    if attempt >= self.max_retries {
+                    if attempt >= self.max_retries || self.observer.cancelled() {
                         let tries = attempt + 1;
                         return Err(SinkError::retry(e.sink, format!("{} (gave up after {tries} attempts)", e.detail)));
                     }
-                    std::thread::sleep(self.backoff.delay(attempt));
+                    // Sleep in slices, so that a shutdown is not held up.
+                    let until = Instant::now() + self.backoff.delay(attempt);
+                    while Instant::now() < until {
+                        if self.observer.cancelled() {
+                            return Err(SinkError::retry(e.sink, format!("{} (shutdown while retrying)", e.detail)));
+                        }
+                        std::thread::sleep(
+                            Duration::from_millis(20).min(until.saturating_duration_since(Instant::now())),
+                        );
+                    }
                     self.observer.retried(self.inner.name());
                     attempt += 1;
                 }

@@ -130,6 +130,11 @@ pub trait Observer: Send + Sync {
     fn failed(&self, sink: &'static str);
     /// A batch is being tried again at `sink` (after a failure, or from the spool).
     fn retried(&self, sink: &'static str);
+    /// True once the service is stopping: layers stop retrying (the batch is
+    /// given up uncommitted and delivered again after the restart).
+    fn cancelled(&self) -> bool {
+        false
+    }
 }
 
 /// An observer that ignores everything (tests, tools).

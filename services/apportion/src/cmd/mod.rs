@@ -8,6 +8,7 @@ pub mod explain;
 pub mod health;
 pub mod replay;
 pub mod serve;
+pub mod state;
 
 use std::path::{Path, PathBuf};
 

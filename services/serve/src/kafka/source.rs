@@ -149,15 +149,27 @@ impl Source for KafkaSource {
         };
         let mut total = 0u64;
         let now = Instant::now();
+        // Before a partition's first message the position is unknown: the
+        // group's committed offset is where reading starts.
+        let committed = self.consumer.committed(Duration::from_secs(2)).ok();
         for e in positions.elements() {
             let id = PartId::new(e.topic(), e.partition());
-            let Ok((_, high)) = self.consumer.fetch_watermarks(e.topic(), e.partition(), Duration::from_secs(1)) else {
+            let Ok((low, high)) = self.consumer.fetch_watermarks(e.topic(), e.partition(), Duration::from_secs(1))
+            else {
                 self.caught_up_at.remove(&id);
                 continue;
             };
             let pos = match e.offset() {
                 Offset::Offset(o) => o,
-                _ => continue,
+                _ => match committed
+                    .as_ref()
+                    .and_then(|c| c.find_partition(e.topic(), e.partition()))
+                    .map(|c| c.offset())
+                {
+                    Some(Offset::Offset(o)) => o,
+                    // Nothing committed: reading starts at the beginning.
+                    _ => low,
+                },
             };
             let lag = (high - pos).max(0) as u64;
             total += lag;

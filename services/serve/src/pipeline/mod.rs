@@ -464,21 +464,6 @@ impl Pipeline {
         self.parts.iter().filter_map(|(k, v)| v.committed.map(|o| (k.clone(), o))).collect()
     }
 
-    /// Resets a partition's watermark (operators, after a bad event moved it
-    /// too far; see `apportion state`): the clock is set to `to` and the
-    /// recorded advances are forgotten. Returns the previous watermark.
-    pub fn reset_watermark(&mut self, id: &PartId, to: i64) -> Result<i64> {
-        let part = self.parts.get_mut(id).context("partition not open")?;
-        let before = part.clock.watermark;
-        part.clock.watermark = to;
-        part.clock.max_ts = to.saturating_add(self.cfg.allowed_lateness.ms());
-        part.decisions.advances.clear();
-        if part.pending_offset.is_none() {
-            part.pending_offset = part.committed;
-        }
-        Ok(before)
-    }
-
     /// Updates store gauges.
     pub fn update_gauges(&self) {
         let open: u64 = self.parts.values().map(|p| p.store.open_journeys()).sum();
