@@ -546,3 +546,48 @@ fn continue_spools_while_postgres_is_down_and_replays_later() {
     );
     c.batch_execute(&format!("DROP SCHEMA \"{schema}\" CASCADE")).unwrap();
 }
+
+/// A PostgreSQL write that blocks (another session holds an ACCESS
+/// EXCLUSIVE lock on the credit table) is cancelled when the shutdown grace
+/// runs out: SIGTERM ends the service within `shutdown_grace` with exit 0,
+/// the batch not committed (nothing reached the table), the client told to
+/// resend. Without the deadline the write would wait for the lock forever
+/// and the stop would end in the grace-period error instead.
+#[test]
+fn sigterm_bounds_a_blocked_postgres_write() {
+    let Some(url) = server("APPORTION_TEST_POSTGRES") else { return };
+    let dir = tempfile::tempdir().unwrap();
+    let evs = events(30, 23);
+    let schema = schema_name("blocked");
+    let (admin, ingest) = (free_port(), free_port());
+    let (data, out) = (dir.path().join("data"), dir.path().join("out"));
+    let cfg = config(dir.path(), "blocked.toml", admin, ingest, &data, &out, &postgres_section(&schema, "pause", ""));
+    let text = std::fs::read_to_string(&cfg).unwrap().replace("shutdown_grace = \"10s\"", "shutdown_grace = \"3s\"");
+    std::fs::write(&cfg, text).unwrap();
+    let mut s = start(&cfg, admin, &dir.path().join("blocked.log"), &[("APPORTION_POSTGRES_URL", &url)]);
+    s.wait_ready(Duration::from_secs(60));
+
+    let mut locker = pg(&url);
+    let mut lock = locker.transaction().unwrap();
+    lock.batch_execute(&format!("LOCK TABLE \"{schema}\".credit IN ACCESS EXCLUSIVE MODE")).unwrap();
+    let answer = post_in_background(ingest, body(&evs));
+    // Wait until the service's statement is queued behind the lock.
+    let mut watch = pg(&url);
+    let t = Instant::now();
+    while count(&mut watch, "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock'") < 1 {
+        assert!(t.elapsed() < Duration::from_secs(20), "no write waits for the lock: {}", log_of(&s));
+        std::thread::sleep(Duration::from_millis(100));
+    }
+
+    let t = Instant::now();
+    let status = s.signal("TERM");
+    let took = t.elapsed();
+    assert!(took < Duration::from_secs(5), "exit took {took:?}, more than shutdown_grace (3s)");
+    assert_eq!(status.code(), Some(0), "{}", log_of(&s));
+    assert!(log_of(&s).contains("not committed"), "{}", log_of(&s));
+    let (status, reply) = answer.recv_timeout(Duration::from_secs(10)).expect("the POST ended").expect("an answer");
+    assert_eq!(status, 503, "{reply}");
+    lock.rollback().unwrap();
+    assert_eq!(count(&mut watch, &format!("SELECT count(*) FROM \"{schema}\".credit")), 0);
+    watch.batch_execute(&format!("DROP SCHEMA \"{schema}\" CASCADE")).unwrap();
+}

@@ -238,6 +238,8 @@ pub struct SinkObserver {
     pub metrics: Metrics,
     /// Set when the service is stopping.
     pub stop: std::sync::Arc<std::sync::atomic::AtomicBool>,
+    /// When the shutdown grace ends (set with `stop`).
+    pub deadline: std::sync::Arc<std::sync::Mutex<Option<std::time::Instant>>>,
 }
 
 impl apportion_sinks::Observer for SinkObserver {
@@ -249,6 +251,9 @@ impl apportion_sinks::Observer for SinkObserver {
     }
     fn cancelled(&self) -> bool {
         self.stop.load(std::sync::atomic::Ordering::SeqCst)
+    }
+    fn deadline(&self) -> Option<std::time::Instant> {
+        *self.deadline.lock().expect("deadline")
     }
 }
 

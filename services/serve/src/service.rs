@@ -45,6 +45,7 @@ pub fn warehouse_sinks(
     data_dir: &Path,
     metrics: &Metrics,
     stop: Arc<AtomicBool>,
+    deadline: Arc<Mutex<Option<std::time::Instant>>>,
 ) -> Result<Vec<Box<dyn Sink>>> {
     let mut sinks: Vec<Box<dyn Sink>> = Vec::new();
     if let Some(p) = &cfg.parquet {
@@ -54,7 +55,7 @@ pub fn warehouse_sinks(
     }
     match &cfg.postgres {
         Some(p) => {
-            let observer: Arc<dyn Observer> = Arc::new(SinkObserver { metrics: metrics.clone(), stop });
+            let observer: Arc<dyn Observer> = Arc::new(SinkObserver { metrics: metrics.clone(), stop, deadline });
             let sink = p.build(data_dir, observer).context("cannot start the PostgreSQL sink")?;
             metrics.register_sink("postgres");
             sinks.push(sink);
@@ -129,7 +130,10 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
             (Box::new(source), vec![Box::new(sink) as Box<dyn Sink>], ingest)
         }
     };
-    sinks.extend(warehouse_sinks(&cfg, &data_dir, &metrics, stop.clone())?);
+    // When the shutdown grace runs out: a sink write still running then
+    // gives up (a margin of a second is kept to finish and close).
+    let deadline: Arc<Mutex<Option<std::time::Instant>>> = Arc::default();
+    sinks.extend(warehouse_sinks(&cfg, &data_dir, &metrics, stop.clone(), deadline.clone())?);
 
     let http_stop = Arc::new(tokio::sync::Notify::new());
     {
@@ -176,6 +180,8 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
                 };
             }
         }
+        *deadline.lock().expect("deadline") =
+            Some(std::time::Instant::now() + grace.saturating_sub(Duration::from_secs(1)));
         stop.store(true, Ordering::SeqCst);
         let r = match tokio::time::timeout(grace, done_rx).await {
             Ok(Ok(r)) => r,

@@ -135,6 +135,11 @@ pub trait Observer: Send + Sync {
     fn cancelled(&self) -> bool {
         false
     }
+    /// When the service is stopping: the moment by which a write in
+    /// progress must give up (what is left of the shutdown grace).
+    fn deadline(&self) -> Option<std::time::Instant> {
+        None
+    }
 }
 
 /// An observer that ignores everything (tests, tools).

@@ -33,7 +33,7 @@
 //! (`sslmode=prefer`, the default, falls back to plain TCP).
 
 use std::str::FromStr;
-use std::time::{Duration, SystemTime, UNIX_EPOCH};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use std::path::Path;
 use std::sync::Arc;
@@ -120,6 +120,8 @@ pub struct PostgresSink {
     opts: PostgresOptions,
     conn: Option<Conn>,
     last: WriteCounts,
+    /// Tells when a write in progress must give up (shutdown).
+    observer: Option<Arc<dyn Observer>>,
 }
 
 impl std::fmt::Debug for PostgresSink {
@@ -285,7 +287,7 @@ impl PostgresSink {
             return Err(SinkError::fatal(SINK, "schema name is empty"));
         }
         let target = describe(&config);
-        Ok(PostgresSink { config, target, opts, conn: None, last: WriteCounts::default() })
+        Ok(PostgresSink { config, target, opts, conn: None, last: WriteCounts::default(), observer: None })
     }
 
     /// [`PostgresSink::open`], then one attempt to connect (and create the
@@ -298,6 +300,14 @@ impl PostgresSink {
             return Err(e);
         }
         Ok(sink)
+    }
+
+    /// Bounds every write by the observer's shutdown deadline: a statement
+    /// still running then is cancelled at the server (its transaction rolls
+    /// back; the batch is delivered again after the restart).
+    pub fn with_observer(mut self, observer: Arc<dyn Observer>) -> Self {
+        self.observer = Some(observer);
+        self
     }
 
     /// `host:port/dbname` of the server (no credentials).
@@ -340,6 +350,39 @@ impl PostgresSink {
 
     fn chunk_rows(&self, width: usize) -> usize {
         self.opts.rows_per_statement.clamp(1, MAX_PARAMS / width)
+    }
+
+    /// [`PostgresSink::try_write`], with a watchdog that cancels the
+    /// running statement at the server once the observer's deadline passes.
+    fn write_with_deadline(&mut self, batch: &OutputBatch, obs: Arc<dyn Observer>) -> Result<WriteCounts, SinkError> {
+        if obs.deadline().is_some_and(|d| Instant::now() >= d) {
+            return Err(SinkError::retry(SINK, "shutdown: no time left for a write"));
+        }
+        self.ensure_conn()?;
+        let token = self.conn.as_ref().expect("connected above").client.cancel_token();
+        let done = std::sync::atomic::AtomicBool::new(false);
+        std::thread::scope(|scope| {
+            let watchdog = scope.spawn(|| {
+                while !done.load(std::sync::atomic::Ordering::SeqCst) {
+                    if obs.deadline().is_some_and(|d| Instant::now() >= d) {
+                        let _ = token.cancel_query(NoTls);
+                        return true;
+                    }
+                    std::thread::sleep(Duration::from_millis(20));
+                }
+                false
+            });
+            let r = self.try_write(batch);
+            done.store(true, std::sync::atomic::Ordering::SeqCst);
+            let cancelled = watchdog.join().unwrap_or(false);
+            match r {
+                // Our own cancel: not the server's verdict on the rows.
+                Err(e) if cancelled => {
+                    Err(SinkError::retry(SINK, format!("shutdown: the write was cancelled ({})", e.detail)))
+                }
+                r => r,
+            }
+        })
     }
 
     fn try_write(&mut self, batch: &OutputBatch) -> Result<WriteCounts, SinkError> {
@@ -439,7 +482,11 @@ impl Sink for PostgresSink {
         if !batch.has_rows() {
             return Ok(());
         }
-        match self.try_write(batch) {
+        let result = match self.observer.clone() {
+            None => self.try_write(batch),
+            Some(obs) => self.write_with_deadline(batch, obs),
+        };
+        match result {
             Ok(counts) => {
                 self.last = counts;
                 Ok(())
@@ -558,7 +605,7 @@ impl PostgresConfig {
     pub fn build(&self, data_dir: &Path, observer: Arc<dyn Observer>) -> Result<Box<dyn Sink>, SinkError> {
         let opts =
             PostgresOptions { schema: self.schema.clone(), create_tables: self.create_tables, ..Default::default() };
-        let sink = match PostgresSink::connect(&self.url, opts.clone()) {
+        let sink = match PostgresSink::connect(&self.url, opts.clone()).map(|s| s.with_observer(observer.clone())) {
             Ok(s) => {
                 tracing::info!(target = s.target(), schema = %self.schema, on_unavailable = ?self.on_unavailable, "PostgreSQL sink connected");
                 s
@@ -569,7 +616,7 @@ impl PostgresConfig {
                     on_unavailable = ?self.on_unavailable,
                     "PostgreSQL is not reachable at start; batches wait for it (pause) or are spooled (continue)"
                 );
-                PostgresSink::open(&self.url, opts)?
+                PostgresSink::open(&self.url, opts)?.with_observer(observer.clone())
             }
             Err(e) => return Err(e),
         };
