@@ -401,8 +401,8 @@ fn postgres_and_parquet_hold_the_rows_of_the_files() {
 
 /// on_unavailable = "pause" with PostgreSQL down: the batch is held (the
 /// HTTP client gets no answer, nothing commits), the retries show in the
-/// metrics, SIGTERM still ends the process within the grace period (with a
-/// non-zero status: the held batch was not committed), and the client is
+/// metrics, SIGTERM still ends the process within the grace period (exit 0,
+/// the log saying the held batch was not committed), and the client is
 /// told to resend. Resent once PostgreSQL is up, every line is applied
 /// (none was marked seen by the held batch) and lands in PostgreSQL.
 #[test]
