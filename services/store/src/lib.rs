@@ -80,6 +80,21 @@ pub enum StoreError {
     },
 }
 
+/// How long [`Store::open`] waits for another handle to release the
+/// directory lock.
+const LOCK_WAIT: std::time::Duration = std::time::Duration::from_secs(2);
+
+/// Whether sled failed to take the directory lock (it wraps the OS error
+/// `WouldBlock` in a message of its own).
+fn is_lock_error(e: &sled::Error) -> bool {
+    match e {
+        sled::Error::Io(io) => {
+            io.kind() == std::io::ErrorKind::WouldBlock || io.to_string().contains("could not acquire lock")
+        }
+        _ => false,
+    }
+}
+
 /// The whole store: one sled database, one tree per input partition.
 #[derive(Clone)]
 pub struct Store {
@@ -91,13 +106,31 @@ impl Store {
     pub fn open(dir: &Path) -> Result<Store, StoreError> {
         std::fs::create_dir_all(dir)
             .map_err(|e| StoreError::Open { path: dir.to_path_buf(), detail: e.to_string() })?;
-        let db = sled::Config::new()
-            .path(dir)
-            .cache_capacity(64 << 20)
-            .mode(sled::Mode::HighThroughput)
-            .open()
-            .map_err(|e| StoreError::Open { path: dir.to_path_buf(), detail: e.to_string() })?;
-        Ok(Store { db })
+        // sled holds an advisory lock on the directory until its flusher
+        // thread has exited, which can be a moment after the last handle was
+        // dropped (a restart in the same process, or a predecessor process
+        // still exiting). Wait a bounded time for it before giving up.
+        let deadline = std::time::Instant::now() + LOCK_WAIT;
+        loop {
+            let opened = sled::Config::new().path(dir).cache_capacity(64 << 20).mode(sled::Mode::HighThroughput).open();
+            match opened {
+                Ok(db) => return Ok(Store { db }),
+                Err(e) if is_lock_error(&e) && std::time::Instant::now() < deadline => {
+                    std::thread::sleep(std::time::Duration::from_millis(20));
+                }
+                Err(e) => {
+                    let detail = if is_lock_error(&e) {
+                        format!(
+                            "{e} (another process, or another store handle in this one, still has it open after {}s)",
+                            LOCK_WAIT.as_secs()
+                        )
+                    } else {
+                        e.to_string()
+                    };
+                    return Err(StoreError::Open { path: dir.to_path_buf(), detail });
+                }
+            }
+        }
     }
 
     /// A store in a temporary location, removed when dropped.

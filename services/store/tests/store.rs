@@ -187,3 +187,19 @@ fn damaged_records_are_errors() {
     assert!(matches!(decode_clock(&[9; 17]), Err(StoreError::UnknownVersion { found: 9, .. })));
     assert!(matches!(decode_clock(&[1; 5]), Err(StoreError::Corrupt { .. })));
 }
+
+/// Dropping a store and opening it again at once must work: sled keeps the
+/// directory lock until its flusher thread has exited, a moment after the
+/// last handle is dropped (a restart within one process, as the serve tests
+/// do). Before `Store::open` waited for the lock, this failed now and then
+/// with "could not acquire lock".
+#[test]
+fn reopening_right_after_a_drop_waits_for_the_lock() {
+    let dir = tempfile::tempdir().unwrap();
+    for round in 0..30 {
+        let store = Store::open(dir.path()).unwrap_or_else(|e| panic!("round {round}: {e}"));
+        let mut p = store.partition("events/0", 1 << 20).unwrap();
+        p.stage_offset("events/0", round);
+        p.commit(true).unwrap();
+    }
+}
