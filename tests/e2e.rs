@@ -6,5 +6,6 @@
 mod embedded;
 mod kafka_stream;
 mod metrics_lint;
+mod output_pin;
 mod report_browser;
 mod warehouse;
