@@ -23,6 +23,14 @@ pub trait JourneyStore {
 
     /// The user's journey, if one is open.
     fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error>;
+    /// The user's journey, moved out of the store to be changed and handed
+    /// back with [`JourneyStore::save`]. Until then the store's copy is
+    /// unspecified, so every `take` must be followed by a `save` of the key
+    /// (or the store dropped). Stores that keep journeys decoded in memory
+    /// override it to avoid a copy; the default is [`JourneyStore::load`].
+    fn take(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error> {
+        self.load(key)
+    }
     /// Stores the journey and its next wake-up time (`Journey::next_wake`);
     /// an empty journey is removed.
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), Self::Error>;
@@ -131,7 +139,7 @@ impl Processor {
     pub fn advance<S: JourneyStore>(&self, store: &mut S, watermark: i64) -> Result<Vec<Effect>, S::Error> {
         let mut out = Vec::new();
         for key in store.due(watermark)? {
-            let Some(mut j) = store.load(&key)? else { continue };
+            let Some(mut j) = store.take(&key)? else { continue };
             let outcomes = j.advance(watermark, &self.rules);
             let wake = j.next_wake(&self.rules);
             store.save(&key, j, wake)?;
@@ -148,7 +156,7 @@ impl Processor {
         watermark: i64,
     ) -> Result<Vec<Effect>, S::Error> {
         let key = event.user_key;
-        let mut j = store.load(&key)?.unwrap_or_default();
+        let mut j = store.take(&key)?.unwrap_or_default();
         match event.kind {
             JourneyEventKind::Touch(t) => j.add_touch(t),
             JourneyEventKind::Conversion(c) => j.add_conversion(c),
@@ -169,7 +177,7 @@ impl Processor {
     pub fn finish<S: JourneyStore>(&self, store: &mut S) -> Result<Vec<Effect>, S::Error> {
         let mut out = Vec::new();
         for key in store.keys()? {
-            let Some(mut j) = store.load(&key)? else { continue };
+            let Some(mut j) = store.take(&key)? else { continue };
             let outcomes = j.finish(&self.rules);
             store.save(&key, Journey::default(), None)?;
             out.extend(outcomes.into_iter().map(|outcome| Effect::Journey { user_key: key, outcome }));
@@ -204,6 +212,11 @@ impl JourneyStore for MemStore {
         Ok(self.journeys.get(key).map(|(j, _)| j.clone()))
     }
 
+    fn take(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error> {
+        // The wake time stays, so `save` can still find the old index entry.
+        Ok(self.journeys.get_mut(key).map(|(j, _)| std::mem::take(j)))
+    }
+
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), Self::Error> {
         if let Some((_, Some(old))) = self.journeys.get(key) {
             self.wake.remove(&(*old, *key));
@@ -234,6 +247,9 @@ impl<S: JourneyStore> JourneyStore for &mut S {
 
     fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error> {
         (**self).load(key)
+    }
+    fn take(&mut self, key: &UserKey) -> Result<Option<Journey>, Self::Error> {
+        (**self).take(key)
     }
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), Self::Error> {
         (**self).save(key, journey, wake)

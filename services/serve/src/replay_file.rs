@@ -254,6 +254,9 @@ impl JourneyStore for PassStore {
     fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
         self.inner.load(key)
     }
+    fn take(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
+        self.inner.take(key)
+    }
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), StoreError> {
         self.inner.save(key, journey, wake)
     }
@@ -341,6 +344,9 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
         None => None,
     };
     let spilled: Rc<Cell<u64>> = Rc::default();
+    // One reusable buffer per output: an effect's rows are serialized into
+    // it and written at once (serde_json alone makes many tiny writes).
+    let mut line = Vec::with_capacity(4096);
     let replayed = two_pass::run(
         &cfg.model_plan(),
         cfg.rules(),
@@ -354,16 +360,20 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
                 }
             }
             let (rows, path) = effect_rows(e, models);
+            line.clear();
             for r in &rows {
-                serde_json::to_writer(&mut out, r)?;
-                out.write_all(b"\n")?;
+                serde_json::to_writer(&mut line, r)?;
+                line.push(b'\n');
             }
+            out.write_all(&line)?;
             summary.rows += rows.len() as u64;
             if let Some(p) = path {
                 summary.paths += 1;
                 if let Some(w) = paths_out.as_mut() {
-                    serde_json::to_writer(&mut *w, &p)?;
-                    w.write_all(b"\n")?;
+                    line.clear();
+                    serde_json::to_writer(&mut line, &p)?;
+                    line.push(b'\n');
+                    w.write_all(&line)?;
                 }
             }
             Ok(())

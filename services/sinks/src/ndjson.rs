@@ -24,6 +24,8 @@ struct Rotating {
     limit: u64,
     seq: u64,
     current: Option<(BufWriter<File>, PathBuf, u64)>,
+    /// Reusable buffer of one serialized row (no allocation per row).
+    line: Vec<u8>,
 }
 
 impl Rotating {
@@ -44,7 +46,7 @@ impl Rotating {
                 }
             }
         }
-        Ok(Rotating { dir: dir.to_path_buf(), stem, limit, seq, current: None })
+        Ok(Rotating { dir: dir.to_path_buf(), stem, limit, seq, current: None, line: Vec::new() })
     }
 
     fn write_all<T: Serialize>(&mut self, rows: &[T]) -> std::io::Result<()> {
@@ -56,10 +58,12 @@ impl Rotating {
                 self.current = Some((BufWriter::new(f), path, 0));
             }
             let (w, _, size) = self.current.as_mut().expect("opened above");
-            let line = serde_json::to_vec(r).map_err(std::io::Error::other)?;
-            w.write_all(&line)?;
-            w.write_all(b"\n")?;
-            *size += line.len() as u64 + 1;
+            let line = &mut self.line;
+            line.clear();
+            serde_json::to_writer(&mut *line, r).map_err(std::io::Error::other)?;
+            line.push(b'\n');
+            w.write_all(line)?;
+            *size += line.len() as u64;
             if *size >= self.limit {
                 self.seal()?;
             }

@@ -25,12 +25,14 @@ const META_STATS: &str = "stats";
 const META_SNAPSHOT: &str = "snapshot";
 const META_SOURCE: &str = "source";
 
-/// One cached user: the encoded journey record (the same bytes sled holds,
-/// so memory is counted exactly and spilling needs no re-encoding).
+/// One cached user: the decoded journey, so a touch changes it in place
+/// and it is encoded once per commit (only when changed), not per event.
 #[derive(Debug, Clone)]
 struct Cached {
-    /// Encoded journey (version, wake, body); `None`: no open journey.
-    record: Option<Box<[u8]>>,
+    /// The open journey; `None`: no open journey.
+    journey: Option<Journey>,
+    /// Estimated heap bytes of `journey` (see [`journey_bytes`]).
+    size: usize,
     wake: Option<i64>,
     persisted_wake: Option<i64>,
     persisted_exists: bool,
@@ -40,14 +42,43 @@ struct Cached {
     last_used: u64,
 }
 
-/// Bytes of one cache entry besides its record: the map slot (key and
-/// [`Cached`]), the hash table's control byte and spare capacity, the
-/// allocator's header of the record, and the wake index entry.
+/// Bytes of one cache entry besides its journey: the map slot (key and
+/// [`Cached`]), the hash table's control byte and spare capacity, and the
+/// wake index entry.
 const ENTRY_OVERHEAD: usize = 256;
+
+/// Allocator bookkeeping per heap block (rounding and header), an estimate.
+const ALLOC_OVERHEAD: usize = 16;
+
+fn string_bytes(s: &str) -> usize {
+    if s.is_empty() {
+        0
+    } else {
+        s.len() + ALLOC_OVERHEAD
+    }
+}
+
+/// Estimated heap bytes of a decoded journey: its vectors' slots and every
+/// string it owns, each with [`ALLOC_OVERHEAD`].
+fn journey_bytes(j: &Journey) -> usize {
+    let touches: usize = j
+        .touches
+        .iter()
+        .map(|t| string_bytes(&t.event_id) + string_bytes(&t.channel) + t.campaign.as_deref().map_or(0, string_bytes))
+        .sum();
+    let pending: usize = j
+        .pending
+        .iter()
+        .map(|c| string_bytes(&c.event_id) + string_bytes(&c.goal) + c.currency.as_deref().map_or(0, string_bytes))
+        .sum();
+    let slots = j.touches.capacity() * std::mem::size_of::<apportion_engine::Touch>()
+        + j.pending.capacity() * std::mem::size_of::<apportion_engine::Conversion>();
+    touches + pending + slots + 2 * ALLOC_OVERHEAD
+}
 
 impl Cached {
     fn bytes(&self) -> usize {
-        ENTRY_OVERHEAD + self.record.as_ref().map_or(0, |r| r.len())
+        ENTRY_OVERHEAD + self.size
     }
 }
 
@@ -57,8 +88,9 @@ impl Cached {
 /// [`PartitionStore::stage_offset`] / [`PartitionStore::stage_meta`]) in one
 /// atomic sled batch.
 ///
-/// Memory: cached journeys are kept encoded and counted against the byte
-/// budget; above it, the least recently used entries are evicted (after
+/// Memory: cached journeys are kept decoded (an event changes its journey
+/// in place; a changed journey is encoded once, at the next commit) and
+/// their estimated heap size is counted against the byte budget; above it, the least recently used entries are evicted (after
 /// [`PartitionStore::commit`], or written to sled first by
 /// [`PartitionStore::spill_if_over_budget`]) until a quarter of the budget
 /// is free again. sled's own memory grows with the number of records it
@@ -127,7 +159,7 @@ impl PartitionStore {
     pub fn open_journeys(&self) -> u64 {
         let mut n = self.open_journeys as i64;
         for c in self.cache.values().filter(|c| c.dirty) {
-            match (c.persisted_exists, c.record.is_some()) {
+            match (c.persisted_exists, c.journey.is_some()) {
                 (false, true) => n += 1,
                 (true, false) => n -= 1,
                 _ => {}
@@ -136,7 +168,8 @@ impl PartitionStore {
         n.max(0) as u64
     }
 
-    /// Bytes held by cached journeys (records plus a fixed per-entry overhead).
+    /// Bytes held by cached journeys (their estimated heap size plus a fixed
+    /// per-entry overhead).
     pub fn cached_bytes(&self) -> usize {
         self.bytes
     }
@@ -154,16 +187,24 @@ impl PartitionStore {
             // Nothing persisted yet: no need to ask sled (the common case
             // of a replay whose journeys fit in memory).
             let stored = if self.open_journeys == 0 { None } else { self.tree.get(jkey(key))? };
-            let (record, wake) = match stored {
+            let (journey, wake) = match stored {
                 Some(v) => {
-                    let wake = decode_journey(&v)?.wake;
-                    (Some(v.to_vec().into_boxed_slice()), wake)
+                    let stored = decode_journey(&v)?;
+                    (Some(stored.journey), stored.wake)
                 }
                 None => (None, None),
             };
-            let exists = record.is_some();
-            let c =
-                Cached { record, wake, persisted_wake: wake, persisted_exists: exists, dirty: false, last_used: clock };
+            let exists = journey.is_some();
+            let size = journey.as_ref().map_or(0, journey_bytes);
+            let c = Cached {
+                journey,
+                size,
+                wake,
+                persisted_wake: wake,
+                persisted_exists: exists,
+                dirty: false,
+                last_used: clock,
+            };
             self.bytes += c.bytes();
             self.cache.insert(*key, c);
         }
@@ -333,9 +374,9 @@ impl PartitionStore {
         if let Some(w) = c.persisted_wake {
             batch.remove(wkey(w, key));
         }
-        match &c.record {
-            Some(r) => {
-                batch.insert(jkey(key), &r[..]);
+        match &c.journey {
+            Some(j) => {
+                batch.insert(jkey(key), encode_journey(c.wake, j));
                 if let Some(w) = c.wake {
                     batch.insert(wkey(w, key), &[][..]);
                     // A wake the index scan has already passed must be seen
@@ -358,7 +399,7 @@ impl PartitionStore {
         }
         c.dirty = false;
         c.persisted_wake = c.wake;
-        c.persisted_exists = c.record.is_some();
+        c.persisted_exists = c.journey.is_some();
         delta
     }
 
@@ -401,7 +442,7 @@ impl PartitionStore {
         self.pending_seen.clear();
         self.pending_wake.clear();
         for key in &dirty {
-            if self.cache.get(key).is_some_and(|c| c.record.is_none()) {
+            if self.cache.get(key).is_some_and(|c| c.journey.is_none()) {
                 self.remove_entry(key);
             }
         }
@@ -502,10 +543,12 @@ impl JourneyStore for PartitionStore {
     type Error = StoreError;
 
     fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
-        match &self.entry(key)?.record {
-            Some(r) => Ok(Some(decode_journey(r)?.journey)),
-            None => Ok(None),
-        }
+        Ok(self.entry(key)?.journey.clone())
+    }
+
+    fn take(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
+        // The entry keeps its wake and size until `save` puts the journey back.
+        Ok(self.entry(key)?.journey.take())
     }
 
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), StoreError> {
@@ -528,10 +571,11 @@ impl JourneyStore for PartitionStore {
         if let Some(w) = wake {
             self.pending_wake.insert((w, *key));
         }
-        let record = present.then(|| encode_journey(wake, &journey).into_boxed_slice());
+        let size = if present { journey_bytes(&journey) } else { 0 };
         let c = self.cache.get_mut(key).expect("entry loaded");
         let old_bytes = c.bytes();
-        c.record = record;
+        c.journey = present.then_some(journey);
+        c.size = size;
         c.wake = wake;
         c.dirty = true;
         let new_bytes = c.bytes();
@@ -586,7 +630,7 @@ impl JourneyStore for PartitionStore {
         // Persisted keys plus cached ones; a key whose cached state is
         // "removed" may still be listed and loads as None.
         let mut out: std::collections::BTreeSet<UserKey> =
-            self.cache.iter().filter(|(_, c)| c.record.is_some()).map(|(k, _)| *k).collect();
+            self.cache.iter().filter(|(_, c)| c.journey.is_some()).map(|(k, _)| *k).collect();
         for item in self.tree.scan_prefix([J]) {
             let (k, _) = item?;
             if let Ok(a) = k[1..].try_into() {
