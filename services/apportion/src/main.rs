@@ -21,6 +21,12 @@ use clap::{Args, Parser, Subcommand};
 
 use cmd::{apply_flags, load_config, pseudonymizer, ModelFlags};
 
+/// mimalloc instead of the system allocator: the per-event path still
+/// allocates (owned strings of parsed events, output rows), and glibc's
+/// malloc and free showed up as 12 to 25 % of the profiles (load/RESULTS.md).
+#[global_allocator]
+static GLOBAL: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 /// Conversion credit you own: multi-touch attribution on your own event stream.
 #[derive(Parser, Debug)]
 #[command(name = "apportion", version, about, propagate_version = true)]
