@@ -94,8 +94,12 @@ pub struct Config {
     pub refit_interval: Period,
     /// Streaming: how long event ids are remembered for duplicate detection (event time).
     pub dedupe_horizon: Period,
-    /// Streaming: largest number of events in one processing batch.
+    /// Streaming: number of events in one processing batch when input is
+    /// light (the batch limit starts here and returns here).
     pub batch_size: usize,
+    /// Streaming: the batch limit doubles while batches come back full (a
+    /// backlog) up to this many events, to amortize commits.
+    pub max_batch_size: usize,
     /// Streaming: shutdown grace period.
     pub shutdown_grace: Period,
     /// Admin HTTP listener.
@@ -199,6 +203,7 @@ impl Default for Config {
             refit_interval: Period(15 * 60_000),
             dedupe_horizon: Period::days(7),
             batch_size: 5000,
+            max_batch_size: 50_000,
             shutdown_grace: Period::seconds(30),
             admin: AdminConfig::default(),
             embedded: EmbeddedConfig::default(),
@@ -293,6 +298,13 @@ impl Config {
         }
         if self.batch_size == 0 {
             bail!("batch_size must be at least 1");
+        }
+        if self.max_batch_size < self.batch_size {
+            bail!(
+                "max_batch_size ({}) is smaller than batch_size ({}): raise max_batch_size or lower batch_size",
+                self.max_batch_size,
+                self.batch_size
+            );
         }
         if let Some(k) = &self.kafka {
             if k.input_topics.is_empty() {
@@ -557,6 +569,8 @@ mod tests {
         assert!(e.contains("magic"), "{e}");
         let e = Config::load(None, vec![("APPORTION_MODELS".into(), "linear,linear".into())]).unwrap_err().to_string();
         assert!(e.contains("listed twice"), "{e}");
+        let e = Config::load(None, vec![("APPORTION_BATCH_SIZE".into(), "60000".into())]).unwrap_err().to_string();
+        assert!(e.contains("max_batch_size (50000) is smaller than batch_size (60000)"), "{e}");
         for key in ["acks", "enable.idempotence", "enable.auto.offset.store", "isolation.level", "group.id"] {
             std::fs::write(&f, format!("[kafka]\n[kafka.properties]\n\"{key}\" = \"x\"\n")).unwrap();
             let e = Config::load(Some(&f), vec![]).unwrap_err().to_string();

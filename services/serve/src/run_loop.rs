@@ -135,6 +135,42 @@ pub fn write_sinks(
     Ok(Written::Done { stalled })
 }
 
+/// The number of events asked of the source for the next batch: it starts
+/// at `batch_size`, doubles after a batch that came back full (the source
+/// has a backlog: bigger batches amortize the store commit, the sinks'
+/// flush and the offset commit), and halves back towards `batch_size` after
+/// a batch that came back less than a quarter full (light input: small
+/// batches keep latency low). Batch boundaries never change output
+/// (docs/contract.md, "Determinism").
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct BatchLimit {
+    min: usize,
+    max: usize,
+    current: usize,
+}
+
+impl BatchLimit {
+    /// A limit between `min` and `max` (both at least 1), starting at `min`.
+    pub fn new(min: usize, max: usize) -> Self {
+        let min = min.max(1);
+        BatchLimit { min, max: max.max(min), current: min }
+    }
+
+    /// The current limit.
+    pub fn get(&self) -> usize {
+        self.current
+    }
+
+    /// Adjusts the limit after a batch of `got` events.
+    pub fn after(&mut self, got: usize) {
+        if got >= self.current {
+            self.current = self.current.saturating_mul(2).min(self.max);
+        } else if got < self.current / 4 {
+            self.current = (self.current / 2).max(self.min);
+        }
+    }
+}
+
 /// The processing loop. Returns when `stop` is set (after finishing the
 /// current batch), when a finite source is exhausted (after closing every
 /// journey), or on a permanent error.
@@ -146,15 +182,20 @@ pub fn run_loop(
     metrics: Metrics,
     shared: Arc<Mutex<Shared>>,
 ) -> Result<()> {
-    let batch_size = pipeline.config().batch_size;
+    let mut limit = BatchLimit::new(pipeline.config().batch_size, pipeline.config().max_batch_size);
     let max_ready_lag = pipeline.config().admin.max_ready_lag;
     let mut last_lag = Instant::now() - Duration::from_secs(60);
     publish_models(&pipeline, &shared);
     let result = (|| -> Result<()> {
         while !stop.load(Ordering::SeqCst) {
-            let batch = source.poll(&mut pipeline, batch_size, Duration::from_millis(200))?;
+            let batch = source.poll(&mut pipeline, limit.get(), Duration::from_millis(200))?;
             let started = Instant::now();
             let had_input = !batch.is_empty();
+            let events: usize = batch.iter().map(|(_, m)| m.len()).sum();
+            limit.after(events);
+            if had_input {
+                metrics.batch_events.observe(events as f64);
+            }
             let mut out = OutputBatch::default();
             let mut statuses = Vec::with_capacity(batch.len());
             for (id, msgs) in &batch {
@@ -249,4 +290,38 @@ fn update_disk(pipeline: &Pipeline, metrics: &Metrics) {
 /// Free bytes on the filesystem holding `dir`.
 fn fs_available(dir: &std::path::Path) -> Result<u64> {
     Ok(fs2::available_space(dir)?)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::BatchLimit;
+
+    #[test]
+    fn batch_limit_grows_under_a_backlog_and_returns_when_input_is_light() {
+        let mut l = BatchLimit::new(5000, 50_000);
+        assert_eq!(l.get(), 5000);
+        // Full batches: 5000 -> 10000 -> 20000 -> 40000 -> 50000 (capped).
+        for want in [10_000, 20_000, 40_000, 50_000, 50_000] {
+            l.after(l.get());
+            assert_eq!(l.get(), want);
+        }
+        // A batch between a quarter and full keeps the limit.
+        l.after(20_000);
+        assert_eq!(l.get(), 50_000);
+        // Light input halves it back, never below batch_size.
+        for want in [25_000, 12_500, 6_250, 5000, 5000] {
+            l.after(10);
+            assert_eq!(l.get(), want);
+        }
+    }
+
+    #[test]
+    fn batch_limit_with_equal_bounds_is_fixed() {
+        let mut l = BatchLimit::new(7, 7);
+        l.after(7);
+        assert_eq!(l.get(), 7);
+        l.after(0);
+        assert_eq!(l.get(), 7);
+        assert_eq!(BatchLimit::new(0, 0).get(), 1);
+    }
 }
