@@ -19,8 +19,10 @@
 #     last_touch + linear as SQL (load/bench/duckdb_credit.py) over the same input,
 #     timed as a whole process. load/bench/compare_totals.py checks that the
 #     (model, channel) totals of (ii) and DuckDB agree to 1e-6 relative (and that
-#     no row differs). Ratio = DuckDB wall time / replay wall time: how many
-#     times faster replay is (> 1: replay is faster).
+#     no row differs). DuckDB runs twice: with its default threads (one per core)
+#     and with one thread, as replay credits on one thread. Ratio = DuckDB wall
+#     time / replay wall time: how many times faster replay is (> 1: replay is
+#     faster).
 #  b. Kafka (dev broker of deploy/dev/kafka.sh; APPORTION_TEST_KAFKA, else the
 #     broker `kafka.sh env` reports, else skipped): a fresh 4-partition topic
 #     filled with the same lines (key = user_id, one event per message);
@@ -89,8 +91,8 @@ say() { printf '== %s\n' "$*" >&2; }
 tv_wall() { grep 'Elapsed (wall clock)' "$1" | awk '{print $NF}' | awk -F: '{ if (NF==3) print $1*3600+$2*60+$3; else print $1*60+$2 }'; }
 tv_rss() { grep 'Maximum resident' "$1" | awk '{print $NF}'; }
 tv_status() { grep 'Exit status' "$1" | awk '{print $NF}'; }
-# a / b with 2 decimals, "-" when either is missing or b is 0
-ratio() { awk -v a="$1" -v b="$2" 'BEGIN { if (a == "" || b == "" || a == "-" || b == "-" || b + 0 == 0) print "-"; else printf "%.2f", a / b }'; }
+# a / b to 3 significant digits, "-" when either is missing or b is 0
+ratio() { awk -v a="$1" -v b="$2" 'BEGIN { if (a == "" || b == "" || a == "-" || b == "-" || b + 0 == 0) print "-"; else printf "%.3g", a / b }'; }
 eps() { awk -v e="$1" -v w="$2" 'BEGIN { if (w + 0 == 0) print "-"; else printf "%.0f", e / w }'; }
 # row WHAT WALL EPS RSS REFERENCE REF_WALL RATIO
 row() {
@@ -129,6 +131,8 @@ for r in "${runs[@]}"; do
 done
 say "DuckDB: last_touch,linear as SQL"
 timed "duckdb-$events" python3 "$root/load/bench/duckdb_credit.py" "$input" "$work/duckdb.ndjson"
+say "DuckDB again with one thread (replay credits on one thread)"
+timed "duckdb-1thread-$events" python3 "$root/load/bench/duckdb_credit.py" --threads 1 "$input" "$work/duckdb-1thread.ndjson"
 say "totals check: replay (last_touch,linear) vs DuckDB"
 check_log="$logs/totals-$events.tsv"
 if ! python3 "$root/load/bench/compare_totals.py" "$work/replay-lt_linear.ndjson" "$work/duckdb.ndjson" > "$check_log"; then
@@ -142,20 +146,26 @@ for r in "${runs[@]}"; do
   tag="${r%%:*}"
   replay_rows+=("$tag:$(wc -l < "$work/replay-$tag.ndjson")")
 done
-rm -f "$work"/replay-*.ndjson "$work/duckdb.ndjson"
+cmp -s "$work/duckdb.ndjson" "$work/duckdb-1thread.ndjson" || echo "note: DuckDB's row order differs between 1 and N threads (the totals check used the N-thread output)" >&2
+rm -f "$work"/replay-*.ndjson "$work/duckdb.ndjson" "$work/duckdb-1thread.ndjson"
 
 d_wall="$(tv_wall "$logs/duckdb-$events.log")"
 for r in "${runs[@]}"; do
   tag="${r%%:*}"; models="${r#*:}"
   log="$logs/replay-$tag-$events.log"
   w="$(tv_wall "$log")"
-  row "replay $models" "$w" "$(eps "$lines" "$w")" "$(tv_rss "$log")" "duckdb last_touch,linear" "$d_wall" "$(ratio "$d_wall" "$w")"
+  row "replay $models" "$w" "$(eps "$lines" "$w")" "$(tv_rss "$log")" "duckdb last_touch,linear, $(nproc) threads" "$d_wall" "$(ratio "$d_wall" "$w")"
 done
-row "duckdb last_touch,linear (SQL)" "$d_wall" "$(eps "$lines" "$d_wall")" "$(tv_rss "$logs/duckdb-$events.log")" "-" "-" "-"
+d1_wall="$(tv_wall "$logs/duckdb-1thread-$events.log")"
+w="$(tv_wall "$logs/replay-lt_linear-$events.log")"
+row "replay last_touch,linear" "$w" "$(eps "$lines" "$w")" "$(tv_rss "$logs/replay-lt_linear-$events.log")" \
+  "duckdb last_touch,linear, 1 thread" "$d1_wall" "$(ratio "$d1_wall" "$w")"
+row "duckdb last_touch,linear (SQL, $(nproc) threads)" "$d_wall" "$(eps "$lines" "$d_wall")" "$(tv_rss "$logs/duckdb-$events.log")" "-" "-" "-"
+row "duckdb last_touch,linear (SQL, 1 thread)" "$d1_wall" "$(eps "$lines" "$d1_wall")" "$(tv_rss "$logs/duckdb-1thread-$events.log")" "-" "-" "-"
 
 # ---- b. serve vs ConsumerPerformance
 kafka_part() {
-  local kafka="${APPORTION_TEST_KAFKA:-}" t topic perf_log perf_rate perf_wall t0 t1 t2
+  local kafka="${APPORTION_TEST_KAFKA:-}" topic perf_log perf_rate perf_wall t0 t1 t2
   if [ -z "$kafka" ]; then
     if [ "$quick" = 1 ]; then say "Kafka part skipped (--quick without APPORTION_TEST_KAFKA)"; return 0; fi
     kafka="$(bash "$root/deploy/dev/kafka.sh" env 2>/dev/null | sed -n 's/^export APPORTION_TEST_KAFKA=//p')" || true

@@ -26,6 +26,7 @@ comparison is per conversion and per channel). Only the work from reading the
 input to writing the output is in this process, so timing the whole process
 (/usr/bin/time -v) is fair to both sides.
 """
+import argparse
 import sys
 
 import duckdb
@@ -34,15 +35,12 @@ LOOKBACK_MS = 30 * 86_400_000
 
 
 def main(argv):
-    args = [a for a in argv if not a.startswith("--")]
-    threads = None
-    if "--threads" in argv:
-        threads = int(argv[argv.index("--threads") + 1])
-        args.remove(str(threads))
-    if len(args) != 2:
-        print(__doc__.strip().splitlines()[2], file=sys.stderr)
-        return 2
-    src, out = args
+    ap = argparse.ArgumentParser(description="last_touch and linear credit as DuckDB SQL")
+    ap.add_argument("input")
+    ap.add_argument("output")
+    ap.add_argument("--threads", type=int, help="DuckDB worker threads (default: DuckDB's, one per core)")
+    a = ap.parse_args(argv)
+    src, out, threads = a.input, a.output, a.threads
     con = duckdb.connect()
     if threads:
         con.execute(f"SET threads = {threads}")
