@@ -43,6 +43,9 @@ def main(argv):
         """
     ).fetchall()
     bad = 0
+    if not totals:
+        print("totals check: FAILED (no credit rows of these models on either side)")
+        return 1
 
     def close(x, y):
         if x is None or y is None:
