@@ -51,6 +51,13 @@ cargo clippy --workspace --all-targets --locked -- -D warnings 2>&1
 echo "== cargo test"
 cargo test --workspace --release --locked --no-fail-fast 2>&1
 
+echo "== benchmark harness smoke test (load/bench.sh --quick; no speed assertions)"
+cargo build --release --locked -p apportion -p apportion-load 2>&1
+bench_tmp="$(mktemp -d)"
+APPORTION_BIN="$root/target/release/apportion" APPORTION_LOAD_BIN="$root/target/release/apportion-load" \
+  bash load/bench.sh --quick "$bench_tmp" || { rm -rf "$bench_tmp"; exit 1; }
+rm -rf "$bench_tmp"
+
 if [[ -z "${SKIP_SERVERS:-}" ]]; then
   echo "== deploy checks"
   bash deploy/check.sh
