@@ -25,13 +25,39 @@ const META_STATS: &str = "stats";
 const META_SNAPSHOT: &str = "snapshot";
 const META_SOURCE: &str = "source";
 
-/// One cached user: the decoded journey, so a touch changes it in place
-/// and it is encoded once per commit (only when changed), not per event.
+/// A cached journey: decoded while in use, so a touch changes it in place
+/// and it is encoded once per commit (only when changed), not per event;
+/// encoded (the record sled holds, about half the size) once it has gone
+/// cold and the cache needs room, or when it was read from sled.
+#[derive(Debug, Clone)]
+enum Held {
+    Decoded(Journey),
+    Encoded(Box<[u8]>),
+}
+
+impl Held {
+    fn size(&self) -> usize {
+        match self {
+            Held::Decoded(j) => journey_bytes(j),
+            // ENTRY_OVERHEAD counts the record's allocation header.
+            Held::Encoded(b) => b.len(),
+        }
+    }
+
+    fn into_journey(self) -> Result<Journey, StoreError> {
+        match self {
+            Held::Decoded(j) => Ok(j),
+            Held::Encoded(b) => Ok(decode_journey(&b)?.journey),
+        }
+    }
+}
+
+/// One cached user.
 #[derive(Debug, Clone)]
 struct Cached {
     /// The open journey; `None`: no open journey.
-    journey: Option<Journey>,
-    /// Estimated heap bytes of `journey` (see [`journey_bytes`]).
+    journey: Option<Held>,
+    /// Estimated heap bytes of `journey` (see [`Held::size`]).
     size: usize,
     wake: Option<i64>,
     persisted_wake: Option<i64>,
@@ -88,12 +114,15 @@ impl Cached {
 /// [`PartitionStore::stage_offset`] / [`PartitionStore::stage_meta`]) in one
 /// atomic sled batch.
 ///
-/// Memory: cached journeys are kept decoded (an event changes its journey
-/// in place; a changed journey is encoded once, at the next commit) and
-/// their estimated heap size is counted against the byte budget; above it, the least recently used entries are evicted (after
+/// Memory: cached journeys are kept decoded while in use (an event changes
+/// its journey in place; a changed journey is encoded once, at the next
+/// commit) and their estimated heap size is counted against the byte
+/// budget; above it, the least recently used are first encoded in memory
+/// (a cold journey costs its record's size), and if that is not enough,
+/// the least recently used entries are evicted (after
 /// [`PartitionStore::commit`], or written to sled first by
-/// [`PartitionStore::spill_if_over_budget`]) until a quarter of the budget
-/// is free again. sled's own memory grows with the number of records it
+/// [`PartitionStore::spill_if_over_budget`]), until a quarter of the
+/// budget is free again. sled's own memory grows with the number of records it
 /// holds, so only the overflow goes there.
 pub struct PartitionStore {
     tree: sled::Tree,
@@ -189,13 +218,13 @@ impl PartitionStore {
             let stored = if self.open_journeys == 0 { None } else { self.tree.get(jkey(key))? };
             let (journey, wake) = match stored {
                 Some(v) => {
-                    let stored = decode_journey(&v)?;
-                    (Some(stored.journey), stored.wake)
+                    let wake = decode_journey(&v)?.wake;
+                    (Some(Held::Encoded(v.to_vec().into_boxed_slice())), wake)
                 }
                 None => (None, None),
             };
             let exists = journey.is_some();
-            let size = journey.as_ref().map_or(0, journey_bytes);
+            let size = journey.as_ref().map_or(0, Held::size);
             let c = Cached {
                 journey,
                 size,
@@ -375,8 +404,11 @@ impl PartitionStore {
             batch.remove(wkey(w, key));
         }
         match &c.journey {
-            Some(j) => {
-                batch.insert(jkey(key), encode_journey(c.wake, j));
+            Some(held) => {
+                match held {
+                    Held::Decoded(j) => batch.insert(jkey(key), encode_journey(c.wake, j)),
+                    Held::Encoded(b) => batch.insert(jkey(key), &b[..]),
+                }
                 if let Some(w) = c.wake {
                     batch.insert(wkey(w, key), &[][..]);
                     // A wake the index scan has already passed must be seen
@@ -453,13 +485,34 @@ impl PartitionStore {
         Ok(())
     }
 
-    /// Evicts least recently used entries until a quarter of the budget is
-    /// free, writing those with uncommitted changes to sled first (in
-    /// batches of `chunk` entries; not atomic as a whole).
+    /// Frees memory until a quarter of the budget is free: encodes the least
+    /// recently used decoded journeys in memory, then, if that is not
+    /// enough, evicts least recently used entries, writing those with
+    /// uncommitted changes to sled first (in batches of `chunk` entries; not
+    /// atomic as a whole).
     fn evict_lru(&mut self, chunk: usize) -> Result<(), StoreError> {
         let target = self.budget - self.budget / 4;
         let mut order: Vec<(u64, UserKey)> = self.cache.iter().map(|(k, c)| (c.last_used, *k)).collect();
         order.sort_unstable();
+        // First, encode decoded journeys in memory, least recently used
+        // first (about half the size, nothing written to sled).
+        for (_, key) in &order {
+            if self.bytes <= target {
+                return Ok(());
+            }
+            let c = self.cache.get_mut(key).expect("listed above");
+            if let Some(Held::Decoded(j)) = &c.journey {
+                let held = Held::Encoded(encode_journey(c.wake, j).into_boxed_slice());
+                let size = held.size();
+                self.bytes = self.bytes - c.size + size;
+                c.size = size;
+                c.journey = Some(held);
+            }
+        }
+        if self.bytes <= self.budget {
+            // Everything is encoded and fits: nothing needs to leave memory.
+            return Ok(());
+        }
         let mut victims = Vec::new();
         let mut left = self.bytes;
         for (_, key) in order {
@@ -495,8 +548,8 @@ impl PartitionStore {
 
     /// For `replay`, which needs no durability between events: journeys stay
     /// in memory while they fit the byte budget; above it, the least
-    /// recently used ones are written to sled and evicted. Returns true if
-    /// anything was evicted.
+    /// recently used ones are encoded in memory, and if that is not enough,
+    /// written to sled and evicted. Returns true if it was over budget.
     pub fn spill_if_over_budget(&mut self) -> Result<bool, StoreError> {
         if self.bytes > self.budget {
             // Smaller sled batches keep sled's own memory small.
@@ -543,12 +596,12 @@ impl JourneyStore for PartitionStore {
     type Error = StoreError;
 
     fn load(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
-        Ok(self.entry(key)?.journey.clone())
+        self.entry(key)?.journey.clone().map(Held::into_journey).transpose()
     }
 
     fn take(&mut self, key: &UserKey) -> Result<Option<Journey>, StoreError> {
         // The entry keeps its wake and size until `save` puts the journey back.
-        Ok(self.entry(key)?.journey.take())
+        self.entry(key)?.journey.take().map(Held::into_journey).transpose()
     }
 
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), StoreError> {
@@ -571,10 +624,11 @@ impl JourneyStore for PartitionStore {
         if let Some(w) = wake {
             self.pending_wake.insert((w, *key));
         }
-        let size = if present { journey_bytes(&journey) } else { 0 };
+        let held = present.then_some(Held::Decoded(journey));
+        let size = held.as_ref().map_or(0, Held::size);
         let c = self.cache.get_mut(key).expect("entry loaded");
         let old_bytes = c.bytes();
-        c.journey = present.then_some(journey);
+        c.journey = held;
         c.size = size;
         c.wake = wake;
         c.dirty = true;
