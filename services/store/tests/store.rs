@@ -203,3 +203,47 @@ fn reopening_right_after_a_drop_waits_for_the_lock() {
         p.commit(true).unwrap();
     }
 }
+
+/// Over budget, journeys that fit once encoded stay in memory: the cache
+/// encodes the least recently used ones instead of writing them to sled
+/// (derived from the store's documented behaviour, PartitionStore docs).
+#[test]
+fn over_budget_journeys_that_fit_encoded_are_not_spilled() {
+    let store = Store::temporary().unwrap();
+    let mut journeys = Vec::new();
+    for u in 0..200u8 {
+        let mut j = Journey::default();
+        for t in 0..3i64 {
+            j.add_touch(apportion_engine::Touch {
+                event_id: format!("event-{u}-{t}"),
+                ts: t * 1000,
+                seq: t as u64,
+                channel: "newsletter".into(),
+                campaign: Some("autumn-boots".into()),
+                interaction: apportion_engine::Interaction::Click,
+            });
+        }
+        journeys.push((UserKey([u; 32]), j));
+    }
+    let decoded = {
+        let mut p = store.partition("probe/0", 1 << 30).unwrap();
+        for (k, j) in &journeys {
+            p.save(k, j.clone(), Some(10_000)).unwrap();
+        }
+        p.cached_bytes()
+    };
+    // One byte short of holding every journey decoded.
+    let budget = decoded - 1;
+    let mut p = store.partition("t/0", budget).unwrap();
+    for (k, j) in &journeys {
+        p.save(k, j.clone(), Some(10_000)).unwrap();
+    }
+    assert!(p.cached_bytes() > budget);
+    assert!(p.spill_if_over_budget().unwrap());
+    assert_eq!(p.spilled(), 0, "nothing needed to go to sled");
+    assert!(p.cached_bytes() <= budget);
+    for (k, j) in &journeys {
+        assert_eq!(p.load(k).unwrap().as_ref(), Some(j));
+    }
+    assert_eq!(p.due(10_000).unwrap().len(), 200);
+}
