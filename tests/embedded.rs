@@ -207,7 +207,7 @@ fn kill_during_file_output_leaves_no_torn_line() {
     std::fs::write(
         &cfg,
         format!(
-            "data_dir = \"{}\"\nallowed_lateness = \"0s\"\nidle_timeout = \"1s\"\nbatch_size = 20\n[admin]\nlisten = \"127.0.0.1:{admin}\"\n[embedded]\nhttp_listen = \"\"\nwatch_file = \"{}\"\noutput_dir = \"{}\"\nrotate_bytes = 200000\n[log]\nformat = \"text\"\n",
+            "data_dir = \"{}\"\nallowed_lateness = \"0s\"\nidle_timeout = \"1s\"\nbatch_size = 20\nmax_batch_size = 20\n[admin]\nlisten = \"127.0.0.1:{admin}\"\n[embedded]\nhttp_listen = \"\"\nwatch_file = \"{}\"\noutput_dir = \"{}\"\nrotate_bytes = 200000\n[log]\nformat = \"text\"\n",
             dir.path().join("data").display(),
             input.display(),
             out.display()

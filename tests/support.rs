@@ -410,6 +410,8 @@ models = ["last_touch", "first_touch", "linear", "time_decay", "u_shaped"]
 allowed_lateness = "2s"
 idle_timeout = "1s"
 batch_size = 500
+# Fixed batches (tests replace "batch_size = 500", which changes both).
+max_batch_size = 500
 {extra}
 [admin]
 listen = "127.0.0.1:{admin}"
