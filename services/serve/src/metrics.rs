@@ -43,8 +43,8 @@ pub struct Metrics {
     pub latency: Histogram,
     /// apportion_batch_duration_seconds.
     pub batch_duration: Histogram,
-    /// apportion_batch_events.
-    pub batch_events: Histogram,
+    /// apportion_batch_limit_events.
+    pub batch_limit: IntGauge,
     /// apportion_watermark_lag_seconds{topic,partition}.
     pub watermark_lag: GaugeVec,
     /// apportion_consumer_lag_messages{topic,partition}.
@@ -112,15 +112,6 @@ impl Metrics {
         )
         .expect("valid metric");
         r.register(Box::new(batch_duration.clone())).expect("registered once");
-        let batch_events = Histogram::with_opts(
-            HistogramOpts::new(
-                "apportion_batch_events",
-                "Events in one input batch (the batch limit grows under a backlog, see max_batch_size).",
-            )
-            .buckets(vec![1.0, 10.0, 100.0, 1000.0, 5000.0, 10000.0, 20000.0, 50000.0, 100000.0]),
-        )
-        .expect("valid metric");
-        r.register(Box::new(batch_events.clone())).expect("registered once");
         let watermark_lag = fgauge_vec(
             "apportion_watermark_lag_seconds",
             "Processing time minus the partition's watermark.",
@@ -173,7 +164,10 @@ impl Metrics {
             ),
             latency,
             batch_duration,
-            batch_events,
+            batch_limit: gauge(
+                "apportion_batch_limit_events",
+                "Events asked of the source for the next batch (grows under a backlog up to max_batch_size).",
+            ),
             watermark_lag,
             consumer_lag,
             store_size: gauge("apportion_store_size_bytes", "Size of the sled store on disk."),
@@ -313,12 +307,6 @@ mod tests {
                 "apportion_batch_duration_seconds",
                 spec.lines()
                     .skip_while(|l| !l.contains("### `apportion_batch_duration_seconds`"))
-                    .find(|l| l.starts_with("- buckets:")),
-            ),
-            (
-                "apportion_batch_events",
-                spec.lines()
-                    .skip_while(|l| !l.contains("### `apportion_batch_events`"))
                     .find(|l| l.starts_with("- buckets:")),
             ),
         ] {

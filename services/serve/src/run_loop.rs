@@ -193,9 +193,7 @@ pub fn run_loop(
             let had_input = !batch.is_empty();
             let events: usize = batch.iter().map(|(_, m)| m.len()).sum();
             limit.after(events);
-            if had_input {
-                metrics.batch_events.observe(events as f64);
-            }
+            metrics.batch_limit.set(limit.get() as i64);
             let mut out = OutputBatch::default();
             let mut statuses = Vec::with_capacity(batch.len());
             for (id, msgs) in &batch {
