@@ -29,6 +29,7 @@ use apportion_engine::datadriven::PathStats;
 use apportion_engine::replay::two_pass::{self, Pass};
 use apportion_engine::replay::{effect_rows, FirstSeen};
 use apportion_engine::{Effect, Journey, JourneyEvent, JourneyStore, Outcome, Pseudonymizer};
+use apportion_sinks::ndjson::push_line;
 use apportion_store::{PartitionStore, Store, StoreError};
 
 use crate::config::Config;
@@ -362,8 +363,7 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
             let (rows, path) = effect_rows(e, models);
             line.clear();
             for r in &rows {
-                serde_json::to_writer(&mut line, r)?;
-                line.push(b'\n');
+                push_line(&mut line, r)?;
             }
             out.write_all(&line)?;
             summary.rows += rows.len() as u64;
@@ -371,8 +371,7 @@ pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summar
                 summary.paths += 1;
                 if let Some(w) = paths_out.as_mut() {
                     line.clear();
-                    serde_json::to_writer(&mut line, &p)?;
-                    line.push(b'\n');
+                    push_line(&mut line, &p)?;
                     w.write_all(&line)?;
                 }
             }

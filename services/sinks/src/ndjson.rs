@@ -18,6 +18,14 @@ use serde::Serialize;
 
 use crate::{OutputBatch, Sink, SinkError};
 
+/// Appends `row` to `buf` as one NDJSON line (JSON and a newline). Callers
+/// reuse `buf` and write it at once: serde_json alone makes many tiny writes.
+pub fn push_line<T: Serialize>(buf: &mut Vec<u8>, row: &T) -> serde_json::Result<()> {
+    serde_json::to_writer(&mut *buf, row)?;
+    buf.push(b'\n');
+    Ok(())
+}
+
 struct Rotating {
     dir: PathBuf,
     stem: &'static str,
@@ -58,12 +66,10 @@ impl Rotating {
                 self.current = Some((BufWriter::new(f), path, 0));
             }
             let (w, _, size) = self.current.as_mut().expect("opened above");
-            let line = &mut self.line;
-            line.clear();
-            serde_json::to_writer(&mut *line, r).map_err(std::io::Error::other)?;
-            line.push(b'\n');
-            w.write_all(line)?;
-            *size += line.len() as u64;
+            self.line.clear();
+            push_line(&mut self.line, r).map_err(std::io::Error::other)?;
+            w.write_all(&self.line)?;
+            *size += self.line.len() as u64;
             if *size >= self.limit {
                 self.seal()?;
             }

@@ -28,7 +28,7 @@ const META_SOURCE: &str = "source";
 /// A cached journey: decoded while in use, so a touch changes it in place
 /// and it is encoded once per commit (only when changed), not per event;
 /// encoded (the record sled holds, about half the size) once it has gone
-/// cold and the cache needs room, or when it was read from sled.
+/// cold and the cache needs room.
 #[derive(Debug, Clone)]
 enum Held {
     Decoded(Journey),
@@ -41,6 +41,14 @@ impl Held {
             Held::Decoded(j) => journey_bytes(j),
             // ENTRY_OVERHEAD counts the record's allocation header.
             Held::Encoded(b) => b.len(),
+        }
+    }
+
+    /// The record sled holds for this journey with wake time `wake`.
+    fn record(&self, wake: Option<i64>) -> std::borrow::Cow<'_, [u8]> {
+        match self {
+            Held::Decoded(j) => std::borrow::Cow::Owned(encode_journey(wake, j)),
+            Held::Encoded(b) => std::borrow::Cow::Borrowed(b),
         }
     }
 
@@ -216,10 +224,11 @@ impl PartitionStore {
             // Nothing persisted yet: no need to ask sled (the common case
             // of a replay whose journeys fit in memory).
             let stored = if self.open_journeys == 0 { None } else { self.tree.get(jkey(key))? };
+            // Decoded once: the caller is about to take or read it.
             let (journey, wake) = match stored {
                 Some(v) => {
-                    let wake = decode_journey(&v)?.wake;
-                    (Some(Held::Encoded(v.to_vec().into_boxed_slice())), wake)
+                    let stored = decode_journey(&v)?;
+                    (Some(Held::Decoded(stored.journey)), stored.wake)
                 }
                 None => (None, None),
             };
@@ -405,10 +414,7 @@ impl PartitionStore {
         }
         match &c.journey {
             Some(held) => {
-                match held {
-                    Held::Decoded(j) => batch.insert(jkey(key), encode_journey(c.wake, j)),
-                    Held::Encoded(b) => batch.insert(jkey(key), &b[..]),
-                }
+                batch.insert(jkey(key), &held.record(c.wake)[..]);
                 if let Some(w) = c.wake {
                     batch.insert(wkey(w, key), &[][..]);
                     // A wake the index scan has already passed must be seen
@@ -501,8 +507,8 @@ impl PartitionStore {
                 return Ok(());
             }
             let c = self.cache.get_mut(key).expect("listed above");
-            if let Some(Held::Decoded(j)) = &c.journey {
-                let held = Held::Encoded(encode_journey(c.wake, j).into_boxed_slice());
+            if let Some(held @ Held::Decoded(_)) = &c.journey {
+                let held = Held::Encoded(held.record(c.wake).into_owned().into_boxed_slice());
                 let size = held.size();
                 self.bytes = self.bytes - c.size + size;
                 c.size = size;
