@@ -294,6 +294,8 @@ fn fs_available(dir: &std::path::Path) -> Result<u64> {
 mod tests {
     use super::BatchLimit;
 
+    // Check values derived by hand from BatchLimit's documented rule
+    // (double after a full batch, halve after one under a quarter full).
     #[test]
     fn batch_limit_grows_under_a_backlog_and_returns_when_input_is_light() {
         let mut l = BatchLimit::new(5000, 50_000);
