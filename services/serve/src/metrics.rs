@@ -31,6 +31,8 @@ pub struct Metrics {
     pub events_late: IntCounterVec,
     /// apportion_journeys_open.
     pub journeys_open: IntGauge,
+    /// apportion_dedupe_remembered_ids.
+    pub dedupe_ids: IntGauge,
     /// apportion_journeys_closed_total{reason}.
     pub journeys_closed: IntCounterVec,
     /// apportion_credit_rows_total{model}.
@@ -148,6 +150,10 @@ impl Metrics {
                 &["action"],
             ),
             journeys_open: gauge("apportion_journeys_open", "Open journeys held in the store."),
+            dedupe_ids: gauge(
+                "apportion_dedupe_remembered_ids",
+                "Event ids held in memory for duplicate detection (about 40 bytes each).",
+            ),
             journeys_closed: counter(r, "apportion_journeys_closed_total", "Journeys closed, by reason.", &["reason"]),
             credit_rows: counter(r, "apportion_credit_rows_total", "Credit rows emitted, by model.", &["model"]),
             conversions: counter(

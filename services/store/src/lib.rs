@@ -10,8 +10,7 @@
 //! | --- | --- | --- |
 //! | `j` | user key (32 bytes) | versioned journey record |
 //! | `w` | wake time (8 bytes, order-preserving) + user key | empty: the wake index |
-//! | `e` | event-id digest (16 bytes) | event time: duplicate detection |
-//! | `f` | event time + digest | empty: age index of `e` for pruning |
+//! | `s` | largest "as of" time (8 bytes, order-preserving) + sequence (8 bytes) | event-id digests remembered for duplicate detection, one record per commit (format in `seen.rs`) |
 //! | `o` | source name | input offset (8 bytes) |
 //! | `m` | `clock` / `stats` / `snapshot` / `source` | the partition's clock, path statistics, active model snapshot and source position (formats in `codec.rs`) |
 //! | `d` | offset + kind | decisions that depended on processing time (`codec::Decision`) |
@@ -30,6 +29,7 @@
 
 mod codec;
 mod partition;
+mod seen;
 
 pub use codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats, Clock,

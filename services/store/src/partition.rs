@@ -11,10 +11,13 @@ use crate::codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats,
     from_ordered_i64, ordered_i64, Clock, Decision,
 };
+use crate::seen::Seen;
 use crate::StoreError;
 
 const J: u8 = b'j';
 const W: u8 = b'w';
+/// Per-event duplicate-detection keys that earlier builds wrote (the
+/// digest, and an age index of it), migrated to [`Seen`] records on open.
 const E: u8 = b'e';
 const F: u8 = b'f';
 const O: u8 = b'o';
@@ -137,7 +140,7 @@ pub struct PartitionStore {
     db: sled::Db,
     cache: HashMap<UserKey, Cached>,
     pending_wake: BTreeSet<(i64, UserKey)>,
-    pending_seen: HashMap<u128, i64>,
+    seen: Seen,
     staged: Vec<(Vec<u8>, Option<Vec<u8>>)>,
     bytes: usize,
     budget: usize,
@@ -174,12 +177,14 @@ fn wkey(wake: i64, k: &UserKey) -> Vec<u8> {
 impl PartitionStore {
     pub(crate) fn new(tree: sled::Tree, db: sled::Db, budget: usize) -> Result<Self, StoreError> {
         let open_journeys = tree.scan_prefix([J]).count() as u64;
+        migrate_seen_keys(&tree)?;
+        let seen = Seen::load(&tree)?;
         Ok(PartitionStore {
             tree,
             db,
             cache: HashMap::new(),
             pending_wake: BTreeSet::new(),
-            pending_seen: HashMap::new(),
+            seen,
             staged: Vec::new(),
             bytes: 0,
             budget,
@@ -251,37 +256,27 @@ impl PartitionStore {
         Ok(c)
     }
 
-    /// Returns true if `digest` (of an event id) was not seen before, and
-    /// marks it seen as of event time `ts` (written at the next commit).
-    pub fn mark_seen(&mut self, digest: u128, ts: i64) -> Result<bool, StoreError> {
-        if self.pending_seen.contains_key(&digest) {
-            return Ok(false);
-        }
-        let mut k = [0u8; 17];
-        k[0] = E;
-        k[1..].copy_from_slice(&digest.to_be_bytes());
-        if self.tree.contains_key(k)? {
-            return Ok(false);
-        }
-        self.pending_seen.insert(digest, ts);
-        Ok(true)
+    /// Returns true if `digest` (of an event id) is new: not remembered as
+    /// of `forget_before` or later. A new digest is remembered as of `as_of`
+    /// (written at the next commit, in bulk). Callers pass the later of the
+    /// event time and the watermark as `as_of`, and the watermark minus the
+    /// duplicate-detection horizon as `forget_before`.
+    pub fn mark_seen(&mut self, digest: u128, as_of: i64, forget_before: i64) -> bool {
+        !self.seen.check_and_mark(digest, as_of, forget_before)
     }
 
-    /// Forgets event ids seen with event time before `before` (bounded
-    /// duplicate-detection horizon). Returns how many were removed.
+    /// Event ids held in memory for duplicate detection.
+    pub fn remembered_ids(&self) -> usize {
+        self.seen.len()
+    }
+
+    /// Frees remembered event ids that can no longer match (remembered as of
+    /// a time before `before`), in memory and in sled, once enough have
+    /// accumulated (it costs a pass over all of them). Returns how many were
+    /// freed. Never changes which ids count as duplicates.
     pub fn prune_seen(&mut self, before: i64) -> Result<usize, StoreError> {
-        let mut end = vec![F];
-        end.extend_from_slice(&ordered_i64(before));
         let mut batch = sled::Batch::default();
-        let mut n = 0;
-        for item in self.tree.range(vec![F]..end) {
-            let (k, _) = item?;
-            let mut e = vec![E];
-            e.extend_from_slice(&k[9..25]);
-            batch.remove(e);
-            batch.remove(k);
-            n += 1;
-        }
+        let n = self.seen.prune(before, &self.tree, &mut batch)?;
         self.tree.apply_batch(batch)?;
         Ok(n)
     }
@@ -456,16 +451,7 @@ impl PartitionStore {
         for key in &dirty {
             delta += self.persist_into(key, &mut batch);
         }
-        for (digest, ts) in &self.pending_seen {
-            let d = digest.to_be_bytes();
-            let mut e = vec![E];
-            e.extend_from_slice(&d);
-            batch.insert(e, &ordered_i64(*ts)[..]);
-            let mut f = vec![F];
-            f.extend_from_slice(&ordered_i64(*ts));
-            f.extend_from_slice(&d);
-            batch.insert(f, &[][..]);
-        }
+        self.seen.persist_into(&mut batch);
         for (k, v) in self.staged.drain(..) {
             match v {
                 Some(v) => batch.insert(k, v),
@@ -477,7 +463,6 @@ impl PartitionStore {
             self.db.flush()?;
         }
         self.open_journeys = (self.open_journeys as i64 + delta).max(0) as u64;
-        self.pending_seen.clear();
         self.pending_wake.clear();
         for key in &dirty {
             if self.cache.get(key).is_some_and(|c| c.journey.is_none()) {
@@ -564,6 +549,39 @@ impl PartitionStore {
         }
         Ok(false)
     }
+}
+
+/// Moves the per-event duplicate-detection keys that earlier builds wrote
+/// (`e` + digest -> event time, `f` + event time + digest) into one
+/// [`Seen`] record, in one atomic batch. Each id is remembered as of its
+/// event time, as those stores pruned them.
+fn migrate_seen_keys(tree: &sled::Tree) -> Result<(), StoreError> {
+    if tree.scan_prefix([E]).next().is_none() && tree.scan_prefix([F]).next().is_none() {
+        return Ok(());
+    }
+    let mut seen = Seen::load(tree)?;
+    let mut batch = sled::Batch::default();
+    for item in tree.scan_prefix([E]) {
+        let (k, v) = item?;
+        let digest = u128::from_be_bytes(
+            k[1..]
+                .try_into()
+                .map_err(|_| StoreError::Corrupt { prefix: 'e', detail: "digest is not 16 bytes".into() })?,
+        );
+        let ts = from_ordered_i64(
+            v.as_ref()
+                .get(..8)
+                .ok_or_else(|| StoreError::Corrupt { prefix: 'e', detail: "event time is not 8 bytes".into() })?,
+        );
+        seen.check_and_mark(digest, ts, i64::MIN);
+        batch.remove(k);
+    }
+    for item in tree.scan_prefix([F]) {
+        batch.remove(item?.0);
+    }
+    seen.persist_into(&mut batch);
+    tree.apply_batch(batch)?;
+    Ok(())
 }
 
 impl PartitionStore {
@@ -698,5 +716,38 @@ impl JourneyStore for PartitionStore {
             }
         }
         Ok(out.into_iter().collect())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A store that earlier builds wrote keeps its duplicate detection: the
+    /// per-event `e`/`f` keys become one seen record on open, atomically.
+    #[test]
+    fn per_event_seen_keys_of_earlier_builds_are_migrated() {
+        let db = sled::Config::new().temporary(true).open().unwrap();
+        let tree = db.open_tree("p/x").unwrap();
+        for (digest, ts) in [(7u128, 1_000i64), (9, 2_000)] {
+            let mut e = vec![E];
+            e.extend_from_slice(&digest.to_be_bytes());
+            tree.insert(e, &ordered_i64(ts)[..]).unwrap();
+            let mut f = vec![F];
+            f.extend_from_slice(&ordered_i64(ts));
+            f.extend_from_slice(&digest.to_be_bytes());
+            tree.insert(f, &[][..]).unwrap();
+        }
+        let mut p = PartitionStore::new(tree.clone(), db.clone(), 1 << 20).unwrap();
+        assert_eq!(tree.scan_prefix([E]).count() + tree.scan_prefix([F]).count(), 0);
+        assert_eq!(tree.scan_prefix([crate::seen::S]).count(), 1);
+        assert_eq!(p.remembered_ids(), 2);
+        // Remembered as of their event times, as the old store pruned them.
+        assert!(!p.mark_seen(7, 5_000, 1_000));
+        assert!(p.mark_seen(7, 5_000, 1_001));
+        assert!(!p.mark_seen(9, 5_000, 2_000));
+        // Opening again finds nothing left to migrate and the same ids.
+        let p = PartitionStore::new(tree.clone(), db, 1 << 20).unwrap();
+        assert_eq!(p.remembered_ids(), 2);
     }
 }

@@ -125,19 +125,100 @@ fn state_survives_reopen_and_offsets_commit_with_it() {
     assert_eq!(store.partitions(), vec!["events/0".to_string()]);
 }
 
+/// Duplicate detection (docs/contract.md, "Duplicates"): an id counts as
+/// seen while the time it is remembered as of is not before the cutoff the
+/// caller passes; it survives a reopen (persisted with the commit), and
+/// pruning frees only ids that no longer match. Check values derived by hand
+/// from that rule.
 #[test]
 fn duplicate_detection_persists_and_prunes() {
-    let store = Store::temporary().unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    {
+        let store = Store::open(dir.path()).unwrap();
+        let mut p = store.partition("x", 1 << 20).unwrap();
+        assert!(p.mark_seen(1, 100, 0));
+        assert!(!p.mark_seen(1, 100, 0));
+        p.commit(false).unwrap();
+        assert!(!p.mark_seen(1, 100, 0));
+        assert!(p.mark_seen(2, 500, 0));
+        // Not committed: forgotten on reopen.
+        assert!(p.mark_seen(3, 500, 0));
+        drop(p);
+        let mut p = store.partition("x", 1 << 20).unwrap();
+        assert!(!p.mark_seen(1, 100, 0));
+        assert!(p.mark_seen(2, 500, 0));
+        p.commit(true).unwrap();
+    }
+    let store = Store::open(dir.path()).unwrap();
     let mut p = store.partition("x", 1 << 20).unwrap();
-    assert!(p.mark_seen(1, 100).unwrap());
-    assert!(!p.mark_seen(1, 100).unwrap());
-    p.commit(false).unwrap();
-    assert!(!p.mark_seen(1, 100).unwrap());
-    assert!(p.mark_seen(2, 500).unwrap());
-    p.commit(false).unwrap();
-    assert_eq!(p.prune_seen(200).unwrap(), 1);
-    assert!(p.mark_seen(1, 100).unwrap());
-    assert!(!p.mark_seen(2, 500).unwrap());
+    assert_eq!(p.remembered_ids(), 2);
+    // Cutoff 200: id 1 (as of 100) no longer matches and is remembered anew
+    // (as of 300); id 2 (as of 500) still does.
+    assert!(p.mark_seen(1, 300, 200));
+    assert!(!p.mark_seen(2, 500, 200));
+    assert!(!p.mark_seen(1, 300, 300));
+    assert!(p.mark_seen(1, 301, 301));
+}
+
+/// Pruning is garbage collection only: the same sequence of checks gives the
+/// same answers whether or not (and however often) prune runs in between.
+#[test]
+fn pruning_never_changes_which_ids_are_duplicates() {
+    // Every step marks a fresh id and repeats the id of 4,900 steps before;
+    // time 1 per step, horizon 5,000. Derived by hand: the fresh ids are
+    // new; a repeat is remembered as of i - 4,900, not before the cutoff
+    // i - 5,000, so it is a duplicate. The map keeps growing, so pruning
+    // runs and frees ids; it must free none that a later repeat asks for.
+    let run = |prune_every: Option<u64>| {
+        let store = Store::temporary().unwrap();
+        let mut p = store.partition("x", 1 << 20).unwrap();
+        let mut answers = Vec::new();
+        let mut freed = 0;
+        for i in 0..20_000u64 {
+            let t = i as i64;
+            answers.push(p.mark_seen(i as u128, t, t - 5_000));
+            if i >= 4_900 {
+                answers.push(p.mark_seen((i - 4_900) as u128, t, t - 5_000));
+            }
+            if prune_every.is_some_and(|n| i % n == 0) {
+                p.commit(false).unwrap();
+                freed += p.prune_seen(t - 5_000).unwrap();
+            }
+        }
+        (answers, freed)
+    };
+    let (plain, _) = run(None);
+    assert_eq!(plain.iter().filter(|&&new| new).count(), 20_000);
+    assert_eq!(plain.len(), 20_000 + 15_100);
+    for every in [1, 997] {
+        let (pruned, freed) = run(Some(every));
+        assert!(freed > 0, "pruning ran and freed ids");
+        assert_eq!(pruned, plain);
+    }
+    let run_short = |prune: bool| {
+        let store = Store::temporary().unwrap();
+        let mut p = store.partition("x", 1 << 20).unwrap();
+        (0..20_000u64)
+            .map(|i| {
+                let t = i as i64;
+                let new = p.mark_seen((i % 3_000) as u128, t, t - 5_000);
+                if prune && i % 500 == 0 {
+                    p.commit(false).unwrap();
+                    p.prune_seen(t - 5_000).unwrap();
+                }
+                new
+            })
+            .collect::<Vec<_>>()
+    };
+    // Period 3,000 within the 5,000 horizon; a duplicate does not refresh
+    // the time an id is remembered as of. Id k is new at t = k, a duplicate
+    // at 3,000 + k (remembered as of k >= cutoff k - 2,000), new again at
+    // 6,000 + k (cutoff k + 1,000 > k), and so on with period 6,000: new in
+    // [0, 3,000), [6,000, 9,000), [12,000, 15,000), [18,000, 20,000):
+    // 11,000 in all (derived by hand).
+    let short = run_short(false);
+    assert_eq!(short.iter().filter(|&&n| n).count(), 11_000);
+    assert_eq!(run_short(true), short);
 }
 
 #[test]

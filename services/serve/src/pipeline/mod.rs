@@ -232,7 +232,17 @@ impl Pipeline {
         }
         let key = key.unwrap_or_else(|| self.pseudo.key_for(&ev.user_id));
         ev.user_id.clear();
-        if ev.kind != EventKind::Erase && !part.store.mark_seen(event_id_digest(&ev.event_id), ev.timestamp_ms)? {
+        // Remembered for dedupe_horizon past the later of its event time and
+        // the watermark it arrived at (a late event too), so whether an id is
+        // a duplicate depends only on the message sequence.
+        let wm = part.clock.watermark;
+        if ev.kind != EventKind::Erase
+            && !part.store.mark_seen(
+                event_id_digest(&ev.event_id),
+                ev.timestamp_ms.max(wm),
+                wm.saturating_sub(self.cfg.dedupe_horizon.ms()),
+            )
+        {
             self.metrics.events_consumed.with_label_values(&[kind, "duplicate"]).inc();
             return Ok(MsgStatus::Duplicate);
         }
@@ -468,6 +478,8 @@ impl Pipeline {
     pub fn update_gauges(&self) {
         let open: u64 = self.parts.values().map(|p| p.store.open_journeys()).sum();
         self.metrics.journeys_open.set(open as i64);
+        let ids: usize = self.parts.values().map(|p| p.store.remembered_ids()).sum();
+        self.metrics.dedupe_ids.set(ids as i64);
         self.metrics.store_size.set(self.store.size_on_disk() as i64);
         let now = now_ms();
         for (id, p) in &self.parts {

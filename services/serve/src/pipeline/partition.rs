@@ -170,8 +170,9 @@ impl PartState {
 
     /// Commits state, statistics, clock, the offset and the active snapshot
     /// in one atomic batch, forgetting decisions the committed state already
-    /// reflects; every 100 batches forgets event ids older than
-    /// `dedupe_horizon_ms` before the watermark.
+    /// reflects; then frees remembered event ids older than
+    /// `dedupe_horizon_ms` before the watermark (the store does so once
+    /// enough have accumulated).
     pub fn commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<()> {
         self.persist_decisions()?;
         if let Some(o) = self.pending_offset.take() {
@@ -198,7 +199,7 @@ impl PartState {
         }
         self.store.commit(true)?;
         self.batches += 1;
-        if self.batches % 100 == 0 && self.clock.watermark != i64::MIN {
+        if self.clock.watermark != i64::MIN {
             self.store.prune_seen(self.clock.watermark.saturating_sub(dedupe_horizon_ms))?;
         }
         Ok(())
