@@ -27,10 +27,12 @@
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
 
+mod changes;
 mod codec;
 mod partition;
 mod seen;
 
+pub use changes::ChangeSet;
 pub use codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats, Clock,
     Decision, StoredJourney, JOURNEY_FORMAT_VERSION,

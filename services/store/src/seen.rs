@@ -22,6 +22,7 @@
 
 use std::collections::HashMap;
 
+use crate::changes::ChangeSet;
 use crate::codec::{from_ordered_i64, ordered_i64};
 use crate::StoreError;
 
@@ -33,6 +34,12 @@ const SEEN_FORMAT_VERSION: u8 = 1;
 /// at most 96 KiB rather than one of 1.2 MB).
 const PER_RECORD: usize = 4096;
 const ENTRY: usize = 24;
+/// Growth (in ids) below which no prune runs (small in unit tests, so that
+/// they exercise pruning).
+#[cfg(not(test))]
+const PRUNE_FLOOR: usize = 1024;
+#[cfg(test)]
+const PRUNE_FLOOR: usize = 4;
 
 #[derive(Debug, Default)]
 pub(crate) struct Seen {
@@ -107,8 +114,8 @@ impl Seen {
         self.ids.len()
     }
 
-    /// Adds the records of the ids marked since the last call to `batch`.
-    pub(crate) fn persist_into(&mut self, batch: &mut sled::Batch) {
+    /// Adds the records of the ids marked since the last call to `out`.
+    pub(crate) fn persist_into(&mut self, out: &mut ChangeSet) {
         for part in self.pending.chunks(PER_RECORD) {
             let max_as_of = part.iter().map(|(_, t)| *t).max().expect("chunks are not empty");
             let mut v = Vec::with_capacity(1 + part.len() * ENTRY);
@@ -117,7 +124,7 @@ impl Seen {
                 v.extend_from_slice(&d.to_be_bytes());
                 v.extend_from_slice(&t.to_be_bytes());
             }
-            batch.insert(&record_key(max_as_of, self.next_seq)[..], v);
+            out.set(&record_key(max_as_of, self.next_seq)[..], v);
             self.next_seq += 1;
         }
         self.pending.clear();
@@ -126,14 +133,9 @@ impl Seen {
     /// Frees the ids that can no longer match (remembered as of a time
     /// before `before`) once the map has grown by half since the last prune,
     /// and adds the removal of the sled records wholly before `before` to
-    /// `batch`. Returns the number of ids freed.
-    pub(crate) fn prune(
-        &mut self,
-        before: i64,
-        tree: &sled::Tree,
-        batch: &mut sled::Batch,
-    ) -> Result<usize, StoreError> {
-        if self.ids.len() < self.after_prune + self.after_prune / 2 + 1024 || before <= self.pruned_before {
+    /// `out`. Returns the number of ids freed.
+    pub(crate) fn prune(&mut self, before: i64, tree: &sled::Tree, out: &mut ChangeSet) -> Result<usize, StoreError> {
+        if self.ids.len() < self.after_prune + self.after_prune / 2 + PRUNE_FLOOR || before <= self.pruned_before {
             return Ok(0);
         }
         let n = self.ids.len();
@@ -143,7 +145,7 @@ impl Seen {
         for item in tree.range(&[S][..]..&end[..]) {
             let (k, _) = item?;
             if k.len() == 17 && from_ordered_i64(&k[1..9]) < before {
-                batch.remove(k);
+                out.remove(k);
             }
         }
         self.pruned_before = before;

@@ -76,7 +76,9 @@ proptest! {
         let want = run(MemStore::default(), &l, &mut |_| {});
         let store = Store::temporary().unwrap();
         let part = store.partition("t/0", budget).unwrap();
-        let got = run(part, &l, &mut |s| s.commit(false).unwrap());
+        let got = run(part, &l, &mut |s| {
+            s.commit(false).unwrap();
+        });
         prop_assert_eq!(&got, &want);
         // The replay policy: write to sled only when over the byte budget.
         let part = store.partition("t/1", budget).unwrap();

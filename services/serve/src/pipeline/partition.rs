@@ -170,8 +170,8 @@ impl PartState {
 
     /// Commits state, statistics, clock, the offset and the active snapshot
     /// in one atomic batch, forgetting decisions the committed state already
-    /// reflects; then frees remembered event ids older than
-    /// `dedupe_horizon_ms` before the watermark (the store does so once
+    /// reflects, and the removal of remembered event ids older than
+    /// `dedupe_horizon_ms` before the watermark (the store prunes once
     /// enough have accumulated).
     pub fn commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<()> {
         self.persist_decisions()?;
@@ -197,11 +197,11 @@ impl PartState {
         if let Some(b) = self.source_position.take() {
             self.store.stage_source_position(b);
         }
-        self.store.commit(true)?;
-        self.batches += 1;
         if self.clock.watermark != i64::MIN {
             self.store.prune_seen(self.clock.watermark.saturating_sub(dedupe_horizon_ms))?;
         }
+        self.store.commit(true)?;
+        self.batches += 1;
         Ok(())
     }
 }
