@@ -96,6 +96,11 @@ enum Cmd {
         /// Probability that a line is delivered twice.
         #[arg(long, default_value_t = 0.001)]
         dup_rate: f64,
+        /// No conversion lines, and journey k goes to user k mod --users: every
+        /// user id ends with an open journey once journeys >= users (about
+        /// 3.8 lines per journey).
+        #[arg(long)]
+        open_journeys: bool,
     },
 }
 
@@ -217,21 +222,22 @@ fn run(cli: Cli) -> Result<()> {
         Cmd::Groundtruth { users, seed, runs, out_md, out_json, bin, in_process, cross_check, models } => {
             groundtruth(users, seed, runs.max(1), out_md, out_json, bin, in_process, cross_check, models)
         }
-        Cmd::Gen { events, users, seed, out, unsorted, days, dup_rate } => {
+        Cmd::Gen { events, users, seed, out, unsorted, days, dup_rate, open_journeys } => {
             let started = Instant::now();
-            let opts = GenOptions { unsorted, days, dup_rate, ..GenOptions::new(events, users, seed) };
+            let opts = GenOptions { unsorted, days, dup_rate, open_journeys, ..GenOptions::new(events, users, seed) };
             let mut w = create(&out)?;
             let s = generate(&Scenario::example_shop(), &opts, &mut w)?;
             w.into_inner().map_err(|e| e.into_error())?;
             let secs = started.elapsed().as_secs_f64();
             let bytes = std::fs::metadata(&out).map(|m| m.len()).unwrap_or(0);
             eprintln!(
-                "gen: {} lines ({} touches, {} conversions, {} duplicates), {} journeys, {:.1} MB, {} in {:.2}s ({:.0} lines/s)",
+                "gen: {} lines ({} touches, {} conversions, {} duplicates), {} journeys{}, {:.1} MB, {} in {:.2}s ({:.0} lines/s)",
                 s.lines,
                 s.touches,
                 s.conversions,
                 s.duplicates,
                 s.journeys,
+                if open_journeys { format!(" ({} users left with an open journey)", s.open_users) } else { String::new() },
                 bytes as f64 / 1e6,
                 if unsorted { "unsorted".to_string() } else { format!("time-sorted, at most {} pending", s.max_pending) },
                 secs,
