@@ -9,6 +9,7 @@ use std::process::ExitCode;
 use std::time::Instant;
 
 use anyhow::{bail, Context, Result};
+use apportion_load::floors;
 use apportion_load::gen::{generate, GenOptions};
 use apportion_load::groundtruth::{credit_in_process, credit_with_binary, score, Report, Run, ALL_MODELS};
 use apportion_load::scenario::Scenario;
@@ -101,6 +102,16 @@ enum Cmd {
         /// 3.8 lines per journey).
         #[arg(long)]
         open_journeys: bool,
+    },
+    /// Floors for orientation: borrowed serde_json parse and HMAC-SHA256 of the
+    /// user ids over the lines of a file, in records/s (printed as TSV).
+    Floors {
+        /// NDJSON input (read into memory once, before timing).
+        #[arg(long, value_name = "PATH")]
+        input: PathBuf,
+        /// Time whole passes over the input until this many seconds have passed, per floor.
+        #[arg(long, default_value_t = 2.0)]
+        min_seconds: f64,
     },
 }
 
@@ -243,6 +254,27 @@ fn run(cli: Cli) -> Result<()> {
                 secs,
                 s.lines as f64 / secs.max(1e-9)
             );
+            Ok(())
+        }
+        Cmd::Floors { input, min_seconds } => {
+            let text = std::fs::read(&input).with_context(|| format!("reading {}", input.display()))?;
+            let lines = floors::lines(&text);
+            if lines.is_empty() {
+                bail!("{} has no lines", input.display());
+            }
+            let key = std::env::var("APPORTION_PSEUDONYM_KEY").unwrap_or_else(|_| "apportion-load-floors-key".into());
+            let results = floors::measure(&lines, key.as_bytes(), min_seconds)?;
+            println!("floor\trecords\tpasses\tseconds\trecords_per_s");
+            for f in &results {
+                println!(
+                    "{}\t{}\t{}\t{:.3}\t{:.0}",
+                    f.name,
+                    f.records,
+                    f.passes,
+                    f.elapsed.as_secs_f64(),
+                    f.per_second()
+                );
+            }
             Ok(())
         }
     }
