@@ -494,14 +494,12 @@ idle_timeout = \"1d\""
     fi
   done
   t1=$(date +%s.%N)
-  # the open-journey gauge is refreshed every 5 s
-  open=0
-  for _ in $(seq 1 24); do
-    scrape "$logs/serve-open-$n.metrics"
-    open="$(metric_sum apportion_journeys_open "$logs/serve-open-$n.metrics")"
-    [ "$open" -gt 0 ] && break
-    sleep 0.5
-  done
+  # serve refreshes the open-journey gauge every 5 s: read it after a refresh
+  # that came after the last batch
+  sleep 6
+  serve_alive
+  scrape "$logs/serve-open-$n.metrics"
+  open="$(metric_sum apportion_journeys_open "$logs/serve-open-$n.metrics")"
   hwm="$(serve_hwm)"
   local rss; rss="$(awk '/^VmRSS/ { print $2 }' "/proc/$serve_pid/status")"
   serve_stop "open-$n"
