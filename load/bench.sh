@@ -69,7 +69,8 @@
 #     user k mod N (so every one of the N users ends with an open journey; the
 #     gen log says how many), WORKDIR/gen-open-N.ndjson. `apportion replay`
 #     (five rule models, --expiry 365d so that nothing expires within the
-#     input's 180 days) under /usr/bin/time -v; then `apportion serve` (same
+#     input's 180 days, its sled store in WORKDIR: the default temporary store
+#     is in /dev/shm, outside the RSS) under /usr/bin/time -v; then `apportion serve` (same
 #     models and expiry, idle_timeout 1d, embedded mode following the file) until
 #     it has consumed every line and reports its open journeys; peak RSS is
 #     VmHWM before SIGTERM. ratio = peak RSS / 1 GiB (the issue's target with
@@ -472,8 +473,13 @@ open_part() {
   lines=$(wc -l < "$lin")
   local row_events="$lines"
   say "open journeys ($n asked, ${ol:-?} in the input): replay, five rule models, --expiry 365d"
-  timed "replay-open-$n" "$bin" replay --quiet --input "$lin" --output "$work/replay-open.ndjson" --models "$rules" --expiry 365d
-  rm -f "$work/replay-open.ndjson"
+  # the store on disk in WORKDIR: replay's default temporary store is sled's, in
+  # /dev/shm on Linux, whose pages take memory outside the process's RSS
+  rm -rf "$work/replay-open-store"
+  timed "replay-open-$n" "$bin" replay --quiet --input "$lin" --output "$work/replay-open.ndjson" --models "$rules" \
+    --expiry 365d --data-dir "$work/replay-open-store"
+  say "open journeys: replay's store on disk at the end: $(du -sh "$work/replay-open-store" | cut -f1)"
+  rm -rf "$work/replay-open.ndjson" "$work/replay-open-store"
   w="$(tv_wall "$logs/replay-open-$n.log")"
   row "replay $rules, ${ol:-?} open journeys" "$w" "$(eps "$lines" "$w")" "$(tv_rss "$logs/replay-open-$n.log")" \
     "peak RSS target 1 GiB (5M open)" "-" "$(ratio "$(tv_rss "$logs/replay-open-$n.log")" 1048576)"
