@@ -15,6 +15,12 @@
 //! - `unsorted`: each journey is written whole when it starts, as a per-user
 //!   export would, so the file is out of time order by up to a journey's
 //!   length (about three weeks).
+//!
+//! With `open_journeys`, no conversion is written and journey k goes to
+//! user `k mod users` instead of a drawn one, so every user id has touches
+//! and no conversion once there are at least as many journeys as users: the
+//! input leaves `users` journeys open (for the memory benchmark). The
+//! journeys themselves are the same as without the option.
 
 use std::cmp::Reverse;
 use std::collections::BinaryHeap;
@@ -46,12 +52,23 @@ pub struct GenOptions {
     pub dup_rate: f64,
     /// Start of generated time, epoch ms.
     pub start_ms: i64,
+    /// No conversions; users in turn (see the module docs).
+    pub open_journeys: bool,
 }
 
 impl GenOptions {
     /// Defaults: time-sorted, 180 days from 2026-03-01, 0.1% duplicates.
     pub fn new(events: u64, users: u64, seed: u64) -> Self {
-        GenOptions { events, users, seed, unsorted: false, days: 180, dup_rate: 0.001, start_ms: DEFAULT_START_MS }
+        GenOptions {
+            events,
+            users,
+            seed,
+            unsorted: false,
+            days: 180,
+            dup_rate: 0.001,
+            start_ms: DEFAULT_START_MS,
+            open_journeys: false,
+        }
     }
 }
 
@@ -70,6 +87,9 @@ pub struct GenSummary {
     pub journeys: u64,
     /// Largest number of pending events held at once (sorted mode).
     pub max_pending: u64,
+    /// With `open_journeys`: distinct users with at least one line written
+    /// (each ends with an open journey); 0 otherwise.
+    pub open_users: u64,
     /// Earliest and latest event time written, epoch ms.
     pub first_ms: i64,
     /// Latest event time written.
@@ -91,14 +111,15 @@ struct Pending {
 
 const CONVERSION: u8 = u8::MAX;
 
-/// Mean lines per journey, estimated from 20 000 journeys of a separate stream.
-pub fn mean_events_per_journey(scenario: &Scenario, seed: u64) -> f64 {
+/// Mean lines per journey (conversion lines counted when `conversions`),
+/// estimated from 20 000 journeys of a separate stream.
+pub fn mean_events_per_journey(scenario: &Scenario, seed: u64, conversions: bool) -> f64 {
     let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x0005_eed0_fa11);
     let n = 20_000;
     let total: usize = (0..n)
         .map(|_| {
             let j = scenario.journey(&mut rng);
-            j.touches.len() + j.converted as usize
+            j.touches.len() + (conversions && j.converted) as usize
         })
         .sum();
     total as f64 / n as f64
@@ -111,6 +132,8 @@ struct Out<'a, W: Write> {
     dup_rate: f64,
     limit: u64,
     s: GenSummary,
+    /// With `open_journeys`: a bit per user, set once a line of theirs is written.
+    seen: Vec<u64>,
 }
 
 impl<W: Write> Out<'_, W> {
@@ -133,6 +156,13 @@ impl<W: Write> Out<'_, W> {
                 let c = &self.scenario.channels[p.channel as usize];
                 self.w.touch(id, user, p.ts, TimeForm::Rfc3339, &c.name, &c.campaigns[p.campaign as usize], p.view)?;
             }
+            if let Some(word) = self.seen.get_mut((p.user / 64) as usize) {
+                let bit = 1u64 << (p.user % 64);
+                if *word & bit == 0 {
+                    *word |= bit;
+                    self.s.open_users += 1;
+                }
+            }
             if k == 0 {
                 if p.channel == CONVERSION {
                     self.s.conversions += 1;
@@ -154,7 +184,7 @@ impl<W: Write> Out<'_, W> {
     }
 }
 
-fn pending_of(j: &SimJourney, start: i64, user: u64, seq: &mut u64) -> Vec<Pending> {
+fn pending_of(j: &SimJourney, start: i64, user: u64, seq: &mut u64, conversion: bool) -> Vec<Pending> {
     let mut v = Vec::with_capacity(j.touches.len() + 1);
     for t in &j.touches {
         *seq += 1;
@@ -168,7 +198,7 @@ fn pending_of(j: &SimJourney, start: i64, user: u64, seq: &mut u64) -> Vec<Pendi
             value_cents: 0,
         });
     }
-    if j.converted {
+    if j.converted && conversion {
         *seq += 1;
         v.push(Pending {
             ts: start + j.conversion_offset_ms,
@@ -192,7 +222,7 @@ pub fn generate<W: Write>(scenario: &Scenario, opts: &GenOptions, out: W) -> Res
     if opts.users == 0 || !(0.0..=1.0).contains(&opts.dup_rate) {
         return Err(LoadError::Scenario("users must be > 0 and dup_rate in [0, 1]".into()));
     }
-    let per_journey = mean_events_per_journey(scenario, opts.seed) * (1.0 + opts.dup_rate);
+    let per_journey = mean_events_per_journey(scenario, opts.seed, !opts.open_journeys) * (1.0 + opts.dup_rate);
     let journeys = (opts.events as f64 / per_journey).max(1.0);
     let span = opts.days.max(1) as f64 * 86_400_000.0;
     let mean_gap = span / journeys;
@@ -205,6 +235,7 @@ pub fn generate<W: Write>(scenario: &Scenario, opts: &GenOptions, out: W) -> Res
         dup_rate: opts.dup_rate,
         limit: opts.events,
         s: GenSummary::default(),
+        seen: if opts.open_journeys { vec![0; opts.users.div_ceil(64) as usize] } else { Vec::new() },
     };
     let mut heap: BinaryHeap<Reverse<Pending>> = BinaryHeap::new();
     let mut seq = 0u64;
@@ -225,10 +256,12 @@ pub fn generate<W: Write>(scenario: &Scenario, opts: &GenOptions, out: W) -> Res
                 break;
             }
         }
-        let user = journey_rng.gen_range(0..opts.users);
+        // Drawn in both modes, so the journeys are the same.
+        let drawn = journey_rng.gen_range(0..opts.users);
+        let user = if opts.open_journeys { o.s.journeys % opts.users } else { drawn };
         let j = scenario.journey(&mut journey_rng);
         o.s.journeys += 1;
-        let events = pending_of(&j, next_start, user, &mut seq);
+        let events = pending_of(&j, next_start, user, &mut seq, !opts.open_journeys);
         if opts.unsorted {
             for p in &events {
                 o.emit(p)?;
@@ -299,6 +332,22 @@ mod tests {
         let bset: std::collections::HashSet<_> = b.iter().collect();
         let common = a.iter().filter(|e| bset.contains(e)).count();
         assert!(common as f64 > 0.9 * a.len() as f64, "{common} of {}", a.len());
+    }
+
+    #[test]
+    fn open_journeys_have_every_user_and_no_conversion() {
+        let o = GenOptions { open_journeys: true, ..GenOptions::new(20_000, 4_000, 5) };
+        let (buf, s) = gen(&o);
+        let text = String::from_utf8(buf).unwrap();
+        let evs: Vec<_> = text.lines().map(|l| parse_event(l.as_bytes()).unwrap()).collect();
+        assert_eq!(evs.len(), 20_000);
+        assert_eq!(s.conversions, 0);
+        assert!(!text.contains("\"conversion\""));
+        assert!(s.journeys >= 4_000, "{}", s.journeys);
+        let users: std::collections::HashSet<&str> = evs.iter().map(|e| e.user_id.as_str()).collect();
+        assert_eq!(users.len(), 4_000);
+        assert_eq!(s.open_users, 4_000);
+        assert!(evs.windows(2).all(|w| w[0].timestamp_ms <= w[1].timestamp_ms), "time-sorted");
     }
 
     #[test]

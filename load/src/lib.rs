@@ -24,6 +24,8 @@
 //! - `simulate.rs`: one journey per user, events and [`simulate::Truth`].
 //! - `groundtruth.rs`: crediting (binary or in process) and scoring.
 //! - `gen.rs`: the streaming load generator.
+//! - `floors.rs`: borrowed-parse and HMAC rates on the same records (benchmark
+//!   orientation).
 //! - `lift.rs`: simulated lift tests (true incremental conversions of one
 //!   channel and the standard error of an idealized experiment).
 //! - `lines.rs`, `timefmt.rs`: fast NDJSON and RFC 3339 writing.
@@ -32,6 +34,7 @@
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
 
+pub mod floors;
 pub mod gen;
 pub mod groundtruth;
 pub mod lift;

@@ -9,6 +9,7 @@ use std::process::ExitCode;
 use std::time::Instant;
 
 use anyhow::{bail, Context, Result};
+use apportion_load::floors;
 use apportion_load::gen::{generate, GenOptions};
 use apportion_load::groundtruth::{credit_in_process, credit_with_binary, score, Report, Run, ALL_MODELS};
 use apportion_load::scenario::Scenario;
@@ -96,6 +97,21 @@ enum Cmd {
         /// Probability that a line is delivered twice.
         #[arg(long, default_value_t = 0.001)]
         dup_rate: f64,
+        /// No conversion lines, and journey k goes to user k mod --users: every
+        /// user id ends with an open journey once journeys >= users (about
+        /// 3.8 lines per journey).
+        #[arg(long)]
+        open_journeys: bool,
+    },
+    /// Floors for orientation: borrowed serde_json parse and HMAC-SHA256 of the
+    /// user ids over the lines of a file, in records/s (printed as TSV).
+    Floors {
+        /// NDJSON input (read into memory once, before timing).
+        #[arg(long, value_name = "PATH")]
+        input: PathBuf,
+        /// Time whole passes over the input until this many seconds have passed, per floor.
+        #[arg(long, default_value_t = 2.0)]
+        min_seconds: f64,
     },
 }
 
@@ -217,26 +233,48 @@ fn run(cli: Cli) -> Result<()> {
         Cmd::Groundtruth { users, seed, runs, out_md, out_json, bin, in_process, cross_check, models } => {
             groundtruth(users, seed, runs.max(1), out_md, out_json, bin, in_process, cross_check, models)
         }
-        Cmd::Gen { events, users, seed, out, unsorted, days, dup_rate } => {
+        Cmd::Gen { events, users, seed, out, unsorted, days, dup_rate, open_journeys } => {
             let started = Instant::now();
-            let opts = GenOptions { unsorted, days, dup_rate, ..GenOptions::new(events, users, seed) };
+            let opts = GenOptions { unsorted, days, dup_rate, open_journeys, ..GenOptions::new(events, users, seed) };
             let mut w = create(&out)?;
             let s = generate(&Scenario::example_shop(), &opts, &mut w)?;
             w.into_inner().map_err(|e| e.into_error())?;
             let secs = started.elapsed().as_secs_f64();
             let bytes = std::fs::metadata(&out).map(|m| m.len()).unwrap_or(0);
             eprintln!(
-                "gen: {} lines ({} touches, {} conversions, {} duplicates), {} journeys, {:.1} MB, {} in {:.2}s ({:.0} lines/s)",
+                "gen: {} lines ({} touches, {} conversions, {} duplicates), {} journeys{}, {:.1} MB, {} in {:.2}s ({:.0} lines/s)",
                 s.lines,
                 s.touches,
                 s.conversions,
                 s.duplicates,
                 s.journeys,
+                if open_journeys { format!(" ({} users left with an open journey)", s.open_users) } else { String::new() },
                 bytes as f64 / 1e6,
                 if unsorted { "unsorted".to_string() } else { format!("time-sorted, at most {} pending", s.max_pending) },
                 secs,
                 s.lines as f64 / secs.max(1e-9)
             );
+            Ok(())
+        }
+        Cmd::Floors { input, min_seconds } => {
+            let text = std::fs::read(&input).with_context(|| format!("reading {}", input.display()))?;
+            let lines = floors::lines(&text);
+            if lines.is_empty() {
+                bail!("{} has no lines", input.display());
+            }
+            let key = std::env::var("APPORTION_PSEUDONYM_KEY").unwrap_or_else(|_| "apportion-load-floors-key".into());
+            let results = floors::measure(&lines, key.as_bytes(), min_seconds)?;
+            println!("floor\trecords\tpasses\tseconds\trecords_per_s");
+            for f in &results {
+                println!(
+                    "{}\t{}\t{}\t{:.3}\t{:.0}",
+                    f.name,
+                    f.records,
+                    f.passes,
+                    f.elapsed.as_secs_f64(),
+                    f.per_second()
+                );
+            }
             Ok(())
         }
     }
