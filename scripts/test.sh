@@ -55,7 +55,7 @@ echo "== benchmark harness smoke test (load/bench.sh --quick; no speed assertion
 cargo build --release --locked -p apportion -p apportion-load 2>&1
 bench_tmp="$(mktemp -d)"
 APPORTION_BIN="$root/target/release/apportion" APPORTION_LOAD_BIN="$root/target/release/apportion-load" \
-  bash load/bench.sh --quick "$bench_tmp" || { rm -rf "$bench_tmp"; exit 1; }
+  bash load/bench.sh --quick --latency --open-journeys 20000 --floors "$bench_tmp" || { rm -rf "$bench_tmp"; exit 1; }
 rm -rf "$bench_tmp"
 
 if [[ -z "${SKIP_SERVERS:-}" ]]; then

@@ -101,7 +101,9 @@ impl Metrics {
                 "apportion_processing_latency_seconds",
                 "Time from the arrival of a conversion event to its credit rows being produced.",
             )
-            .buckets(vec![0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 120.0, 300.0]),
+            .buckets(vec![
+                0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 5.25, 5.5, 7.5, 10.0, 30.0, 60.0, 120.0, 300.0,
+            ]),
         )
         .expect("valid metric");
         r.register(Box::new(latency.clone())).expect("registered once");

@@ -9,7 +9,6 @@
 //! | prefix | key | value |
 //! | --- | --- | --- |
 //! | `j` | user key (32 bytes) | versioned journey record |
-//! | `w` | wake time (8 bytes, order-preserving) + user key | empty: the wake index |
 //! | `s` | largest "as of" time (8 bytes, order-preserving) + sequence (8 bytes) | event-id digests remembered for duplicate detection, one record per commit (format in `seen.rs`) |
 //! | `o` | source name | input offset (8 bytes) |
 //! | `m` | `clock` / `stats` / `snapshot` / `source` | the partition's clock, path statistics, active model snapshot and source position (formats in `codec.rs`) |
@@ -22,8 +21,13 @@
 //!
 //! Why a wake index rather than an expiry scan: every journey is stored with
 //! the earliest watermark at which it has something to do (a conversion to
-//! credit or a run of touches to expire). `due(watermark)` reads only the
-//! index range up to the watermark, never all users.
+//! credit or a run of touches to expire). The index of those wake times is
+//! held in memory (about 64 bytes per open journey), rebuilt from the journey
+//! records when a partition opens, so `due(watermark)` reads only the index
+//! range up to the watermark, never all users, and a changed wake costs no
+//! sled write of its own. Stores from earlier builds also held the index as
+//! `w` keys, and per-event `e`/`f` keys for duplicate detection; they are
+//! migrated when a partition opens.
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
 

@@ -1,7 +1,7 @@
-//! One partition's state: journeys with a write-back cache, the wake index,
-//! duplicate detection, offsets and metadata, committed in one sled batch.
+//! One partition's state: journeys with a write-back cache, the wake index
+//! (in memory), duplicate detection, offsets and metadata, committed in one sled batch.
 
-use std::collections::{BTreeSet, HashMap, HashSet};
+use std::collections::{BTreeSet, HashMap};
 
 use apportion_engine::{Journey, JourneyStore, UserKey};
 
@@ -16,6 +16,8 @@ use crate::seen::Seen;
 use crate::StoreError;
 
 const J: u8 = b'j';
+/// Wake index keys that earlier builds wrote (wake time + user key); the
+/// index now lives in memory, rebuilt from the journey records on open.
 const W: u8 = b'w';
 /// Per-event duplicate-detection keys that earlier builds wrote (the
 /// digest, and an age index of it), migrated to [`Seen`] records on open.
@@ -72,7 +74,6 @@ struct Cached {
     /// Estimated heap bytes of `journey` (see [`Held::size`]).
     size: usize,
     wake: Option<i64>,
-    persisted_wake: Option<i64>,
     persisted_exists: bool,
     dirty: bool,
     /// Access clock value of the last load or save (least recently used
@@ -82,7 +83,8 @@ struct Cached {
 
 /// Bytes of one cache entry besides its journey: the map slot (key and
 /// [`Cached`]), the hash table's control byte and spare capacity, and the
-/// wake index entry.
+/// wake index entry (which stays, outside the budget, when the entry is
+/// evicted).
 const ENTRY_OVERHEAD: usize = 256;
 
 /// Allocator bookkeeping per heap block (rounding and header), an estimate.
@@ -140,12 +142,14 @@ pub struct PartitionStore {
     tree: sled::Tree,
     db: sled::Db,
     cache: HashMap<UserKey, Cached>,
-    pending_wake: BTreeSet<(i64, UserKey)>,
+    /// The wake index of every open journey (committed or not): the wake
+    /// time each record carries, in memory (rebuilt from the records on
+    /// open), so no sled key is written per wake change.
+    wakes: BTreeSet<(i64, UserKey)>,
     seen: Seen,
     staged: ChangeSet,
     bytes: usize,
     budget: usize,
-    scanned_upto: i64,
     /// Journeys persisted in sled (committed state).
     open_journeys: u64,
     clock: u64,
@@ -167,29 +171,34 @@ fn jkey(k: &UserKey) -> Vec<u8> {
     v
 }
 
-fn wkey(wake: i64, k: &UserKey) -> Vec<u8> {
-    let mut v = Vec::with_capacity(41);
-    v.push(W);
-    v.extend_from_slice(&ordered_i64(wake));
-    v.extend_from_slice(&k.0);
-    v
-}
-
 impl PartitionStore {
     pub(crate) fn new(tree: sled::Tree, db: sled::Db, budget: usize) -> Result<Self, StoreError> {
-        let open_journeys = tree.scan_prefix([J]).count() as u64;
         migrate_seen_keys(&tree)?;
+        drop_wake_keys(&tree)?;
+        let mut wakes = BTreeSet::new();
+        let mut open_journeys = 0;
+        for item in tree.scan_prefix([J]) {
+            let (k, v) = item?;
+            let key = UserKey(
+                k[1..]
+                    .try_into()
+                    .map_err(|_| StoreError::Corrupt { prefix: 'j', detail: "user key is not 32 bytes".into() })?,
+            );
+            if let Some(w) = record_wake(&v)? {
+                wakes.insert((w, key));
+            }
+            open_journeys += 1;
+        }
         let seen = Seen::load(&tree)?;
         Ok(PartitionStore {
             tree,
             db,
             cache: HashMap::new(),
-            pending_wake: BTreeSet::new(),
+            wakes,
             seen,
             staged: ChangeSet::default(),
             bytes: 0,
             budget,
-            scanned_upto: i64::MIN,
             open_journeys,
             clock: 0,
             spilled: 0,
@@ -240,15 +249,7 @@ impl PartitionStore {
             };
             let exists = journey.is_some();
             let size = journey.as_ref().map_or(0, Held::size);
-            let c = Cached {
-                journey,
-                size,
-                wake,
-                persisted_wake: wake,
-                persisted_exists: exists,
-                dirty: false,
-                last_used: clock,
-            };
+            let c = Cached { journey, size, wake, persisted_exists: exists, dirty: false, last_used: clock };
             self.bytes += c.bytes();
             self.cache.insert(*key, c);
         }
@@ -403,21 +404,9 @@ impl PartitionStore {
             return 0;
         }
         let mut delta = 0;
-        if let Some(w) = c.persisted_wake {
-            out.remove(wkey(w, key));
-        }
         match &c.journey {
             Some(held) => {
                 out.set(jkey(key), &held.record(c.wake)[..]);
-                if let Some(w) = c.wake {
-                    out.set(wkey(w, key), &[][..]);
-                    // A wake the index scan has already passed must be seen
-                    // again by the next `due`.
-                    if w <= self.scanned_upto {
-                        self.scanned_upto = w - 1;
-                    }
-                    self.pending_wake.remove(&(w, *key));
-                }
                 if !c.persisted_exists {
                     delta += 1;
                 }
@@ -430,7 +419,6 @@ impl PartitionStore {
             }
         }
         c.dirty = false;
-        c.persisted_wake = c.wake;
         c.persisted_exists = c.journey.is_some();
         delta
     }
@@ -466,7 +454,6 @@ impl PartitionStore {
             self.db.flush()?;
         }
         self.open_journeys = (self.open_journeys as i64 + delta).max(0) as u64;
-        self.pending_wake.clear();
         for key in &dirty {
             if self.cache.get(key).is_some_and(|c| c.journey.is_none()) {
                 self.remove_entry(key);
@@ -554,6 +541,34 @@ impl PartitionStore {
     }
 }
 
+/// The wake time a journey record carries (see `codec::encode_journey`),
+/// read without decoding the journey.
+fn record_wake(record: &[u8]) -> Result<Option<i64>, StoreError> {
+    match record {
+        [] => Err(StoreError::Corrupt { prefix: 'j', detail: "empty record".into() }),
+        [v, ..] if *v != crate::codec::JOURNEY_FORMAT_VERSION => {
+            Err(StoreError::UnknownVersion { found: *v, expected: crate::codec::JOURNEY_FORMAT_VERSION })
+        }
+        [_, flag, w @ ..] if w.len() >= 8 => {
+            Ok((*flag == 1).then(|| i64::from_be_bytes(w[..8].try_into().expect("8 bytes"))))
+        }
+        _ => Err(StoreError::Corrupt { prefix: 'j', detail: "record too short".into() }),
+    }
+}
+
+/// Removes the wake index keys that earlier builds wrote (`w` + wake time +
+/// user key); the index is rebuilt in memory from the journey records.
+fn drop_wake_keys(tree: &sled::Tree) -> Result<(), StoreError> {
+    let mut batch = ChangeSet::default();
+    for item in tree.scan_prefix([W]) {
+        batch.remove(item?.0);
+    }
+    if !batch.is_empty() {
+        batch.apply(tree)?;
+    }
+    Ok(())
+}
+
 /// Moves the per-event duplicate-detection keys that earlier builds wrote
 /// (`e` + digest -> event time, `f` + event time + digest) into one
 /// [`Seen`] record, in one atomic batch. Each id is remembered as of its
@@ -589,33 +604,9 @@ fn migrate_seen_keys(tree: &sled::Tree) -> Result<(), StoreError> {
 
 impl PartitionStore {
     /// True when some journey has something to do at `watermark` (what
-    /// [`JourneyStore::due`] would return is not empty), without moving the
-    /// store's scan position.
+    /// [`JourneyStore::due`] would return is not empty).
     pub fn has_due(&self, watermark: i64) -> Result<bool, StoreError> {
-        if self.pending_wake.first().is_some_and(|(w, _)| *w <= watermark) {
-            return Ok(true);
-        }
-        if self.open_journeys == 0 || watermark <= self.scanned_upto {
-            return Ok(false);
-        }
-        let mut start = vec![W];
-        start.extend_from_slice(&ordered_i64(self.scanned_upto.saturating_add(1)));
-        let mut end = vec![W];
-        end.extend_from_slice(&ordered_i64(watermark));
-        end.extend_from_slice(&[0xff; 33]);
-        for item in self.tree.range(start..end) {
-            let (k, _) = item?;
-            let key = UserKey(
-                k[9..41]
-                    .try_into()
-                    .map_err(|_| StoreError::Corrupt { prefix: 'w', detail: "short wake key".into() })?,
-            );
-            // The cache is authoritative for users it holds with changes.
-            if !self.cache.get(&key).is_some_and(|c| c.dirty) {
-                return Ok(true);
-            }
-        }
-        Ok(false)
+        Ok(self.wakes.first().is_some_and(|(w, _)| *w <= watermark))
     }
 }
 
@@ -632,14 +623,12 @@ impl JourneyStore for PartitionStore {
     }
 
     fn save(&mut self, key: &UserKey, journey: Journey, wake: Option<i64>) -> Result<(), StoreError> {
-        let (old_wake, old_dirty, persisted_exists) = {
+        let (old_wake, persisted_exists) = {
             let c = self.entry(key)?;
-            (c.wake, c.dirty, c.persisted_exists)
+            (c.wake, c.persisted_exists)
         };
-        if old_dirty {
-            if let Some(w) = old_wake {
-                self.pending_wake.remove(&(w, *key));
-            }
+        if let Some(w) = old_wake {
+            self.wakes.remove(&(w, *key));
         }
         if journey.is_empty() && !persisted_exists {
             // Nothing in sled to delete: forget the user right away.
@@ -649,7 +638,7 @@ impl JourneyStore for PartitionStore {
         let present = !journey.is_empty();
         let wake = if present { wake } else { None };
         if let Some(w) = wake {
-            self.pending_wake.insert((w, *key));
+            self.wakes.insert((w, *key));
         }
         let held = present.then_some(Held::Decoded(journey));
         let size = held.as_ref().map_or(0, Held::size);
@@ -669,42 +658,8 @@ impl JourneyStore for PartitionStore {
     }
 
     fn due(&mut self, watermark: i64) -> Result<Vec<UserKey>, StoreError> {
-        let mut found: BTreeSet<(i64, UserKey)> = BTreeSet::new();
-        if self.open_journeys == 0 {
-            // Nothing persisted, so no wake keys in sled.
-            self.scanned_upto = self.scanned_upto.max(watermark);
-        } else if watermark > self.scanned_upto {
-            let mut start = vec![W];
-            start.extend_from_slice(&ordered_i64(self.scanned_upto.saturating_add(1)));
-            let mut end = vec![W];
-            end.extend_from_slice(&ordered_i64(watermark));
-            end.extend_from_slice(&[0xff; 33]);
-            let mut candidates = Vec::new();
-            for item in self.tree.range(start..end) {
-                let (k, _) = item?;
-                let wake = from_ordered_i64(&k[1..9]);
-                let key = UserKey(
-                    k[9..41]
-                        .try_into()
-                        .map_err(|_| StoreError::Corrupt { prefix: 'w', detail: "short wake key".into() })?,
-                );
-                candidates.push((wake, key));
-            }
-            for (wake, key) in candidates {
-                // The cache is authoritative when it has the user.
-                match self.cache.get(&key) {
-                    Some(c) if c.dirty => {}
-                    _ => {
-                        found.insert((wake, key));
-                    }
-                }
-            }
-            self.scanned_upto = watermark;
-        }
-        let max_key = UserKey([0xff; 32]);
-        found.extend(self.pending_wake.range(..=(watermark, max_key)).copied());
-        let mut seen = HashSet::new();
-        Ok(found.into_iter().filter(|(_, k)| seen.insert(*k)).map(|(_, k)| k).collect())
+        // One wake per key, in (wake, key) order.
+        Ok(self.wakes.range(..=(watermark, UserKey([0xff; 32]))).map(|(_, k)| *k).collect())
     }
 
     fn keys(&mut self) -> Result<Vec<UserKey>, StoreError> {
@@ -741,8 +696,16 @@ mod tests {
             f.extend_from_slice(&digest.to_be_bytes());
             tree.insert(f, &[][..]).unwrap();
         }
+        // And a wake index key (wake 5 for a user without a record): dropped,
+        // the index is rebuilt from the journey records.
+        let mut w = vec![W];
+        w.extend_from_slice(&ordered_i64(5));
+        w.extend_from_slice(&[3; 32]);
+        tree.insert(w, &[][..]).unwrap();
         let mut p = PartitionStore::new(tree.clone(), db.clone(), 1 << 20).unwrap();
         assert_eq!(tree.scan_prefix([E]).count() + tree.scan_prefix([F]).count(), 0);
+        assert_eq!(tree.scan_prefix([W]).count(), 0);
+        assert!(!p.has_due(i64::MAX).unwrap());
         assert_eq!(tree.scan_prefix([crate::seen::S]).count(), 1);
         assert_eq!(p.remembered_ids(), 2);
         // Remembered as of their event times, as the old store pruned them.
@@ -830,6 +793,11 @@ mod tests {
                 }
             }
             proptest::prop_assert_eq!(contents(&mirror), contents(&tree));
+            // The wake index rebuilt from the records equals the live one.
+            let mut restored = PartitionStore::new(mirror, db.clone(), budget).unwrap();
+            for w in [10, 25, 50] {
+                proptest::prop_assert_eq!(restored.due(w).unwrap(), p.due(w).unwrap());
+            }
         }
     }
 }
