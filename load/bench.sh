@@ -235,6 +235,23 @@ row "duckdb last_touch,linear (SQL, $(nproc) threads)" "$d_wall" "$(eps "$lines"
 row "duckdb last_touch,linear (SQL, 1 thread)" "$d1_wall" "$(eps "$lines" "$d1_wall")" "$(tv_rss "$logs/duckdb-1thread-$events.log")" "-" "-" "-"
 
 # ---- b. serve vs ConsumerPerformance
+# wait_consumed PID PORT N T0 LIMIT LOG: polls serve's /metrics every 0.2 s
+# until it counts N events consumed; fails (after stopping PID) when serve
+# exits or LIMIT seconds have passed since T0 (date +%s.%N).
+wait_consumed() {
+  local pid="$1" port="$2" want="$3" t0="$4" limit="$5" log="$6" c
+  while :; do
+    sleep 0.2
+    kill -0 "$pid" 2>/dev/null || { tail -n 30 "$log" >&2; echo "bench.sh: serve exited early (log $log)" >&2; exit 1; }
+    c="$(curl -sf "127.0.0.1:$port/metrics" 2>/dev/null | awk '/^apportion_events_consumed_total/ { s += $NF } END { printf "%.0f", s }')" || c=0
+    [ "${c:-0}" -ge "$want" ] && return 0
+    if awk -v a="$t0" -v b="$(date +%s.%N)" -v l="$limit" 'BEGIN { exit !(b - a > l) }'; then
+      kill -TERM "$pid" 2>/dev/null || true; wait "$pid" || true
+      echo "bench.sh: serve consumed $c of $want events in ${limit}s" >&2; exit 1
+    fi
+  done
+}
+
 kafka_part() {
   local kafka="${APPORTION_TEST_KAFKA:-}" topic perf_log perf_rate perf_wall t0 t1 t2
   if [ -z "$kafka" ]; then
@@ -306,21 +323,7 @@ EOF
     t0=$(date +%s.%N)
     "$bin" serve --config "$cfg" > "$logs/serve-$tag-$events.log" 2>&1 &
     pid=$!
-    limit=$(( 120 + lines / 1000 ))
-    n=0
-    while :; do
-      sleep 0.1
-      if ! kill -0 "$pid" 2>/dev/null; then
-        tail -n 30 "$logs/serve-$tag-$events.log" >&2
-        echo "bench.sh: serve exited early" >&2; exit 1
-      fi
-      n="$(curl -sf "127.0.0.1:$port/metrics" 2>/dev/null | awk '/^apportion_events_consumed_total/ { s += $NF } END { printf "%.0f", s }')" || n=0
-      [ "${n:-0}" -ge "$lines" ] && break
-      if awk -v a="$t0" -v b="$(date +%s.%N)" -v l="$limit" 'BEGIN { exit !(b - a > l) }'; then
-        kill -TERM "$pid" 2>/dev/null || true; wait "$pid" || true
-        echo "bench.sh: serve consumed $n of $lines messages in ${limit}s" >&2; exit 1
-      fi
-    done
+    wait_consumed "$pid" "$port" "$lines" "$t0" $(( 120 + lines / 1000 )) "$logs/serve-$tag-$events.log"
     t1=$(date +%s.%N)
     hwm="$(awk '/^VmHWM/ { print $2 }' "/proc/$pid/status")"
     curl -sf "127.0.0.1:$port/metrics" > "$logs/serve-$tag-$events.metrics" || true
@@ -488,18 +491,7 @@ open_part() {
   t0=$(date +%s.%N)
   serve_embedded "open-$n" "$lin" "expiry = \"365d\"
 idle_timeout = \"1d\""
-  limit=$(( 120 + lines / 1000 ))
-  while :; do
-    sleep 0.5
-    serve_alive
-    scrape "$logs/serve-open-$n.metrics"
-    c="$(metric_sum apportion_events_consumed_total "$logs/serve-open-$n.metrics")"
-    [ "$c" -ge "$lines" ] && break
-    if awk -v a="$t0" -v b="$(date +%s.%N)" -v l="$limit" 'BEGIN { exit !(b - a > l) }'; then
-      kill -TERM "$serve_pid" 2>/dev/null || true; wait "$serve_pid" || true
-      echo "bench.sh: serve consumed $c of $lines lines in ${limit}s" >&2; exit 1
-    fi
-  done
+  wait_consumed "$serve_pid" "$serve_port" "$lines" "$t0" $(( 120 + lines / 1000 )) "$serve_log"
   t1=$(date +%s.%N)
   # serve refreshes the open-journey gauge every 5 s: read it after a refresh
   # that came after the last batch
