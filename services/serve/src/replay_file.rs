@@ -274,7 +274,15 @@ fn pass_store(store: &Store, cfg: &Config, pass: Pass, spilled: Rc<Cell<u64>>) -
     Ok(PassStore { inner: store.partition(pass.name(), cfg.cache_bytes)?.with_auto_spill(), spilled })
 }
 
-/// Hands every indexed event, in path order, to `apply`.
+/// Events per chunk handed from the reading thread to the applying one.
+const CHUNK: usize = 4096;
+/// Chunks in flight between the two threads.
+const CHUNKS_AHEAD: usize = 4;
+
+/// Hands every indexed event, in path order, to `apply`. A second thread
+/// reads the lines back, parses and pseudonymizes them, chunk by chunk,
+/// while this one applies the previous chunk: the order `apply` sees, and
+/// so the output, is the same as on one thread.
 fn apply_events(
     idx: &Indexed,
     pseudo: &Pseudonymizer,
@@ -282,20 +290,46 @@ fn apply_events(
     show: bool,
     apply: &mut dyn FnMut(JourneyEvent) -> Result<()>,
 ) -> Result<()> {
-    let mut reader = LineReader::new(&idx.file);
-    let mut buf = Vec::new();
     let mut progress = Progress::new(show, pass.name(), idx.recs.len() as u64);
-    for (i, rec) in idx.recs.iter().enumerate() {
-        reader.read(rec.offset, rec.len, &mut buf).context("reading input back")?;
-        let mut ev = parse_event_limited(&buf, usize::MAX).map_err(|e| {
-            anyhow::anyhow!("the input changed while replaying (event at byte offset {}): {e}", rec.offset)
-        })?;
-        let key = pseudo.key_for(&ev.user_id);
-        ev.user_id.clear();
-        // The byte offset is the arrival sequence (it grows with the line).
-        apply(JourneyEvent::from_event(ev, key, rec.offset))?;
-        progress.tick(i as u64 + 1);
-    }
+    std::thread::scope(|scope| -> Result<()> {
+        let (tx, rx) = std::sync::mpsc::sync_channel::<Result<Vec<JourneyEvent>>>(CHUNKS_AHEAD);
+        scope.spawn(move || {
+            let mut reader = LineReader::new(&idx.file);
+            let mut buf = Vec::new();
+            for chunk in idx.recs.chunks(CHUNK) {
+                let read = chunk
+                    .iter()
+                    .map(|rec| {
+                        reader.read(rec.offset, rec.len, &mut buf).context("reading input back")?;
+                        let mut ev = parse_event_limited(&buf, usize::MAX).map_err(|e| {
+                            anyhow::anyhow!(
+                                "the input changed while replaying (event at byte offset {}): {e}",
+                                rec.offset
+                            )
+                        })?;
+                        let key = pseudo.key_for(&ev.user_id);
+                        ev.user_id.clear();
+                        // The byte offset is the arrival sequence (it grows with the line).
+                        Ok(JourneyEvent::from_event(ev, key, rec.offset))
+                    })
+                    .collect::<Result<Vec<_>>>();
+                let failed = read.is_err();
+                // A closed channel: the applying side stopped on an error.
+                if tx.send(read).is_err() || failed {
+                    return;
+                }
+            }
+        });
+        let mut done = 0u64;
+        for chunk in rx {
+            for ev in chunk? {
+                apply(ev)?;
+                done += 1;
+            }
+            progress.tick(done);
+        }
+        Ok(())
+    })?;
     progress.done();
     Ok(())
 }
