@@ -383,6 +383,25 @@ fn print_effective_hides_secrets() {
     let text = String::from_utf8_lossy(&o.stdout);
     assert!(!text.contains("very-secret-key") && !text.contains("hunter2"), "{text}");
     assert!(text.contains("postgres://writer:<set>@db.internal:5432/wh"), "{text}");
+    // Secret librdkafka properties and a keyword/value connection string.
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = dir.path().join("apportion.toml");
+    std::fs::write(
+        &cfg,
+        "[kafka]\n[kafka.properties]\n\"sasl.password\" = \"hunter3\"\n\"sasl.username\" = \"writer\"\n",
+    )
+    .unwrap();
+    let o = apportion()
+        .args(["config", "--print-effective", "--config"])
+        .arg(&cfg)
+        .env("APPORTION_POSTGRES_URL", "host=db user=writer password=hunter4 dbname=wh")
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(!text.contains("hunter3") && !text.contains("hunter4"), "{text}");
+    assert!(text.contains("\"sasl.username\" = \"writer\""), "{text}");
+    assert!(text.contains("password=<set>"), "{text}");
 }
 
 /// An event dated far after the moment replay runs is rejected with
