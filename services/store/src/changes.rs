@@ -43,11 +43,6 @@ impl ChangeSet {
         self.writes.is_empty()
     }
 
-    /// Bytes of keys and values (what shipping the set would carry).
-    pub fn bytes(&self) -> usize {
-        self.writes.iter().map(|(k, v)| k.len() + v.as_ref().map_or(0, |v| v.len())).sum()
-    }
-
     /// Applies every write to `tree` in one atomic batch.
     pub(crate) fn apply(&self, tree: &sled::Tree) -> Result<(), sled::Error> {
         let mut batch = sled::Batch::default();

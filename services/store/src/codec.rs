@@ -125,8 +125,9 @@ pub fn encode_journey(wake: Option<i64>, journey: &Journey) -> Vec<u8> {
     out
 }
 
-/// Decodes a journey record.
-pub fn decode_journey(bytes: &[u8]) -> Result<StoredJourney, StoreError> {
+/// The wake time of a journey record and the encoded journey after it,
+/// checking the version and length (the journey is not decoded).
+pub(crate) fn journey_header(bytes: &[u8]) -> Result<(Option<i64>, &[u8]), StoreError> {
     let corrupt = |d: &str| StoreError::Corrupt { prefix: 'j', detail: d.to_string() };
     let (&version, rest) = bytes.split_first().ok_or_else(|| corrupt("empty record"))?;
     if version != JOURNEY_FORMAT_VERSION {
@@ -136,7 +137,13 @@ pub fn decode_journey(bytes: &[u8]) -> Result<StoredJourney, StoreError> {
         return Err(corrupt("record too short"));
     }
     let wake = (rest[0] == 1).then(|| i64::from_be_bytes(rest[1..9].try_into().expect("8 bytes")));
-    let journey = bincode::deserialize(&rest[9..]).map_err(|e| corrupt(&e.to_string()))?;
+    Ok((wake, &rest[9..]))
+}
+
+/// Decodes a journey record.
+pub fn decode_journey(bytes: &[u8]) -> Result<StoredJourney, StoreError> {
+    let (wake, body) = journey_header(bytes)?;
+    let journey = bincode::deserialize(body).map_err(|e| StoreError::Corrupt { prefix: 'j', detail: e.to_string() })?;
     Ok(StoredJourney { wake, journey })
 }
 

@@ -10,7 +10,7 @@ use apportion_engine::datadriven::PathStats;
 use crate::changes::ChangeSet;
 use crate::codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats,
-    from_ordered_i64, ordered_i64, Clock, Decision,
+    from_ordered_i64, journey_header, ordered_i64, Clock, Decision,
 };
 use crate::seen::Seen;
 use crate::StoreError;
@@ -184,7 +184,7 @@ impl PartitionStore {
                     .try_into()
                     .map_err(|_| StoreError::Corrupt { prefix: 'j', detail: "user key is not 32 bytes".into() })?,
             );
-            if let Some(w) = record_wake(&v)? {
+            if let (Some(w), _) = journey_header(&v)? {
                 wakes.insert((w, key));
             }
             open_journeys += 1;
@@ -431,8 +431,8 @@ impl PartitionStore {
 
     /// Writes every change since the last commit in one atomic batch (with
     /// `durable`, also waits until sled has it on disk) and returns it: the
-    /// journeys changed since the last commit (new records, or tombstones of
-    /// closed ones), their wake index entries, the event ids seen, and what
+    /// journeys changed since the last commit (new records, each carrying
+    /// its wake time, or tombstones of closed ones), the event ids seen, and what
     /// was staged (offsets, clock, statistics, snapshot, source position,
     /// forgotten decisions and seen records). Applied in order to a copy of
     /// this partition's state as of the last commit, it gives the same state
@@ -538,21 +538,6 @@ impl PartitionStore {
             return Ok(true);
         }
         Ok(false)
-    }
-}
-
-/// The wake time a journey record carries (see `codec::encode_journey`),
-/// read without decoding the journey.
-fn record_wake(record: &[u8]) -> Result<Option<i64>, StoreError> {
-    match record {
-        [] => Err(StoreError::Corrupt { prefix: 'j', detail: "empty record".into() }),
-        [v, ..] if *v != crate::codec::JOURNEY_FORMAT_VERSION => {
-            Err(StoreError::UnknownVersion { found: *v, expected: crate::codec::JOURNEY_FORMAT_VERSION })
-        }
-        [_, flag, w @ ..] if w.len() >= 8 => {
-            Ok((*flag == 1).then(|| i64::from_be_bytes(w[..8].try_into().expect("8 bytes"))))
-        }
-        _ => Err(StoreError::Corrupt { prefix: 'j', detail: "record too short".into() }),
     }
 }
 
