@@ -36,7 +36,21 @@ impl Pseudonymizer {
         mac.update(user_id.as_bytes());
         UserKey(mac.finalize().into_bytes().into())
     }
+
+    /// A fingerprint of the secret key: the HMAC of a fixed label that no
+    /// user id can equal (it is not valid UTF-8), so it never matches a user
+    /// key. The store keeps it to refuse a different key (docs/contract.md,
+    /// "Pseudonymization key"); the key cannot be recovered from it.
+    pub fn fingerprint(&self) -> [u8; 32] {
+        let mut mac = self.mac.clone();
+        mac.update(FINGERPRINT_LABEL);
+        mac.finalize().into_bytes().into()
+    }
 }
+
+/// What [`Pseudonymizer::fingerprint`] authenticates: a leading 0xFF byte
+/// makes it invalid UTF-8, unlike every user id.
+const FINGERPRINT_LABEL: &[u8] = b"\xffapportion key fingerprint v1";
 
 #[cfg(test)]
 mod tests {
@@ -51,5 +65,21 @@ mod tests {
             p.key_for("what do ya want for nothing?").to_hex(),
             "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
         );
+    }
+
+    #[test]
+    fn fingerprint_depends_on_the_key_only() {
+        // The fingerprint is HMAC-SHA256(key, label) (RFC 2104); the same
+        // key gives the same fingerprint, another key another one, and no
+        // user id (valid UTF-8) can give it.
+        let a = Pseudonymizer::new(b"key-a");
+        assert_eq!(a.fingerprint(), Pseudonymizer::new(b"key-a").fingerprint());
+        assert_ne!(a.fingerprint(), Pseudonymizer::new(b"key-b").fingerprint());
+        // RFC 3629, section 1: the octet 0xFF never appears in UTF-8.
+        assert_eq!(FINGERPRINT_LABEL[0], 0xFF);
+        assert_ne!(a.fingerprint(), a.key_for("apportion key fingerprint v1").0);
+        // Check value from Python 3.11's hmac module:
+        // hmac.new(b"key-a", b"\xffapportion key fingerprint v1", hashlib.sha256).hexdigest()
+        assert_eq!(hex::encode(a.fingerprint()), "2798eed9994f2155406cd1f875abb820b646089da759fc865172991e35fb89cb");
     }
 }

@@ -365,10 +365,7 @@ pub fn fit(idx: &Indexed, cfg: &Config, pseudo: &Pseudonymizer, store: &Store, s
 pub fn run(io: &ReplayIo, cfg: &Config, pseudo: &Pseudonymizer) -> Result<Summary> {
     let started = Instant::now();
     let mut summary = Summary::default();
-    let store = match cfg.data_dir() {
-        Some(dir) => Store::open(&dir)?,
-        None => Store::temporary()?,
-    };
+    let store = crate::state_admin::open_keyed(cfg.data_dir().as_deref(), pseudo)?;
     let mut rejected = Rejected::open(io.rejected.as_deref())?;
     let idx = index(io, cfg, &mut rejected, &mut summary)?;
     rejected.finish()?;

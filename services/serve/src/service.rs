@@ -14,7 +14,6 @@ use std::time::Duration;
 use anyhow::{bail, Context, Result};
 use apportion_engine::Pseudonymizer;
 use apportion_sinks::{Observer, Sink};
-use apportion_store::Store;
 
 use crate::config::{Config, LogFormat};
 use crate::metrics::{Metrics, SinkObserver};
@@ -89,14 +88,15 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
         bail!("serve needs a pseudonymization key: set APPORTION_PSEUDONYM_KEY (or pseudonym_key in the config file)");
     }
     let data_dir = cfg.data_dir().unwrap_or_else(|| PathBuf::from("apportion-data"));
-    let store = Store::open(&data_dir)?;
+    let pseudo = Pseudonymizer::new(&key);
+    let store = crate::state_admin::open_keyed(Some(&data_dir), &pseudo)?;
     let metrics = Metrics::new(prometheus::Registry::new());
     let shared = Arc::new(Mutex::new(Shared {
         compare: cfg.admin.compare.then(|| apportion_report::Comparison::new(Default::default())),
         ..Shared::default()
     }));
     let stop = Arc::new(AtomicBool::new(false));
-    let mut pipeline = Pipeline::new(cfg.clone(), Pseudonymizer::new(&key), store, metrics.clone())?;
+    let mut pipeline = Pipeline::new(cfg.clone(), pseudo, store, metrics.clone())?;
 
     let rt = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build()?;
     let admin = rt

@@ -9,7 +9,7 @@ use std::path::Path;
 
 use anyhow::{Context, Result};
 use apportion_contract::time::format_ms;
-use apportion_store::{Clock, Store};
+use apportion_store::{Clock, KeyCheck, Store};
 
 /// One partition's committed state, for `apportion state show`.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -34,6 +34,22 @@ fn open(data_dir: &Path) -> Result<Store> {
     Store::open(data_dir).with_context(|| {
         format!("cannot open the store in {}; stop the service that uses it first", data_dir.display())
     })
+}
+
+/// The store of `data_dir` (a temporary one when `None`), checked against
+/// the fingerprint of the pseudonymization key (a store written with
+/// another key is refused: docs/contract.md, "Pseudonymization key").
+pub fn open_keyed(data_dir: Option<&Path>, pseudo: &apportion_engine::Pseudonymizer) -> Result<Store> {
+    let Some(dir) = data_dir else { return Ok(Store::temporary()?) };
+    let store = Store::open(dir)?;
+    if store.check_key_fingerprint(&pseudo.fingerprint())? == KeyCheck::Adopted {
+        tracing::warn!(
+            data_dir = %dir.display(),
+            "the store had no key fingerprint (written by an earlier build): recorded the configured key's; \
+             a store written with another key is refused from now on"
+        );
+    }
+    Ok(store)
 }
 
 fn time(ms: i64) -> Option<String> {

@@ -76,6 +76,14 @@ pub enum StoreError {
         /// Order configured.
         configured: usize,
     },
+    /// The store was written with another pseudonymization key.
+    #[error("state store: this data_dir was written with another pseudonymization key (key fingerprint {stored}..., the configured key's is {configured}...); user keys made with the two keys never match, so continuing would split every user in two. Start with the key the store was written with, or re-key: replay the input with the new key into a new data_dir (README, \"Key rotation\")")]
+    KeyMismatch {
+        /// First 16 hex digits of the stored fingerprint.
+        stored: String,
+        /// First 16 hex digits of the configured key's fingerprint.
+        configured: String,
+    },
     /// The data directory could not be used.
     #[error("state store: cannot open {path}: {detail}")]
     Open {
@@ -84,6 +92,21 @@ pub enum StoreError {
         /// Cause.
         detail: String,
     },
+}
+
+/// Key of the pseudonymization key's fingerprint in the default tree.
+const KEY_FINGERPRINT: &[u8] = b"key_fingerprint";
+
+/// What [`Store::check_key_fingerprint`] found.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum KeyCheck {
+    /// The store was written with the same key.
+    Matches,
+    /// A new store: the fingerprint is recorded.
+    Recorded,
+    /// A store with state but no fingerprint (written by an earlier build):
+    /// the fingerprint is recorded now, unverified.
+    Adopted,
 }
 
 /// How long [`Store::open`] waits for another handle to release the
@@ -150,6 +173,26 @@ impl Store {
     pub fn partition(&self, name: &str, cache_budget_bytes: usize) -> Result<PartitionStore, StoreError> {
         let tree = self.db.open_tree(format!("p/{name}"))?;
         PartitionStore::new(tree, self.db.clone(), cache_budget_bytes)
+    }
+
+    /// Checks the fingerprint of the pseudonymization key against the one
+    /// the store was written with, and records it in a store that has none
+    /// (new, or written by a build that did not record it). A different
+    /// fingerprint is [`StoreError::KeyMismatch`].
+    pub fn check_key_fingerprint(&self, fingerprint: &[u8; 32]) -> Result<KeyCheck, StoreError> {
+        match self.db.get(KEY_FINGERPRINT)? {
+            Some(v) if v.as_ref() == fingerprint => Ok(KeyCheck::Matches),
+            Some(v) => Err(StoreError::KeyMismatch {
+                stored: hex::encode(&v[..v.len().min(8)]),
+                configured: hex::encode(&fingerprint[..8]),
+            }),
+            None => {
+                let had_state = !self.partitions().is_empty();
+                self.db.insert(KEY_FINGERPRINT, &fingerprint[..])?;
+                self.db.flush()?;
+                Ok(if had_state { KeyCheck::Adopted } else { KeyCheck::Recorded })
+            }
+        }
     }
 
     /// Names of the partitions that have state.

@@ -330,3 +330,43 @@ fn over_budget_journeys_that_fit_encoded_are_not_spilled() {
     }
     assert_eq!(p.due(10_000).unwrap().len(), 200);
 }
+
+/// A store remembers the fingerprint of the key it was written with and
+/// refuses another key (issue: a wrong key silently splits every user in
+/// two). Expected outcomes derived by hand from docs/contract.md,
+/// "Pseudonymization key".
+#[test]
+fn a_store_refuses_another_pseudonymization_key() {
+    use apportion_store::KeyCheck;
+    let a = Pseudonymizer::new(b"key-a").fingerprint();
+    let b = Pseudonymizer::new(b"key-b").fingerprint();
+    let dir = tempfile::tempdir().unwrap();
+    {
+        let store = Store::open(dir.path()).unwrap();
+        assert_eq!(store.check_key_fingerprint(&a).unwrap(), KeyCheck::Recorded);
+        assert_eq!(store.check_key_fingerprint(&a).unwrap(), KeyCheck::Matches);
+    }
+    let store = Store::open(dir.path()).unwrap();
+    assert_eq!(store.check_key_fingerprint(&a).unwrap(), KeyCheck::Matches, "kept across reopening");
+    let err = store.check_key_fingerprint(&b).unwrap_err();
+    assert!(matches!(err, StoreError::KeyMismatch { .. }), "{err}");
+    let msg = err.to_string();
+    assert!(msg.contains("another pseudonymization key") && msg.contains("Key rotation"), "{msg}");
+    assert!(msg.contains(&hex::encode(&a[..8])) && msg.contains(&hex::encode(&b[..8])), "{msg}");
+    assert_eq!(store.check_key_fingerprint(&a).unwrap(), KeyCheck::Matches, "a refusal changes nothing");
+}
+
+/// A store written before fingerprints were recorded (state, no
+/// fingerprint) adopts the first key it is opened with.
+#[test]
+fn a_store_without_a_fingerprint_adopts_the_first_key() {
+    use apportion_store::KeyCheck;
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path()).unwrap();
+    let mut p = store.partition("events/0", 1 << 20).unwrap();
+    p.stage_offset("events/0", 7);
+    p.commit(true).unwrap();
+    let a = Pseudonymizer::new(b"key-a").fingerprint();
+    assert_eq!(store.check_key_fingerprint(&a).unwrap(), KeyCheck::Adopted);
+    assert!(store.check_key_fingerprint(&Pseudonymizer::new(b"key-b").fingerprint()).is_err());
+}

@@ -20,7 +20,6 @@ use apportion_serve::config::Config;
 use apportion_serve::output::Rejected;
 use apportion_serve::refit::GLOBAL_SEED;
 use apportion_serve::replay_file::{apply_pass, index, ReplayIo, Summary};
-use apportion_store::Store;
 use serde::Serialize;
 
 #[derive(Debug, Serialize)]
@@ -68,10 +67,7 @@ struct Report {
 /// Runs `explain`; prints text or JSON on stdout.
 pub fn run(input: &str, conversion: Option<&str>, json: bool, cfg: &Config, pseudo: &Pseudonymizer) -> Result<()> {
     let io = ReplayIo { input: input.to_string(), output: "-".into(), paths: None, rejected: None, progress: !json };
-    let store = match cfg.data_dir() {
-        Some(d) => Store::open(&d)?,
-        None => Store::temporary()?,
-    };
+    let store = apportion_serve::state_admin::open_keyed(cfg.data_dir().as_deref(), pseudo)?;
     let mut summary = Summary::default();
     let mut rejected = Rejected::open(None)?;
     let idx = index(&io, cfg, &mut rejected, &mut summary)?;
