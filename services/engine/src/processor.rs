@@ -119,6 +119,8 @@ pub enum Effect {
         touches: usize,
         /// Pending conversions dropped.
         conversions: usize,
+        /// Event ids of the pending conversions dropped.
+        conversion_ids: Vec<String>,
     },
 }
 
@@ -161,7 +163,12 @@ impl Processor {
             JourneyEventKind::Touch(t) => j.add_touch(t),
             JourneyEventKind::Conversion(c) => j.add_conversion(c),
             JourneyEventKind::Erase { .. } => {
-                let effect = Effect::Erased { user_key: key, touches: j.touches.len(), conversions: j.pending.len() };
+                let effect = Effect::Erased {
+                    user_key: key,
+                    touches: j.touches.len(),
+                    conversions: j.pending.len(),
+                    conversion_ids: j.pending.into_iter().map(|c| c.event_id).collect(),
+                };
                 store.save(&key, Journey::default(), None)?;
                 return Ok(vec![effect]);
             }

@@ -211,7 +211,7 @@ pub fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut
             Ok(ev) => {
                 // Duplicates: the first occurrence in input order wins, as
                 // the first arrival does in the streaming service.
-                if !seen.first(ev.kind, &ev.event_id) {
+                if !seen.first(&ev) {
                     summary.duplicates += 1;
                 } else {
                     // parse_event_limited bounds the length by max_event_bytes (< 4 GiB).

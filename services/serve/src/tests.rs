@@ -620,3 +620,74 @@ mod redelivery {
         }
     }
 }
+
+fn erase(user: &str, ts: i64) -> Vec<u8> {
+    format!(r#"{{"type":"erase","user_id":"{user}","timestamp":{ts}}}"#).into_bytes()
+}
+
+#[test]
+fn an_erase_before_the_watermark_is_applied_not_dead_lettered() {
+    // Contract: Journey rules, Erase (derived by hand): the watermark after
+    // [u@100s, v@300s] is 300s (allowed lateness 0); an erase of u dated 50s
+    // is before it, yet it is applied under either late policy, so u's
+    // conversion at 400s finds no touch (one `unattributed` row).
+    for policy in [LatePolicy::DeadLetter, LatePolicy::Apply] {
+        let mut p = pipeline(Config { late_policy: policy, ..config() }, Store::temporary().unwrap());
+        p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+        let now = Instant::now();
+        let mut out = OutputBatch::default();
+        let batch = vec![touch("a", "u", 100 * SEC, "email"), touch("b", "v", 300 * SEC, "seo"), erase("u", 50 * SEC)];
+        let st = p.process(&part(), &msgs(1, batch, now), &mut out).unwrap();
+        assert_eq!(st[2], MsgStatus::Accepted, "{policy:?}");
+        assert!(out.dead_letters.is_empty(), "{:?}", out.dead_letters);
+        p.process(&part(), &msgs(4, vec![conversion("c", "u", 400 * SEC)], now), &mut out).unwrap();
+        assert_eq!(out.credit.len(), 1);
+        assert_eq!(out.credit[0].channel, "unattributed");
+    }
+}
+
+#[test]
+fn a_resent_erase_does_not_wipe_later_touches() {
+    // A producer that re-sends an erase after a crash (same user, same
+    // time, no event id) must not erase the touch that arrived in between:
+    // the copy is a duplicate (contract: Journey rules, Erase; derived by
+    // hand). The conversion then credits the later touch alone.
+    let mut p = pipeline(config(), Store::temporary().unwrap());
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let now = Instant::now();
+    let mut out = OutputBatch::default();
+    let batch = vec![
+        touch("a", "u", 100 * SEC, "email"),
+        erase("u", 110 * SEC),
+        touch("b", "u", 120 * SEC, "seo"),
+        erase("u", 110 * SEC),
+        conversion("c", "u", 130 * SEC),
+    ];
+    let st = p.process(&part(), &msgs(1, batch, now), &mut out).unwrap();
+    assert_eq!(st[3], MsgStatus::Duplicate);
+    assert_eq!(out.credit.len(), 1);
+    assert_eq!(out.credit[0].channel, "seo");
+    // A second erase of the same user at another time is a new request.
+    let mut out = OutputBatch::default();
+    let batch = vec![touch("d", "u", 140 * SEC, "email"), erase("u", 150 * SEC), conversion("e", "u", 160 * SEC)];
+    p.process(&part(), &msgs(6, batch, now), &mut out).unwrap();
+    assert_eq!(out.credit.len(), 1);
+    assert_eq!(out.credit[0].channel, "unattributed");
+}
+
+#[test]
+fn an_erased_conversion_leaves_no_arrival_behind() {
+    // Allowed lateness 60s: the conversion at 100s waits for the watermark
+    // (contract: Streaming time); erasing the user drops it, and its arrival
+    // time must go with it (it is never credited).
+    let mut p = pipeline(Config { allowed_lateness: Period(60 * SEC), ..config() }, Store::temporary().unwrap());
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let now = Instant::now();
+    let mut out = OutputBatch::default();
+    let batch = vec![touch("a", "u", 90 * SEC, "email"), conversion("c", "u", 100 * SEC)];
+    p.process(&part(), &msgs(1, batch, now), &mut out).unwrap();
+    assert_eq!(p.pending_arrivals(&part()), 1);
+    p.process(&part(), &msgs(3, vec![erase("u", 101 * SEC)], now), &mut out).unwrap();
+    assert_eq!(p.pending_arrivals(&part()), 0);
+    assert!(out.credit.is_empty());
+}

@@ -6,7 +6,7 @@
 
 use std::collections::HashSet;
 
-use apportion_contract::EventKind;
+use apportion_contract::{Event, EventKind};
 use sha2::{Digest, Sha256};
 
 /// 128-bit digest of an event id (16 bytes a remembered id instead of the
@@ -15,6 +15,34 @@ use sha2::{Digest, Sha256};
 pub fn event_id_digest(event_id: &str) -> u128 {
     let d = Sha256::digest(event_id.as_bytes());
     u128::from_be_bytes(d[..16].try_into().expect("16 bytes"))
+}
+
+/// The identity of an `erase` without an `event_id`: a digest of its user
+/// (raw id in `replay`, user key in `serve`: either names one user) and its
+/// event time, kept apart from every event id by a leading 0xFF byte (an
+/// event id is UTF-8, which never holds 0xFF). A re-sent copy of an erase
+/// has the same identity and is dropped as a duplicate, so it cannot wipe
+/// touches that arrived after the first (docs/contract.md, "Erase").
+pub fn erase_digest(user: &[u8], timestamp_ms: i64) -> u128 {
+    let mut h = Sha256::new();
+    h.update([0xFF]);
+    h.update(b"erase");
+    h.update((user.len() as u64).to_be_bytes());
+    h.update(user);
+    h.update(timestamp_ms.to_be_bytes());
+    let d = h.finalize();
+    u128::from_be_bytes(d[..16].try_into().expect("16 bytes"))
+}
+
+/// The identity under which an event is remembered for duplicate
+/// detection: its `event_id`, or for an erase without one,
+/// [`erase_digest`] of `user` and its time.
+pub fn dedupe_digest(kind: EventKind, event_id: &str, user: &[u8], timestamp_ms: i64) -> u128 {
+    if kind == EventKind::Erase && event_id.is_empty() {
+        erase_digest(user, timestamp_ms)
+    } else {
+        event_id_digest(event_id)
+    }
 }
 
 /// Remembers the event ids seen so far, in input order.
@@ -44,10 +72,10 @@ impl FirstSeen {
         self.seen.reserve(n);
     }
 
-    /// True when this event is the first with its id (and remembers it).
-    /// `erase` events are never duplicates: their id is optional and an
-    /// erase is idempotent.
-    pub fn first(&mut self, kind: EventKind, event_id: &str) -> bool {
-        kind == EventKind::Erase || event_id.is_empty() || self.seen.insert(event_id_digest(event_id))
+    /// True when this event is the first with its identity (and remembers
+    /// it): its id, or for an erase without one its user and time
+    /// ([`dedupe_digest`]).
+    pub fn first(&mut self, ev: &Event) -> bool {
+        self.seen.insert(dedupe_digest(ev.kind, &ev.event_id, ev.user_id.as_bytes(), ev.timestamp_ms))
     }
 }

@@ -21,7 +21,7 @@ use crate::processor::{Effect, JourneyEvent, JourneyStore, MemStore, Processor};
 use crate::pseudonym::Pseudonymizer;
 use crate::registry::ModelPlan;
 
-pub use dedupe::{event_id_digest, FirstSeen};
+pub use dedupe::{dedupe_digest, erase_digest, event_id_digest, FirstSeen};
 pub use two_pass::{Pass, Replayed};
 
 /// The replay loop over events in path order (already deduplicated).
@@ -108,7 +108,7 @@ pub fn sorted_events(lines: &[&str]) -> SortedEvents {
             continue;
         }
         match parse_event(line.as_bytes()) {
-            Ok(ev) if seen.first(ev.kind, &ev.event_id) => out.events.push((n, ev)),
+            Ok(ev) if seen.first(&ev) => out.events.push((n, ev)),
             Ok(_) => out.duplicates += 1,
             Err(r) => out.rejected.push((n, r)),
         }

@@ -46,7 +46,12 @@ pub fn emit(
                     Outcome::Expired { .. } => metrics.journeys_closed.with_label_values(&["expired"]).inc(),
                 }
             }
-            Effect::Erased { .. } => metrics.journeys_closed.with_label_values(&["erased"]).inc(),
+            Effect::Erased { conversion_ids, .. } => {
+                metrics.journeys_closed.with_label_values(&["erased"]).inc();
+                for id in conversion_ids {
+                    arrivals.remove(id);
+                }
+            }
         }
         let (rows, path) = effect_rows(e, models);
         for r in &rows {

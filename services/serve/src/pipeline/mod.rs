@@ -19,14 +19,14 @@ pub mod emit;
 pub mod partition;
 pub mod policy;
 
-use std::collections::{BTreeMap, HashMap};
+use std::collections::BTreeMap;
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use anyhow::{Context, Result};
 use apportion_contract::time::format_ms;
 use apportion_contract::{EventKind, RejectReason, Rejection};
 use apportion_engine::datadriven::PathStats;
-use apportion_engine::replay::event_id_digest;
+use apportion_engine::replay::dedupe_digest;
 use apportion_engine::{Effect, JourneyEvent, Model, Processor, Pseudonymizer};
 use apportion_sinks::OutputBatch;
 use apportion_store::Store;
@@ -53,7 +53,6 @@ pub struct Pipeline {
     store: Store,
     parts: BTreeMap<PartId, PartState>,
     refit: Refit,
-    arrivals: HashMap<String, Instant>,
     metrics: Metrics,
 }
 
@@ -68,7 +67,6 @@ impl Pipeline {
             store,
             parts: BTreeMap::new(),
             refit,
-            arrivals: HashMap::new(),
             metrics,
         })
     }
@@ -113,6 +111,12 @@ impl Pipeline {
         self.parts.remove(id);
         self.metrics.watermark_lag.remove_label_values(&[&id.source, &id.partition.to_string()]).ok();
         Ok(())
+    }
+
+    /// Conversions of an open partition read and not yet credited or
+    /// erased (their arrival times wait for the latency histogram).
+    pub fn pending_arrivals(&self, id: &PartId) -> usize {
+        self.parts.get(id).map_or(0, |p| p.arrivals.len())
     }
 
     /// The watermark of an open partition.
@@ -235,19 +239,25 @@ impl Pipeline {
         // Remembered for dedupe_horizon past the later of its event time and
         // the watermark it arrived at (a late event too), so whether an id is
         // a duplicate depends only on the message sequence.
+        // An erase without an event id is known by its user and time, so a
+        // re-sent copy is a duplicate too (contract: Journey rules, Erase).
         let wm = part.clock.watermark;
-        if ev.kind != EventKind::Erase
-            && !part.store.mark_seen(
-                event_id_digest(&ev.event_id),
-                ev.timestamp_ms.max(wm),
-                wm.saturating_sub(self.cfg.dedupe_horizon.ms()),
-            )
-        {
+        if !part.store.mark_seen(
+            dedupe_digest(ev.kind, &ev.event_id, &key.0, ev.timestamp_ms),
+            ev.timestamp_ms.max(wm),
+            wm.saturating_sub(self.cfg.dedupe_horizon.ms()),
+        ) {
             self.metrics.events_consumed.with_label_values(&[kind, "duplicate"]).inc();
             return Ok(MsgStatus::Duplicate);
         }
         let mut outcome = "accepted";
-        match policy::judge(ev.timestamp_ms, part.clock.watermark, self.cfg.late_policy) {
+        // An erase is never late: it takes effect where it arrives.
+        let judged = if ev.kind == EventKind::Erase {
+            Lateness::OnTime
+        } else {
+            policy::judge(ev.timestamp_ms, part.clock.watermark, self.cfg.late_policy)
+        };
+        match judged {
             Lateness::OnTime => {}
             Lateness::DeadLetter => {
                 let r = Rejection::new(
@@ -271,7 +281,7 @@ impl Pipeline {
         }
         self.metrics.events_consumed.with_label_values(&[kind, outcome]).inc();
         if ev.kind == EventKind::Conversion {
-            self.arrivals.insert(ev.event_id.clone(), m.arrived);
+            part.arrivals.insert(ev.event_id.clone(), m.arrived);
         }
         part.clock.max_ts = part.clock.max_ts.max(ev.timestamp_ms);
         let seq = m.offset.max(0) as u64;
@@ -381,7 +391,7 @@ impl Pipeline {
     fn emit(&mut self, id: &PartId, effects: &[Effect], out: &mut OutputBatch) {
         let part = self.parts.get_mut(id).expect("open partition");
         let models = part.snapshot.models();
-        if emit::emit(effects, models, &mut part.stats, &mut self.arrivals, &self.metrics, out) {
+        if emit::emit(effects, models, &mut part.stats, &mut part.arrivals, &self.metrics, out) {
             part.stats_dirty = true;
         }
     }

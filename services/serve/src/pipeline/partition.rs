@@ -2,7 +2,7 @@
 //! recorded decisions and model snapshot, and how they are opened from and
 //! committed to the store.
 
-use std::collections::{BTreeMap, BTreeSet};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 use std::sync::Arc;
 use std::time::Instant;
 
@@ -104,6 +104,10 @@ pub struct PartState {
     pub source_position: Option<Vec<u8>>,
     /// Repartitioned input: the progress of every input partition.
     pub sources: SourceClocks,
+    /// When each pending conversion of this partition was read (for the
+    /// latency histogram); an entry leaves when the conversion is credited
+    /// or erased, or with the partition.
+    pub arrivals: HashMap<String, Instant>,
 }
 
 impl PartState {
@@ -150,6 +154,7 @@ impl PartState {
             adopt: None,
             source_position: None,
             sources,
+            arrivals: HashMap::new(),
         })
     }
 

@@ -231,7 +231,7 @@ fn replay_events(events: &[(u64, Event)], p: &Pseudonymizer) -> (Vec<CreditRow>,
     let mut duplicates = 0;
     let mut kept: Vec<&(u64, Event)> = Vec::new();
     for e in events {
-        if seen.first(e.1.kind, &e.1.event_id) {
+        if seen.first(&e.1) {
             kept.push(e);
         } else {
             duplicates += 1;
