@@ -19,6 +19,11 @@ use serde::{Deserialize, Serialize};
 /// The documented default configuration file.
 pub const DEFAULT_CONFIG: &str = include_str!("default_config.toml");
 
+/// The largest `max_event_bytes` accepted: well below the longest line the
+/// file follower reads (64 MiB), so a longer line is always rejected as
+/// `too_large`.
+pub const MAX_EVENT_BYTES_LIMIT: usize = 16 << 20;
+
 /// What to do with an event older than the watermark.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
 #[serde(rename_all = "snake_case")]
@@ -290,6 +295,12 @@ impl Config {
             }
         }
         check_params(&self.rule_params())?;
+        if !(1..=MAX_EVENT_BYTES_LIMIT).contains(&self.max_event_bytes) {
+            bail!(
+                "max_event_bytes must be between 1 and {MAX_EVENT_BYTES_LIMIT} (16 MiB), got {}",
+                self.max_event_bytes
+            );
+        }
         if self.lookback.ms() <= 0 || self.expiry.ms() <= 0 {
             bail!("lookback and expiry must be greater than 0");
         }
@@ -502,6 +513,18 @@ fn apply_env(value: &mut toml::Value, env: impl IntoIterator<Item = (String, Str
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn max_event_bytes_is_bounded() {
+        // 0 and more than 16 MiB are refused (the file follower cuts lines
+        // at 64 MiB; derived by hand from the limits in embedded/file.rs).
+        for bad in [0, MAX_EVENT_BYTES_LIMIT + 1] {
+            let err = Config { max_event_bytes: bad, ..Config::default() }.validate().unwrap_err();
+            assert!(err.to_string().contains("max_event_bytes must be between 1 and"), "{err}");
+        }
+        assert!(Config { max_event_bytes: MAX_EVENT_BYTES_LIMIT, ..Config::default() }.validate().is_ok());
+        assert!(MAX_EVENT_BYTES_LIMIT < crate::embedded::file::READ_LIMIT as usize);
+    }
 
     #[test]
     fn default_file_is_the_default_config() {

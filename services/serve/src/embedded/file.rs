@@ -24,8 +24,10 @@ use crate::source::{ErrorLog, InMsg};
 pub const GENERATION_SHIFT: u32 = 40;
 const POS_MASK: i64 = (1 << GENERATION_SHIFT) - 1;
 /// The longest line read (longer ones are cut at this size and rejected as
-/// too large by the parser).
-const READ_LIMIT: u64 = 64 << 20;
+/// too large by the parser; `max_event_bytes` is at most this).
+pub const READ_LIMIT: u64 = 64 << 20;
+/// The first read of a poll, grown up to READ_LIMIT while no line ends in it.
+const FIRST_WINDOW: u64 = 1 << 20;
 
 /// A file's identity: device and inode.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -74,6 +76,9 @@ pub struct Follower {
     file: Option<(File, Identity)>,
     caught_up: bool,
     errors: ErrorLog,
+    /// A line longer than READ_LIMIT not yet ended: (generation, its start,
+    /// position scanned up to without finding its end).
+    long_scan: Option<(u64, u64, u64)>,
 }
 
 impl Follower {
@@ -81,7 +86,15 @@ impl Follower {
     /// `identity` (both `None` for a new partition).
     pub fn new(path: PathBuf, offset: Option<i64>, identity: Option<Identity>) -> Self {
         let (generation, pos) = offset.map(split_offset).unwrap_or((0, 0));
-        let mut f = Follower { path, generation, pos, file: None, caught_up: false, errors: ErrorLog::default() };
+        let mut f = Follower {
+            path,
+            generation,
+            pos,
+            file: None,
+            caught_up: false,
+            errors: ErrorLog::default(),
+            long_scan: None,
+        };
         match (std::fs::File::open(&f.path), identity) {
             (Ok(file), Some(id)) => {
                 let meta = file.metadata();
@@ -190,11 +203,22 @@ impl Follower {
         if len <= self.pos {
             return Vec::new();
         }
+        // Read a window that holds at least one complete line: start small
+        // (a poll takes a batch, not the whole backlog) and grow while no
+        // line ends in it, up to READ_LIMIT.
         let mut buf = Vec::new();
-        let want = (len - self.pos).min(READ_LIMIT);
-        if let Err(e) = f.seek(SeekFrom::Start(self.pos)).and_then(|_| f.take(want).read_to_end(&mut buf)) {
-            self.errors.report(&format!("cannot read the followed file {}", self.path.display()), &e);
-            return Vec::new();
+        let mut want = (len - self.pos).min(FIRST_WINDOW);
+        loop {
+            buf.clear();
+            if let Err(e) = f.seek(SeekFrom::Start(self.pos)).and_then(|_| f.by_ref().take(want).read_to_end(&mut buf))
+            {
+                self.errors.report(&format!("cannot read the followed file {}", self.path.display()), &e);
+                return Vec::new();
+            }
+            if buf.contains(&b'\n') || want == len - self.pos || want >= READ_LIMIT {
+                break;
+            }
+            want = (want * 8).min(READ_LIMIT).min(len - self.pos);
         }
         let mut out = Vec::new();
         let mut start = 0usize;
@@ -216,7 +240,53 @@ impl Follower {
             start += nl + 1;
         }
         self.pos += start as u64;
+        if out.is_empty() && buf.len() as u64 >= READ_LIMIT && !buf.contains(&b'\n') {
+            // One line longer than READ_LIMIT: its first READ_LIMIT bytes
+            // go on as the message (rejected as too large by the parser),
+            // the rest is skipped, so the lines after it are not held up.
+            if let Some(end) = self.end_of_long_line(len) {
+                buf.truncate(READ_LIMIT as usize);
+                out.push(InMsg {
+                    offset: offset_of(self.generation, end),
+                    payload: buf,
+                    arrived: now,
+                    timestamp_ms: wall,
+                });
+                self.pos = end;
+                self.long_scan = None;
+            }
+        }
         out
+    }
+
+    /// The position just past the newline that ends the line starting at
+    /// the current position (longer than READ_LIMIT), if it has been written;
+    /// scans from where the last call stopped.
+    fn end_of_long_line(&mut self, len: u64) -> Option<u64> {
+        let (f, _) = self.file.as_mut()?;
+        let mut at = match self.long_scan {
+            Some((g, p, scanned)) if g == self.generation && p == self.pos => scanned,
+            _ => self.pos + READ_LIMIT,
+        };
+        let mut chunk = Vec::with_capacity(FIRST_WINDOW as usize);
+        while at < len {
+            chunk.clear();
+            if let Err(e) =
+                f.seek(SeekFrom::Start(at)).and_then(|_| f.by_ref().take(FIRST_WINDOW).read_to_end(&mut chunk))
+            {
+                self.errors.report(&format!("cannot read the followed file {}", self.path.display()), &e);
+                return None;
+            }
+            if chunk.is_empty() {
+                break;
+            }
+            if let Some(nl) = chunk.iter().position(|b| *b == b'\n') {
+                return Some(at + nl as u64 + 1);
+            }
+            at += chunk.len() as u64;
+        }
+        self.long_scan = Some((self.generation, self.pos, at));
+        None
     }
 }
 
@@ -279,5 +349,27 @@ mod tests {
         assert_eq!(texts(&got), ["x"]);
         assert!(got[0].offset > offset);
         assert_eq!(Identity::from_bytes(&id.to_bytes()), Some(id));
+    }
+
+    #[test]
+    fn a_line_longer_than_the_read_limit_does_not_stall_the_lines_after_it() {
+        // Issue 15, item 9 (derived by hand): a line of READ_LIMIT + 10
+        // bytes goes on cut to READ_LIMIT bytes (the parser rejects it as
+        // too_large), and the line after it is read; while the long line has
+        // no end yet, nothing after it is read.
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("events.ndjson");
+        append(&path, "a\n");
+        let long = "x".repeat(READ_LIMIT as usize + 10);
+        append(&path, &long);
+        let mut f = Follower::new(path.clone(), None, None);
+        assert_eq!(texts(&f.read(10)), ["a"]);
+        assert!(f.read(10).is_empty(), "the long line has not ended yet");
+        append(&path, "\nb\n");
+        let got = f.read(10);
+        assert_eq!(got.len(), 1);
+        assert_eq!(got[0].payload.len() as u64, READ_LIMIT);
+        assert_eq!(split_offset(got[0].offset).1, 2 + long.len() as u64 + 1);
+        assert_eq!(texts(&f.read(10)), ["b"]);
     }
 }
