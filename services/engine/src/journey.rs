@@ -28,12 +28,29 @@ pub struct Rules {
     pub view_lookback_ms: i64,
     /// A journey closes as non-converting when `last_touch + expiry < watermark`.
     pub expiry_ms: i64,
+    /// At most this many touches in one run (the touches a path can be made
+    /// of: no pending conversion and no gap longer than `expiry` between
+    /// them); the oldest goes when a newer one would exceed it. 0: no cap.
+    #[serde(default = "default_max_touches")]
+    pub max_touches: usize,
+}
+
+/// The default of [`Rules::max_touches`].
+pub const DEFAULT_MAX_TOUCHES: usize = 1000;
+
+fn default_max_touches() -> usize {
+    DEFAULT_MAX_TOUCHES
 }
 
 impl Default for Rules {
     fn default() -> Self {
         let day = 86_400_000;
-        Rules { lookback_ms: 30 * day, view_lookback_ms: 30 * day, expiry_ms: 30 * day }
+        Rules {
+            lookback_ms: 30 * day,
+            view_lookback_ms: 30 * day,
+            expiry_ms: 30 * day,
+            max_touches: DEFAULT_MAX_TOUCHES,
+        }
     }
 }
 
@@ -119,6 +136,39 @@ impl Journey {
     pub fn add_touch(&mut self, t: Touch) {
         let at = self.touches.partition_point(|x| (x.ts, x.seq) <= (t.ts, t.seq));
         self.touches.insert(at, t);
+    }
+
+    /// Adds a touch in (ts, seq) order under the cap `rules.max_touches`:
+    /// when the touch's run (see [`Rules::max_touches`]) then holds more,
+    /// its oldest touch is dropped. Returns the number of touches dropped
+    /// (0 or 1; the new touch itself when it is the oldest of a full run).
+    pub fn add_touch_capped(&mut self, t: Touch, rules: &Rules) -> usize {
+        let at = self.touches.partition_point(|x| (x.ts, x.seq) <= (t.ts, t.seq));
+        self.touches.insert(at, t);
+        if rules.max_touches == 0 {
+            return 0;
+        }
+        let mut start = at;
+        while start > 0 && !self.run_boundary(start, rules.expiry_ms) {
+            start -= 1;
+        }
+        let mut end = at + 1;
+        while end < self.touches.len() && !self.run_boundary(end, rules.expiry_ms) {
+            end += 1;
+        }
+        if end - start > rules.max_touches {
+            self.touches.remove(start);
+            return 1;
+        }
+        0
+    }
+
+    /// True when touches `i - 1` and `i` are in different runs: a gap longer
+    /// than `expiry` or a pending conversion between them.
+    fn run_boundary(&self, i: usize, expiry_ms: i64) -> bool {
+        let (a, b) = (&self.touches[i - 1], &self.touches[i]);
+        let next = self.pending.partition_point(|c| (c.ts, c.seq) <= (a.ts, a.seq));
+        expired(a.ts, expiry_ms, b.ts) || self.pending.get(next).is_some_and(|c| (c.ts, c.seq) < (b.ts, b.seq))
     }
 
     /// Adds a conversion; it is credited once the watermark reaches its time.

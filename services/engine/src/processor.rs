@@ -122,6 +122,14 @@ pub enum Effect {
         /// Event ids of the pending conversions dropped.
         conversion_ids: Vec<String>,
     },
+    /// Touches dropped from the user's journey under `max_touches` (the
+    /// oldest of a full run; contract: Journey rules, Touch cap).
+    TouchesDropped {
+        /// User.
+        user_key: UserKey,
+        /// Touches dropped.
+        touches: usize,
+    },
 }
 
 /// Applies events under the journey rules.
@@ -159,8 +167,9 @@ impl Processor {
     ) -> Result<Vec<Effect>, S::Error> {
         let key = event.user_key;
         let mut j = store.take(&key)?.unwrap_or_default();
+        let mut dropped = 0;
         match event.kind {
-            JourneyEventKind::Touch(t) => j.add_touch(t),
+            JourneyEventKind::Touch(t) => dropped = j.add_touch_capped(t, &self.rules),
             JourneyEventKind::Conversion(c) => j.add_conversion(c),
             JourneyEventKind::Erase { .. } => {
                 let effect = Effect::Erased {
@@ -176,7 +185,12 @@ impl Processor {
         let outcomes = j.advance(watermark, &self.rules);
         let wake = j.next_wake(&self.rules);
         store.save(&key, j, wake)?;
-        Ok(outcomes.into_iter().map(|outcome| Effect::Journey { user_key: key, outcome }).collect())
+        let mut effects: Vec<Effect> = Vec::with_capacity(outcomes.len() + 1);
+        if dropped > 0 {
+            effects.push(Effect::TouchesDropped { user_key: key, touches: dropped });
+        }
+        effects.extend(outcomes.into_iter().map(|outcome| Effect::Journey { user_key: key, outcome }));
+        Ok(effects)
     }
 
     /// End of input: credits every pending conversion and closes every open

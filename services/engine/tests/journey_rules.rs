@@ -286,3 +286,21 @@ fn raw_user_id_never_reaches_output() {
     assert!(!text.contains("alice"));
     assert_eq!(serde_json::to_value(&r.rows[0]).unwrap()["user_key"].as_str().unwrap().len(), 64);
 }
+
+#[test]
+fn the_touch_cap_keeps_the_newest_touches_of_a_run() {
+    // max_touches 3: five touches a day apart, then a conversion: the two
+    // oldest are dropped, the conversion credits days 3, 4 and 5. After the
+    // conversion a new run starts, with room for three touches again.
+    let t0 = 100 * DAY;
+    let mut lines: Vec<String> = (1..=5).map(|d| touch(&format!("t{d}"), "u", t0 + d * DAY, "email")).collect();
+    lines.push(conv("c1", "u", t0 + 6 * DAY));
+    lines.extend((7..=9).map(|d| touch(&format!("t{d}"), "u", t0 + d * DAY, "seo")));
+    lines.push(conv("c2", "u", t0 + 10 * DAY));
+    let r = run(&refs(&lines), Rules { max_touches: 3, ..Rules::default() });
+    assert_eq!(touches_of(&r, "c1"), vec![Some("t3".into()), Some("t4".into()), Some("t5".into())]);
+    assert_eq!(touches_of(&r, "c2"), vec![Some("t7".into()), Some("t8".into()), Some("t9".into())]);
+    // No cap: all five.
+    let r = run(&refs(&lines), Rules { max_touches: 0, ..Rules::default() });
+    assert_eq!(touches_of(&r, "c1").len(), 5);
+}

@@ -93,7 +93,7 @@ fn lines_of(events: &[Ev]) -> Vec<String> {
 fn replay_all(lines: &[String]) -> Vec<String> {
     let p = Pseudonymizer::new(b"k");
     let refs: Vec<&str> = lines.iter().map(String::as_str).collect();
-    let rules = Rules { lookback_ms: 10 * DAY, view_lookback_ms: 10 * DAY, expiry_ms: 7 * DAY };
+    let rules = Rules { lookback_ms: 10 * DAY, view_lookback_ms: 10 * DAY, expiry_ms: 7 * DAY, ..Rules::default() };
     let r = replay_lines(&refs, rules, &p, &ModelPlan::rules());
     let mut out: Vec<String> = r.rows.iter().map(|x| serde_json::to_string(x).unwrap()).collect();
     out.extend(r.paths.iter().map(|x| serde_json::to_string(x).unwrap()));
@@ -147,6 +147,10 @@ fn outcomes_per_event(items: &[(i64, u64, bool)], rules: &Rules) -> Vec<Outcome>
 }
 
 fn add(j: &mut Journey, ts: i64, seq: u64, conv: bool) {
+    add_capped(j, ts, seq, conv, &Rules { max_touches: 0, ..Rules::default() });
+}
+
+fn add_capped(j: &mut Journey, ts: i64, seq: u64, conv: bool, rules: &Rules) {
     if conv {
         j.add_conversion(Conversion {
             event_id: format!("c{seq}"),
@@ -157,14 +161,17 @@ fn add(j: &mut Journey, ts: i64, seq: u64, conv: bool) {
             currency: None,
         });
     } else {
-        j.add_touch(Touch {
-            event_id: format!("t{seq}"),
-            ts,
-            seq,
-            channel: format!("ch{}", seq % 3),
-            campaign: None,
-            interaction: Interaction::Click,
-        });
+        j.add_touch_capped(
+            Touch {
+                event_id: format!("t{seq}"),
+                ts,
+                seq,
+                channel: format!("ch{}", seq % 3),
+                campaign: None,
+                interaction: Interaction::Click,
+            },
+            rules,
+        );
     }
 }
 
@@ -179,7 +186,7 @@ proptest! {
         // Events arrive shuffled within `lateness` (arrival order = time plus
         // a bounded jitter); the watermark is max seen - lateness, advanced
         // only every `step` arrivals. Outcomes must equal replay's.
-        let rules = Rules { lookback_ms: 50, view_lookback_ms: 50, expiry_ms: 20 };
+        let rules = Rules { lookback_ms: 50, view_lookback_ms: 50, expiry_ms: 20, ..Rules::default() };
         let items: Vec<(i64, u64, bool)> = raw.iter().enumerate().map(|(i, (ts, c))| (*ts, i as u64, *c)).collect();
         let want = outcomes_per_event(&items, &rules);
 
@@ -204,6 +211,74 @@ proptest! {
             }
         }
         got.extend(j.finish(&rules));
+        prop_assert_eq!(got, want);
+    }
+}
+
+/// The most touches in one run of `j` (touches with no pending conversion
+/// and no gap longer than `expiry_ms` between them).
+fn longest_run(j: &Journey, expiry_ms: i64) -> usize {
+    let (mut longest, mut run) = (0, 0);
+    for (i, t) in j.touches.iter().enumerate() {
+        let split = i > 0 && {
+            let p = &j.touches[i - 1];
+            p.ts + expiry_ms < t.ts
+                || j.pending.iter().any(|c| (p.ts, p.seq) < (c.ts, c.seq) && (c.ts, c.seq) < (t.ts, t.seq))
+        };
+        run = if split { 1 } else { run + 1 };
+        longest = longest.max(run);
+    }
+    longest
+}
+
+/// [`outcomes_per_event`] under the touch cap of `rules`.
+fn capped_outcomes_per_event(items: &[(i64, u64, bool)], rules: &Rules) -> Vec<Outcome> {
+    let mut j = Journey::default();
+    let mut out = Vec::new();
+    for &(ts, seq, conv) in items {
+        add_capped(&mut j, ts, seq, conv, rules);
+        out.extend(j.advance(ts, rules));
+    }
+    out.extend(j.finish(rules));
+    out
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(256))]
+    #[test]
+    fn the_touch_cap_does_not_depend_on_the_watermark(
+        raw in prop::collection::vec((0i64..200, prop::bool::weighted(0.2)), 1..60),
+        cap in 1usize..5,
+        lateness in 0i64..30,
+        step in 1usize..8,
+    ) {
+        // Events in time order; the streaming watermark lags (allowed
+        // lateness) and moves every `step` events, so conversions wait while
+        // later touches arrive. The cap works per run (between pending
+        // conversions and expiry gaps), so the outcomes equal those of the
+        // watermark at each event's time (contract: Journey rules, Touch
+        // cap; derived by hand from the run definition). Every path holds at
+        // most `cap` touches.
+        let rules = Rules { lookback_ms: 50, view_lookback_ms: 50, expiry_ms: 20, max_touches: cap };
+        let mut items: Vec<(i64, u64, bool)> =
+            raw.iter().enumerate().map(|(i, (ts, c))| (*ts, i as u64, *c)).collect();
+        items.sort_by_key(|(ts, seq, _)| (*ts, *seq));
+        let want = capped_outcomes_per_event(&items, &rules);
+        let mut j = Journey::default();
+        let mut got = Vec::new();
+        for (k, &(ts, seq, conv)) in items.iter().enumerate() {
+            add_capped(&mut j, ts, seq, conv, &rules);
+            if k % step == 0 {
+                got.extend(j.advance(ts - lateness - 1, &rules));
+            }
+            prop_assert!(longest_run(&j, rules.expiry_ms) <= cap, "memory within the cap");
+        }
+        got.extend(j.finish(&rules));
+        for o in &got {
+            if let Some((_, path)) = o.closed_path() {
+                prop_assert!(path.len() <= cap, "a path of {} touches under cap {cap}", path.len());
+            }
+        }
         prop_assert_eq!(got, want);
     }
 }

@@ -73,6 +73,9 @@ pub struct Config {
     pub view_lookback: Option<Period>,
     /// A journey closes as non-converting when last touch + expiry < watermark.
     pub expiry: Period,
+    /// At most this many touches in one run of a journey (0: no cap); the
+    /// oldest goes first (contract: Journey rules, Touch cap).
+    pub max_touches_per_journey: usize,
     /// Half-life of `time_decay`.
     pub half_life: Period,
     /// `u_shaped` weight of the first touch (paths of 3 or more).
@@ -194,6 +197,7 @@ impl Default for Config {
             lookback: Period::days(30),
             view_lookback: None,
             expiry: Period::days(30),
+            max_touches_per_journey: apportion_engine::journey::DEFAULT_MAX_TOUCHES,
             half_life: Period::days(7),
             u_shaped_first: 0.4,
             u_shaped_last: 0.4,
@@ -348,6 +352,7 @@ impl Config {
             lookback_ms: self.lookback.ms(),
             view_lookback_ms: self.view_lookback.unwrap_or(self.lookback).ms(),
             expiry_ms: self.expiry.ms(),
+            max_touches: self.max_touches_per_journey,
         }
     }
 

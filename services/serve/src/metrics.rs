@@ -35,6 +35,8 @@ pub struct Metrics {
     pub dedupe_ids: IntGauge,
     /// apportion_journeys_closed_total{reason}.
     pub journeys_closed: IntCounterVec,
+    /// apportion_journey_touches_dropped_total{reason}.
+    pub touches_dropped: IntCounterVec,
     /// apportion_credit_rows_total{model}.
     pub credit_rows: IntCounterVec,
     /// apportion_conversions_credited_total{attributed}.
@@ -157,6 +159,12 @@ impl Metrics {
                 "Event ids held in memory for duplicate detection (about 40 bytes each).",
             ),
             journeys_closed: counter(r, "apportion_journeys_closed_total", "Journeys closed, by reason.", &["reason"]),
+            touches_dropped: counter(
+                r,
+                "apportion_journey_touches_dropped_total",
+                "Touches dropped from open journeys, by reason (touch_cap: max_touches_per_journey).",
+                &["reason"],
+            ),
             credit_rows: counter(r, "apportion_credit_rows_total", "Credit rows emitted, by model.", &["model"]),
             conversions: counter(
                 r,
@@ -214,6 +222,7 @@ impl Metrics {
         for r in ["converted", "expired", "erased"] {
             m.journeys_closed.with_label_values(&[r]);
         }
+        m.touches_dropped.with_label_values(&["touch_cap"]);
         for model in ModelId::ALL {
             m.credit_rows.with_label_values(&[model.as_str()]);
         }

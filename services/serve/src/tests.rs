@@ -691,3 +691,25 @@ fn an_erased_conversion_leaves_no_arrival_behind() {
     assert_eq!(p.pending_arrivals(&part()), 0);
     assert!(out.credit.is_empty());
 }
+
+#[test]
+fn touches_over_the_cap_are_dropped_and_counted() {
+    // max_touches_per_journey 2 (contract: Journey rules, Touch cap;
+    // derived by hand): three touches in one run drop the oldest, the
+    // conversion credits the two newest, the counter says 1.
+    let metrics = Metrics::new(prometheus::Registry::new());
+    let cfg = Config { max_touches_per_journey: 2, ..config() };
+    let mut p = Pipeline::new(cfg, Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let mut out = OutputBatch::default();
+    let batch = vec![
+        touch("a", "u", 100 * SEC, "email"),
+        touch("b", "u", 110 * SEC, "seo"),
+        touch("c", "u", 120 * SEC, "social"),
+        conversion("d", "u", 130 * SEC),
+    ];
+    p.process(&part(), &msgs(1, batch, Instant::now()), &mut out).unwrap();
+    let channels: Vec<&str> = out.credit.iter().map(|r| r.channel.as_str()).collect();
+    assert_eq!(channels, ["seo", "social"]);
+    assert_eq!(metrics.touches_dropped.with_label_values(&["touch_cap"]).get(), 1);
+}

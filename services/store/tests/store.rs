@@ -40,7 +40,7 @@ where
     let mut evs: Vec<(u64, apportion_engine::Event)> =
         lines.iter().enumerate().map(|(i, l)| (i as u64, parse_event(l.as_bytes()).unwrap())).collect();
     evs.sort_by_key(|(i, e)| (e.timestamp_ms, *i));
-    let rules = Rules { lookback_ms: 5 * DAY, view_lookback_ms: 5 * DAY, expiry_ms: 4 * DAY };
+    let rules = Rules { lookback_ms: 5 * DAY, view_lookback_ms: 5 * DAY, expiry_ms: 4 * DAY, ..Rules::default() };
     let mut r = Replayer::new(rules, store);
     let mut out = Vec::new();
     for (n, (i, ev)) in evs.into_iter().enumerate() {

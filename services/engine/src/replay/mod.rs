@@ -69,7 +69,7 @@ pub fn effect_rows(effect: &Effect, models: &[Box<dyn Model>]) -> (Vec<CreditRow
         Effect::Journey { user_key, outcome: Outcome::Expired { path } } => {
             (Vec::new(), Some(path_row(user_key, None, path)))
         }
-        Effect::Erased { .. } => (Vec::new(), None),
+        Effect::Erased { .. } | Effect::TouchesDropped { .. } => (Vec::new(), None),
     }
 }
 
