@@ -713,3 +713,22 @@ fn touches_over_the_cap_are_dropped_and_counted() {
     assert_eq!(channels, ["seo", "social"]);
     assert_eq!(metrics.touches_dropped.with_label_values(&["touch_cap"]).get(), 1);
 }
+
+#[test]
+fn path_statistics_are_kept_only_for_data_driven_models() {
+    // Issue 15, item 3 (derived by hand): only shapley and markov read the
+    // path statistics, so with rule models alone none are collected or
+    // stored; with a data-driven model the closed path is counted.
+    for (models, want_paths) in [(vec![ModelId::Linear], 0), (vec![ModelId::Linear, ModelId::Markov], 1)] {
+        let store = Store::temporary().unwrap();
+        let mut p = pipeline(Config { models, ..config() }, store.clone());
+        p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+        let mut out = OutputBatch::default();
+        let batch = vec![touch("a", "u", 100 * SEC, "email"), conversion("c", "u", 200 * SEC)];
+        p.process(&part(), &msgs(1, batch, Instant::now()), &mut out).unwrap();
+        p.commit().unwrap();
+        assert_eq!(out.paths.len(), 1, "path rows are written either way");
+        let stats = store.partition("events/0", 0).unwrap().stats(1).unwrap();
+        assert_eq!(stats.paths(), want_paths);
+    }
+}

@@ -13,13 +13,14 @@ use apportion_sinks::OutputBatch;
 use crate::metrics::Metrics;
 use crate::source::PartId;
 
-/// Appends the rows of `effects` to `out`, adds closed paths to `stats`, and
-/// counts them. `arrivals` maps conversion ids to their arrival time (for
-/// the latency histogram). Returns true when a path was added to `stats`.
+/// Appends the rows of `effects` to `out`, adds closed paths to `stats`
+/// (when given: only data-driven models need them), and counts them.
+/// `arrivals` maps conversion ids to their arrival time (for the latency
+/// histogram). Returns true when a path was added to `stats`.
 pub fn emit(
     effects: &[Effect],
     models: &[Box<dyn Model>],
-    stats: &mut PathStats,
+    mut stats: Option<&mut PathStats>,
     arrivals: &mut HashMap<String, Instant>,
     metrics: &Metrics,
     out: &mut OutputBatch,
@@ -29,9 +30,11 @@ pub fn emit(
         match e {
             Effect::Journey { outcome, .. } => {
                 if let Some((converted, path)) = outcome.closed_path() {
-                    let chans: Vec<&str> = path.iter().map(|t| t.channel.as_str()).collect();
-                    stats.add_path(&chans, converted);
-                    stats_changed = true;
+                    if let Some(stats) = stats.as_deref_mut() {
+                        let chans: Vec<&str> = path.iter().map(|t| t.channel.as_str()).collect();
+                        stats.add_path(&chans, converted);
+                        stats_changed = true;
+                    }
                     metrics.paths_closed.with_label_values(&[if converted { "true" } else { "false" }]).inc();
                 }
                 match outcome {

@@ -391,7 +391,8 @@ impl Pipeline {
     fn emit(&mut self, id: &PartId, effects: &[Effect], out: &mut OutputBatch) {
         let part = self.parts.get_mut(id).expect("open partition");
         let models = part.snapshot.models();
-        if emit::emit(effects, models, &mut part.stats, &mut part.arrivals, &self.metrics, out) {
+        let stats = self.cfg.data_driven().then_some(&mut part.stats);
+        if emit::emit(effects, models, stats, &mut part.arrivals, &self.metrics, out) {
             part.stats_dirty = true;
         }
     }
