@@ -6,6 +6,7 @@
 mod embedded;
 mod kafka_stream;
 mod metrics_lint;
+mod no_raw_ids;
 mod output_pin;
 mod report_browser;
 mod warehouse;
