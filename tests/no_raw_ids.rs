@@ -179,6 +179,26 @@ fn no_raw_id_in_state_logs_metrics_or_output() {
     assert!(written > 0, "serve wrote output");
     let found = hits(&[&sdir, &dir.path().join("serve.stdout")], &[("serve log", &serve_log), ("/metrics", &metrics)]);
     assert!(found.is_empty(), "raw ids found in serve's files: {found:?}");
+    // The erase wrote one audit record naming the user by key only; the key
+    // is checked against OpenSSL's HMAC-SHA256 (RFC 2104), an outside
+    // implementation.
+    let records: Vec<serde_json::Value> = files(&out)
+        .iter()
+        .filter(|f| f.file_name().unwrap().to_string_lossy().starts_with("erasures-"))
+        .flat_map(|f| {
+            std::fs::read_to_string(f).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect::<Vec<_>>()
+        })
+        .collect();
+    assert_eq!(records.len(), 1, "{records:?}");
+    let openssl = std::process::Command::new("sh")
+        .arg("-c")
+        .arg(format!("printf '%s' '{MARK}-0001@example.test' | openssl dgst -sha256 -hmac '{KEY}'"))
+        .output()
+        .unwrap();
+    let digest = String::from_utf8_lossy(&openssl.stdout).trim().rsplit(' ').next().unwrap().to_string();
+    assert_eq!(digest.len(), 64, "openssl printed {:?}", String::from_utf8_lossy(&openssl.stdout));
+    assert_eq!(records[0]["user_key"], digest.as_str());
+    assert_eq!(records[0]["touches_deleted"], 0, "user 1's journey was credited before the erase");
     // The check can fail: the input itself holds every raw id.
     assert!(!hits(&[input.parent().unwrap()], &[]).is_empty());
 }

@@ -425,6 +425,7 @@ input_topics = ["{prefix}-events"]
 credit_topic = "{prefix}-credit"
 paths_topic = "{prefix}-paths"
 dead_letter_topic = "{prefix}-dead"
+erasure_topic = "{prefix}-erasures"
 repartition_topic = "{prefix}-repart"
 input_keyed_by_user = {keyed}
 "#,

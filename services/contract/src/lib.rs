@@ -40,5 +40,5 @@ pub use key::UserKey;
 pub use model_id::{ModelId, ModelListError};
 pub use period::{Period, PeriodError};
 pub use reject::{RejectReason, Rejection};
-pub use rows::{CreditRow, DeadLetter, PathRow, UNATTRIBUTED};
+pub use rows::{CreditRow, DeadLetter, ErasureRecord, PathRow, UNATTRIBUTED};
 pub use time::{format_ms, parse_rfc3339_ms, Timestamp};

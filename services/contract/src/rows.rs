@@ -102,6 +102,31 @@ pub struct DeadLetter {
     pub received_at: Timestamp,
 }
 
+/// The audit record of one erasure (docs/contract.md, "Erasure records"):
+/// who (the user key, never the raw id), when, what was deleted, and which
+/// message asked for it. Field order is the contract's.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ErasureRecord {
+    /// Pseudonymous user key.
+    pub user_key: UserKey,
+    /// Open touches deleted.
+    pub touches_deleted: u64,
+    /// Conversions deleted before they were credited.
+    pub conversions_deleted: u64,
+    /// The `event_id` of the erase, if it had one.
+    pub request_id: Option<String>,
+    /// The erase's event time.
+    pub requested_at: Timestamp,
+    /// When the service applied it.
+    pub erased_at: Timestamp,
+    /// Source: a topic name, `http` or `file`.
+    pub source: String,
+    /// Source partition.
+    pub partition: Option<i32>,
+    /// Offset of the erase message.
+    pub offset: Option<i64>,
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

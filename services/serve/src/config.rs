@@ -169,6 +169,8 @@ pub struct KafkaConfig {
     pub paths_topic: String,
     /// Dead-letter topic.
     pub dead_letter_topic: String,
+    /// Audit records of erasures (JSON whatever `output_format` says).
+    pub erasure_topic: String,
     /// Payload format of the output topics.
     pub output_format: Format,
     /// False: input is not keyed by user; events are first re-keyed through `repartition_topic`.
@@ -251,6 +253,7 @@ impl Default for KafkaConfig {
             credit_topic: "credit".into(),
             paths_topic: "paths".into(),
             dead_letter_topic: "events-dead-letter".into(),
+            erasure_topic: "apportion-erasures".into(),
             output_format: Format::Json,
             input_keyed_by_user: true,
             repartition_topic: "apportion-repartition".into(),

@@ -238,7 +238,7 @@ impl Metrics {
 
     /// Pre-creates the series of one sink.
     pub fn register_sink(&self, sink: &str) {
-        for k in ["credit", "path", "dead_letter"] {
+        for k in ["credit", "path", "dead_letter", "erasure"] {
             self.sink_rows.with_label_values(&[sink, k]);
         }
         self.sink_errors.with_label_values(&[sink]);

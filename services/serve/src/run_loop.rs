@@ -99,6 +99,7 @@ pub fn write_sinks(
                             .sink_rows
                             .with_label_values(&[name, "dead_letter"])
                             .inc_by(out.dead_letters.len() as u64);
+                        metrics.sink_rows.with_label_values(&[name, "erasure"]).inc_by(out.erasures.len() as u64);
                     }
                     break;
                 }

@@ -732,3 +732,35 @@ fn path_statistics_are_kept_only_for_data_driven_models() {
         assert_eq!(stats.paths(), want_paths);
     }
 }
+
+#[test]
+fn an_applied_erase_writes_one_audit_record() {
+    // Contract: Erasure records (derived by hand): the erase of u (two open
+    // touches, one conversion waiting for the watermark with allowed
+    // lateness 60s) writes one record with those counts, its id, times and
+    // position; the re-sent copy writes none.
+    let mut p = pipeline(Config { allowed_lateness: Period(60 * SEC), ..config() }, Store::temporary().unwrap());
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let mut out = OutputBatch::default();
+    let erase_with_id = |id: &str| {
+        format!(r#"{{"type":"erase","event_id":"{id}","user_id":"u","timestamp":{}}}"#, 130 * SEC).into_bytes()
+    };
+    let batch = vec![
+        touch("a", "u", 100 * SEC, "email"),
+        touch("b", "u", 110 * SEC, "seo"),
+        conversion("c", "u", 120 * SEC),
+        erase_with_id("req-1"),
+        erase_with_id("req-1"),
+    ];
+    p.process(&part(), &msgs(1, batch, Instant::now()), &mut out).unwrap();
+    assert_eq!(out.erasures.len(), 1, "{:?}", out.erasures);
+    let e = &out.erasures[0];
+    assert_eq!(e.user_key, Pseudonymizer::new(KEY).key_for("u"));
+    assert_eq!((e.touches_deleted, e.conversions_deleted), (2, 1));
+    assert_eq!(e.request_id.as_deref(), Some("req-1"));
+    assert_eq!(e.requested_at.0, 130 * SEC);
+    assert_eq!((e.source.as_str(), e.partition, e.offset), ("events", Some(0), Some(4)));
+    assert!(out.credit.is_empty());
+    let json = serde_json::to_string(e).unwrap();
+    assert!(json.starts_with(r#"{"user_key":""#) && !json.contains(r#""u""#), "{json}");
+}

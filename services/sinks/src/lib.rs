@@ -38,7 +38,7 @@ pub mod parquet;
 pub mod postgres;
 pub mod spool;
 
-pub use apportion_contract::{CreditRow, DeadLetter, PathRow};
+pub use apportion_contract::{CreditRow, DeadLetter, ErasureRecord, PathRow};
 
 /// One batch of output.
 #[derive(Debug, Clone, Default, PartialEq)]
@@ -49,12 +49,14 @@ pub struct OutputBatch {
     pub paths: Vec<PathRow>,
     /// Rejected input.
     pub dead_letters: Vec<DeadLetter>,
+    /// Audit records of erasures.
+    pub erasures: Vec<ErasureRecord>,
 }
 
 impl OutputBatch {
     /// True when there is nothing to write.
     pub fn is_empty(&self) -> bool {
-        self.credit.is_empty() && self.paths.is_empty() && self.dead_letters.is_empty()
+        self.credit.is_empty() && self.paths.is_empty() && self.dead_letters.is_empty() && self.erasures.is_empty()
     }
 
     /// True when there are credit or path rows (dead letters aside).

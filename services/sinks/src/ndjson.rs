@@ -1,5 +1,6 @@
-//! Rotating NDJSON files: `credit-<n>.ndjson`, `paths-<n>.ndjson` and
-//! `dead-letter-<n>.ndjson` in one directory. A file is written under a
+//! Rotating NDJSON files: `credit-<n>.ndjson`, `paths-<n>.ndjson`,
+//! `dead-letter-<n>.ndjson` and `erasures-<n>.ndjson` (audit records of
+//! erasures) in one directory. A file is written under a
 //! `.partial` name and renamed when it reaches the size limit or the sink
 //! closes, so a reader that ignores `*.partial` never sees half a file.
 //!
@@ -130,6 +131,7 @@ pub struct NdjsonSink {
     credit: Rotating,
     paths: Rotating,
     dead: Rotating,
+    erasures: Rotating,
 }
 
 impl NdjsonSink {
@@ -142,6 +144,7 @@ impl NdjsonSink {
             credit: Rotating::new(dir, "credit", limit).map_err(err)?,
             paths: Rotating::new(dir, "paths", limit).map_err(err)?,
             dead: Rotating::new(dir, "dead-letter", limit).map_err(err)?,
+            erasures: Rotating::new(dir, "erasures", limit).map_err(err)?,
         })
     }
 }
@@ -156,9 +159,11 @@ impl Sink for NdjsonSink {
         self.credit.write_all(&batch.credit).map_err(err)?;
         self.paths.write_all(&batch.paths).map_err(err)?;
         self.dead.write_all(&batch.dead_letters).map_err(err)?;
+        self.erasures.write_all(&batch.erasures).map_err(err)?;
         self.credit.sync().map_err(err)?;
         self.paths.sync().map_err(err)?;
         self.dead.sync().map_err(err)?;
+        self.erasures.sync().map_err(err)?;
         Ok(())
     }
 
@@ -167,6 +172,7 @@ impl Sink for NdjsonSink {
         self.credit.seal().map_err(err)?;
         self.paths.seal().map_err(err)?;
         self.dead.seal().map_err(err)?;
+        self.erasures.seal().map_err(err)?;
         Ok(())
     }
 }

@@ -203,6 +203,7 @@ mod tests {
                 last_touch_timestamp: Timestamp(1_780_308_000_000),
             }],
             dead_letters: vec![],
+            erasures: vec![],
         };
         let b2 = OutputBatch { credit: vec![credit_row("c", f64::MIN_POSITIVE, Some(0.0))], ..Default::default() };
         let mut s = Spool::open(path.clone(), "postgres").unwrap();

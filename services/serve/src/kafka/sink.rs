@@ -87,6 +87,7 @@ pub struct KafkaSink {
     credit_topic: String,
     paths_topic: String,
     dead_topic: String,
+    erasure_topic: String,
     format: Format,
 }
 
@@ -99,6 +100,7 @@ impl KafkaSink {
             credit_topic: k.credit_topic.clone(),
             paths_topic: k.paths_topic.clone(),
             dead_topic: k.dead_letter_topic.clone(),
+            erasure_topic: k.erasure_topic.clone(),
             format: k.output_format,
         })
     }
@@ -123,6 +125,10 @@ impl Sink for KafkaSink {
         for d in &batch.dead_letters {
             let bytes = encode::dead_letter(self.format, d);
             send(&self.producer, &self.dead_topic, None, &bytes).map_err(err)?;
+        }
+        for e in &batch.erasures {
+            let bytes = serde_json::to_vec(e).expect("rows serialize");
+            send(&self.producer, &self.erasure_topic, Some(&e.user_key.to_hex()), &bytes).map_err(err)?;
         }
         flush_checked(&self.producer, before, "kafka")
     }

@@ -24,7 +24,7 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use anyhow::{Context, Result};
 use apportion_contract::time::format_ms;
-use apportion_contract::{EventKind, RejectReason, Rejection};
+use apportion_contract::{ErasureRecord, EventKind, RejectReason, Rejection, Timestamp};
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::replay::dedupe_digest;
 use apportion_engine::{Effect, JourneyEvent, Model, Processor, Pseudonymizer};
@@ -284,9 +284,28 @@ impl Pipeline {
             part.arrivals.insert(ev.event_id.clone(), m.arrived);
         }
         part.clock.max_ts = part.clock.max_ts.max(ev.timestamp_ms);
+        let erase_request = (ev.kind == EventKind::Erase)
+            .then(|| ((!ev.event_id.is_empty()).then(|| ev.event_id.clone()), ev.timestamp_ms));
         let seq = m.offset.max(0) as u64;
         let wm = part.clock.watermark;
         let mut effects = self.processor.apply(&mut part.store, JourneyEvent::from_event(ev, key, seq), wm)?;
+        if let Some((request_id, requested_at)) = erase_request {
+            for e in &effects {
+                if let Effect::Erased { user_key, touches, conversions, .. } = e {
+                    out.erasures.push(ErasureRecord {
+                        user_key: *user_key,
+                        touches_deleted: *touches as u64,
+                        conversions_deleted: *conversions as u64,
+                        request_id: request_id.clone(),
+                        requested_at: Timestamp(requested_at),
+                        erased_at: Timestamp(received_at),
+                        source: id.source.clone(),
+                        partition: Some(id.partition),
+                        offset: Some(m.offset),
+                    });
+                }
+            }
+        }
         // Move the watermark: largest event time - allowed lateness (for
         // repartitioned input: of the slowest input partition).
         if payload == Payload::Pseudonymized {

@@ -40,7 +40,7 @@ pub fn scenario() -> OutputBatch {
     let r = replay_lines(EVENTS, Rules::default(), &p, &ModelPlan::rules());
     assert!(r.rejected.is_empty(), "test events rejected: {:?}", r.rejected);
     assert_eq!(r.duplicates, 0);
-    OutputBatch { credit: r.rows, paths: r.paths, dead_letters: Vec::new() }
+    OutputBatch { credit: r.rows, paths: r.paths, ..OutputBatch::default() }
 }
 
 /// The scenario cut into `n` batches (credit and paths cut alike).
