@@ -33,6 +33,28 @@ pub struct Rules {
     /// them); the oldest goes when a newer one would exceed it. 0: no cap.
     #[serde(default = "default_max_touches")]
     pub max_touches: usize,
+    /// A touch is dropped once a newer touch of its run is more than this
+    /// later (so with `expiry_ms`, no touch outlives `max_age_ms + expiry_ms`
+    /// of event time); at least `lookback_ms`, so no eligible touch goes.
+    /// 0: no limit.
+    #[serde(default = "default_max_age")]
+    pub max_age_ms: i64,
+}
+
+/// The default of [`Rules::max_age_ms`]: 365 days.
+pub const DEFAULT_MAX_AGE_MS: i64 = 365 * 86_400_000;
+
+fn default_max_age() -> i64 {
+    DEFAULT_MAX_AGE_MS
+}
+
+/// Touches [`Journey::add_touch_capped`] dropped, by rule.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Dropped {
+    /// Over [`Rules::max_touches`].
+    pub cap: usize,
+    /// Older than [`Rules::max_age_ms`] before the newest touch of their run.
+    pub age: usize,
 }
 
 /// The default of [`Rules::max_touches`].
@@ -50,6 +72,7 @@ impl Default for Rules {
             view_lookback_ms: 30 * day,
             expiry_ms: 30 * day,
             max_touches: DEFAULT_MAX_TOUCHES,
+            max_age_ms: DEFAULT_MAX_AGE_MS,
         }
     }
 }
@@ -138,15 +161,17 @@ impl Journey {
         self.touches.insert(at, t);
     }
 
-    /// Adds a touch in (ts, seq) order under the cap `rules.max_touches`:
-    /// when the touch's run (see [`Rules::max_touches`]) then holds more,
-    /// its oldest touch is dropped. Returns the number of touches dropped
-    /// (0 or 1; the new touch itself when it is the oldest of a full run).
-    pub fn add_touch_capped(&mut self, t: Touch, rules: &Rules) -> usize {
+    /// Adds a touch in (ts, seq) order under the limits of `rules`: in the
+    /// touch's run (see [`Rules::max_touches`]), touches more than
+    /// `max_age_ms` older than the run's newest are dropped, then the oldest
+    /// while the run holds more than `max_touches`. The new touch itself may
+    /// be the one dropped (it arrived late and is the oldest).
+    pub fn add_touch_capped(&mut self, t: Touch, rules: &Rules) -> Dropped {
         let at = self.touches.partition_point(|x| (x.ts, x.seq) <= (t.ts, t.seq));
         self.touches.insert(at, t);
-        if rules.max_touches == 0 {
-            return 0;
+        let mut dropped = Dropped::default();
+        if rules.max_touches == 0 && rules.max_age_ms <= 0 {
+            return dropped;
         }
         let mut start = at;
         while start > 0 && !self.run_boundary(start, rules.expiry_ms) {
@@ -156,11 +181,18 @@ impl Journey {
         while end < self.touches.len() && !self.run_boundary(end, rules.expiry_ms) {
             end += 1;
         }
-        if end - start > rules.max_touches {
-            self.touches.remove(start);
-            return 1;
+        if rules.max_age_ms > 0 {
+            let oldest_kept = self.touches[end - 1].ts.saturating_sub(rules.max_age_ms);
+            let old = self.touches[start..end].partition_point(|x| x.ts < oldest_kept);
+            self.touches.drain(start..start + old);
+            end -= old;
+            dropped.age = old;
         }
-        0
+        if rules.max_touches > 0 && end - start > rules.max_touches {
+            self.touches.remove(start);
+            dropped.cap = 1;
+        }
+        dropped
     }
 
     /// True when touches `i - 1` and `i` are in different runs: a gap longer

@@ -13,7 +13,7 @@
 
 use std::collections::{BTreeMap, BTreeSet, HashMap};
 
-use crate::journey::{Conversion, Journey, Outcome, Rules, Touch};
+use crate::journey::{Conversion, Dropped, Journey, Outcome, Rules, Touch};
 use apportion_contract::{Event, EventKind, UserKey};
 
 /// Persistent (or in-memory) journey state with a wake index.
@@ -122,13 +122,15 @@ pub enum Effect {
         /// Event ids of the pending conversions dropped.
         conversion_ids: Vec<String>,
     },
-    /// Touches dropped from the user's journey under `max_touches` (the
-    /// oldest of a full run; contract: Journey rules, Touch cap).
+    /// Touches dropped from the user's journey (contract: Journey rules,
+    /// Touch limits).
     TouchesDropped {
         /// User.
         user_key: UserKey,
-        /// Touches dropped.
-        touches: usize,
+        /// Over `max_touches` (the oldest of a full run).
+        cap: usize,
+        /// Older than `max_age_ms` before the newest touch of their run.
+        age: usize,
     },
 }
 
@@ -167,7 +169,7 @@ impl Processor {
     ) -> Result<Vec<Effect>, S::Error> {
         let key = event.user_key;
         let mut j = store.take(&key)?.unwrap_or_default();
-        let mut dropped = 0;
+        let mut dropped = Dropped::default();
         match event.kind {
             JourneyEventKind::Touch(t) => dropped = j.add_touch_capped(t, &self.rules),
             JourneyEventKind::Conversion(c) => j.add_conversion(c),
@@ -186,8 +188,8 @@ impl Processor {
         let wake = j.next_wake(&self.rules);
         store.save(&key, j, wake)?;
         let mut effects: Vec<Effect> = Vec::with_capacity(outcomes.len() + 1);
-        if dropped > 0 {
-            effects.push(Effect::TouchesDropped { user_key: key, touches: dropped });
+        if dropped != Dropped::default() {
+            effects.push(Effect::TouchesDropped { user_key: key, cap: dropped.cap, age: dropped.age });
         }
         effects.extend(outcomes.into_iter().map(|outcome| Effect::Journey { user_key: key, outcome }));
         Ok(effects)

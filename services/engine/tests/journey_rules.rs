@@ -304,3 +304,25 @@ fn the_touch_cap_keeps_the_newest_touches_of_a_run() {
     let r = run(&refs(&lines), Rules { max_touches: 0, ..Rules::default() });
     assert_eq!(touches_of(&r, "c1").len(), 5);
 }
+
+#[test]
+fn touches_older_than_the_age_limit_leave_their_run() {
+    // max_age 2 days, lookback 1 day, expiry 10 days: touches on days 0 to
+    // 3 form one run; when day 3 arrives, day 0 is more than 2 days older
+    // and goes. At the end of input the non-converting path holds days 1 to
+    // 3. A conversion on day 3.5 credits only day 3 (lookback), as without
+    // the limit: it never removes an eligible touch.
+    let t0 = 100 * DAY;
+    let rules =
+        Rules { lookback_ms: DAY, view_lookback_ms: DAY, expiry_ms: 10 * DAY, max_age_ms: 2 * DAY, ..Rules::default() };
+    let lines: Vec<String> = (0..=3).map(|d| touch(&format!("t{d}"), "u", t0 + d * DAY, &format!("ch{d}"))).collect();
+    let r = run(&refs(&lines), rules);
+    assert_eq!(r.paths.len(), 1);
+    assert_eq!(r.paths[0].channels, ["ch1", "ch2", "ch3"]);
+    let mut with_conv = lines.clone();
+    with_conv.push(conv("c", "u", t0 + 3 * DAY + DAY / 2));
+    let r = run(&refs(&with_conv), rules);
+    assert_eq!(touches_of(&r, "c"), vec![Some("t3".into())]);
+    let r = run(&refs(&with_conv), Rules { max_age_ms: 0, ..rules });
+    assert_eq!(touches_of(&r, "c"), vec![Some("t3".into())]);
+}

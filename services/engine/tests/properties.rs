@@ -247,8 +247,9 @@ proptest! {
     #![proptest_config(ProptestConfig::with_cases(256))]
     #[test]
     fn the_touch_cap_does_not_depend_on_the_watermark(
-        raw in prop::collection::vec((0i64..200, prop::bool::weighted(0.2)), 1..60),
-        cap in 1usize..5,
+        raw in prop::collection::vec((0i64..400, prop::bool::weighted(0.05)), 1..120),
+        cap in 0usize..5,
+        max_age in prop_oneof![Just(0i64), 50i64..120],
         lateness in 0i64..30,
         step in 1usize..8,
     ) {
@@ -258,8 +259,8 @@ proptest! {
         // conversions and expiry gaps), so the outcomes equal those of the
         // watermark at each event's time (contract: Journey rules, Touch
         // cap; derived by hand from the run definition). Every path holds at
-        // most `cap` touches.
-        let rules = Rules { lookback_ms: 50, view_lookback_ms: 50, expiry_ms: 20, max_touches: cap };
+        // most `cap` touches and spans at most `max_age` (0: no limit).
+        let rules = Rules { lookback_ms: 50, view_lookback_ms: 50, expiry_ms: 20, max_touches: cap, max_age_ms: max_age };
         let mut items: Vec<(i64, u64, bool)> =
             raw.iter().enumerate().map(|(i, (ts, c))| (*ts, i as u64, *c)).collect();
         items.sort_by_key(|(ts, seq, _)| (*ts, *seq));
@@ -271,12 +272,14 @@ proptest! {
             if k % step == 0 {
                 got.extend(j.advance(ts - lateness - 1, &rules));
             }
-            prop_assert!(longest_run(&j, rules.expiry_ms) <= cap, "memory within the cap");
+            prop_assert!(cap == 0 || longest_run(&j, rules.expiry_ms) <= cap, "memory within the cap");
         }
         got.extend(j.finish(&rules));
         for o in &got {
             if let Some((_, path)) = o.closed_path() {
-                prop_assert!(path.len() <= cap, "a path of {} touches under cap {cap}", path.len());
+                prop_assert!(cap == 0 || path.len() <= cap, "a path of {} touches under cap {cap}", path.len());
+                let span = path.last().unwrap().ts - path[0].ts;
+                prop_assert!(max_age == 0 || span <= max_age, "a path spanning {span} under max_age {max_age}");
             }
         }
         prop_assert_eq!(got, want);

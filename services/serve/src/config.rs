@@ -74,8 +74,11 @@ pub struct Config {
     /// A journey closes as non-converting when last touch + expiry < watermark.
     pub expiry: Period,
     /// At most this many touches in one run of a journey (0: no cap); the
-    /// oldest goes first (contract: Journey rules, Touch cap).
+    /// oldest goes first (contract: Journey rules, Touch limits).
     pub max_touches_per_journey: usize,
+    /// A touch is dropped once a newer touch of its run is more than this
+    /// later (at least `lookback`; "0s": no limit).
+    pub max_touch_age: Period,
     /// Half-life of `time_decay`.
     pub half_life: Period,
     /// `u_shaped` weight of the first touch (paths of 3 or more).
@@ -200,6 +203,7 @@ impl Default for Config {
             view_lookback: None,
             expiry: Period::days(30),
             max_touches_per_journey: apportion_engine::journey::DEFAULT_MAX_TOUCHES,
+            max_touch_age: Period(apportion_engine::journey::DEFAULT_MAX_AGE_MS),
             half_life: Period::days(7),
             u_shaped_first: 0.4,
             u_shaped_last: 0.4,
@@ -311,6 +315,13 @@ impl Config {
         if self.lookback.ms() <= 0 || self.expiry.ms() <= 0 {
             bail!("lookback and expiry must be greater than 0");
         }
+        if self.max_touch_age.ms() != 0 && self.max_touch_age.ms() < self.lookback.ms() {
+            bail!(
+                "max_touch_age ({}) is shorter than lookback ({}): it would drop touches a conversion may still credit; raise it, or set \"0s\" for no limit",
+                self.max_touch_age,
+                self.lookback
+            );
+        }
         if !(1..=4).contains(&self.markov_order) {
             bail!("markov_order must be 1, 2, 3 or 4, got {}", self.markov_order);
         }
@@ -356,6 +367,7 @@ impl Config {
             view_lookback_ms: self.view_lookback.unwrap_or(self.lookback).ms(),
             expiry_ms: self.expiry.ms(),
             max_touches: self.max_touches_per_journey,
+            max_age_ms: self.max_touch_age.ms(),
         }
     }
 
@@ -521,6 +533,17 @@ fn apply_env(value: &mut toml::Value, env: impl IntoIterator<Item = (String, Str
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn max_touch_age_is_at_least_the_lookback() {
+        // A shorter age limit would drop touches a conversion may still
+        // credit (contract: Journey rules, Touch limits; derived by hand).
+        let short = Config { max_touch_age: Period::days(29), ..Config::default() };
+        let err = short.validate().unwrap_err().to_string();
+        assert!(err.contains("max_touch_age (29d) is shorter than lookback (30d)"), "{err}");
+        assert!(Config { max_touch_age: Period::days(30), ..Config::default() }.validate().is_ok());
+        assert!(Config { max_touch_age: Period(0), ..Config::default() }.validate().is_ok());
+    }
 
     #[test]
     fn max_event_bytes_is_bounded() {

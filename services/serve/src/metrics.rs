@@ -162,7 +162,7 @@ impl Metrics {
             touches_dropped: counter(
                 r,
                 "apportion_journey_touches_dropped_total",
-                "Touches dropped from open journeys, by reason (touch_cap: max_touches_per_journey).",
+                "Touches dropped from open journeys, by reason (touch_cap: max_touches_per_journey; max_age: max_touch_age).",
                 &["reason"],
             ),
             credit_rows: counter(r, "apportion_credit_rows_total", "Credit rows emitted, by model.", &["model"]),
@@ -222,7 +222,9 @@ impl Metrics {
         for r in ["converted", "expired", "erased"] {
             m.journeys_closed.with_label_values(&[r]);
         }
-        m.touches_dropped.with_label_values(&["touch_cap"]);
+        for r in ["touch_cap", "max_age"] {
+            m.touches_dropped.with_label_values(&[r]);
+        }
         for model in ModelId::ALL {
             m.credit_rows.with_label_values(&[model.as_str()]);
         }

@@ -694,7 +694,7 @@ fn an_erased_conversion_leaves_no_arrival_behind() {
 
 #[test]
 fn touches_over_the_cap_are_dropped_and_counted() {
-    // max_touches_per_journey 2 (contract: Journey rules, Touch cap;
+    // max_touches_per_journey 2 (contract: Journey rules, Touch limits;
     // derived by hand): three touches in one run drop the oldest, the
     // conversion credits the two newest, the counter says 1.
     let metrics = Metrics::new(prometheus::Registry::new());

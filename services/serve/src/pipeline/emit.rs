@@ -49,8 +49,9 @@ pub fn emit(
                     Outcome::Expired { .. } => metrics.journeys_closed.with_label_values(&["expired"]).inc(),
                 }
             }
-            Effect::TouchesDropped { touches, .. } => {
-                metrics.touches_dropped.with_label_values(&["touch_cap"]).inc_by(*touches as u64)
+            Effect::TouchesDropped { cap, age, .. } => {
+                metrics.touches_dropped.with_label_values(&["touch_cap"]).inc_by(*cap as u64);
+                metrics.touches_dropped.with_label_values(&["max_age"]).inc_by(*age as u64);
             }
             Effect::Erased { conversion_ids, .. } => {
                 metrics.journeys_closed.with_label_values(&["erased"]).inc();
