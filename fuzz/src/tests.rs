@@ -65,13 +65,13 @@ fn json_seeds_are_accepted_and_pass() {
 #[test]
 fn protobuf_seeds_are_the_json_seeds_encoded() {
     // The protobuf seeds are the JSON seeds through the wire crate's
-    // encoder; regenerate them with APPORTION_WRITE_SEEDS=1.
+    // encoder; regenerate them with FUZZ_WRITE_SEEDS=1.
     let json = seeds("event_json");
     let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("seeds/event_protobuf");
     for (name, bytes) in &json {
         let pb = apportion_wire::encode_event_protobuf(std::str::from_utf8(bytes).unwrap()).unwrap();
         let path = dir.join(name.replace(".json", ".bin"));
-        if std::env::var_os("APPORTION_WRITE_SEEDS").is_some() {
+        if std::env::var_os("FUZZ_WRITE_SEEDS").is_some() {
             std::fs::write(&path, &pb).unwrap();
         }
         assert_eq!(std::fs::read(&path).unwrap(), pb, "{} is stale", path.display());
