@@ -253,6 +253,9 @@ pub struct Scenario {
     pub u_last: u8,
     /// Markov order, `% 4 + 1`.
     pub markov_order: u8,
+    /// `max_touches_per_journey`, `% 33` (0: no cap; small caps so that
+    /// bursts hit them).
+    pub max_touches: u8,
     /// The steps.
     pub ops: Vec<Op>,
 }
@@ -337,6 +340,30 @@ pub fn check_credit_rows(model: ModelId, rows: &[CreditRow], path_len: usize) {
     }
 }
 
+/// Lengths of the runs of `touches` (docs/contract.md, "Touch cap"): a new
+/// run starts after a gap longer than `expiry` or a pending conversion.
+/// Written out here, not taken from the engine, so that it checks it.
+fn runs(touches: &[Touch], pending: &[Conversion], expiry_ms: i64) -> Vec<usize> {
+    let mut out = Vec::new();
+    let mut len = 0;
+    for (i, t) in touches.iter().enumerate() {
+        if i > 0 {
+            let a = &touches[i - 1];
+            let gap = i128::from(a.ts) + i128::from(expiry_ms) < i128::from(t.ts);
+            let between = pending.iter().any(|c| (a.ts, a.seq) < (c.ts, c.seq) && (c.ts, c.seq) < (t.ts, t.seq));
+            if gap || between {
+                out.push(len);
+                len = 0;
+            }
+        }
+        len += 1;
+    }
+    if len > 0 {
+        out.push(len);
+    }
+    out
+}
+
 /// Runs the steps through a processor over a [`MemStore`], streaming style:
 /// events in arrival order, the watermark moved only by `Watermark` steps
 /// (so events may be ahead of it or, as with `late_policy = "apply"`,
@@ -368,6 +395,10 @@ fn stream(rules: Rules, steps: &[(Option<JourneyEvent>, i64)]) -> Vec<Effect> {
             assert!(!j.is_empty(), "an empty journey is stored");
             assert!(j.touches.windows(2).all(|w| (w[0].ts, w[0].seq) <= (w[1].ts, w[1].seq)), "touches out of order");
             assert!(j.pending.windows(2).all(|w| (w[0].ts, w[0].seq) <= (w[1].ts, w[1].seq)), "pending out of order");
+            if rules.max_touches > 0 {
+                let longest = runs(&j.touches, &j.pending, rules.expiry_ms).into_iter().max().unwrap_or(0);
+                assert!(longest <= rules.max_touches, "a run of {longest} touches, cap {}", rules.max_touches);
+            }
         }
     }
     out.extend(p.finish(&mut store).unwrap());
@@ -394,14 +425,16 @@ fn stream(rules: Rules, steps: &[(Option<JourneyEvent>, i64)]) -> Vec<Effect> {
 ///   to come, the streaming outcomes equal replay's (events sorted by time,
 ///   watermark = each event's time), as journey.rs promises.
 ///
-/// There is no cap on touches per journey in the engine yet, so none is
-/// checked; the memory invariant checked is that nothing outlives `finish`.
+/// Memory: with `max_touches` set, no run of a stored journey and no path
+/// holds more touches than the cap (touches dropped only under a cap), and
+/// nothing outlives `finish`.
 pub fn check_engine(s: &Scenario) {
     let day = 3_600_000;
     let rules = Rules {
         lookback_ms: i64::from(s.lookback_h) * day,
         view_lookback_ms: i64::from(s.view_lookback_h) * day,
         expiry_ms: i64::from(s.expiry_h) * day,
+        max_touches: usize::from(s.max_touches % 33),
     };
     let mut params = RuleParams {
         half_life_ms: (i64::from(s.half_life_min) + 1) * 60_000,
@@ -451,11 +484,22 @@ pub fn check_engine(s: &Scenario) {
                     }
                 };
                 assert!(path.windows(2).all(|w| (w[0].ts, w[0].seq) <= (w[1].ts, w[1].seq)), "path out of order");
+                if rules.max_touches > 0 {
+                    assert!(
+                        path.len() <= rules.max_touches,
+                        "a path of {} touches, cap {}",
+                        path.len(),
+                        rules.max_touches
+                    );
+                }
                 for t in path {
                     assert!(touches_seen.insert(t.event_id.clone()), "touch {} in two paths", t.event_id);
                 }
             }
             Effect::Erased { .. } => {}
+            Effect::TouchesDropped { touches, .. } => {
+                assert!(rules.max_touches > 0 && *touches > 0, "{touches} touches dropped without a cap");
+            }
         }
     }
     assert!(credited.values().all(|&n| n == 1), "a conversion credited twice: {credited:?}");
@@ -474,7 +518,14 @@ pub fn check_engine(s: &Scenario) {
         }
     }
 
-    check_stream_equals_replay(rules, &steps);
+    // Streaming equals replay without a cap; with one only for input that
+    // arrives in time order (a touch arriving before an older conversion
+    // can be dropped from a run that replay would have split).
+    check_stream_equals_replay(Rules { max_touches: 0, ..rules }, &steps);
+    let events: Vec<&JourneyEvent> = steps.iter().filter_map(|(e, _)| e.as_ref()).collect();
+    if events.windows(2).all(|w| (w[0].ts(), w[0].seq) <= (w[1].ts(), w[1].seq)) {
+        check_stream_equals_replay(rules, &steps);
+    }
 }
 
 /// Streaming (arrival order, watermark held at or below every event still
@@ -540,6 +591,7 @@ pub fn scenario(data: &[u8]) -> Option<Scenario> {
         u_first: u.arbitrary().ok()?,
         u_last: u.arbitrary().ok()?,
         markov_order: u.arbitrary().ok()?,
+        max_touches: u.arbitrary().ok()?,
         ops: Vec::new(),
     };
     while !u.is_empty() && s.ops.len() < 64 {

@@ -139,6 +139,7 @@ fn engine_edge_scenarios_pass() {
             u_first: 255,
             u_last: 255,
             markov_order: 3,
+            max_touches: if expiry_h == 0 { 0 } else { 5 },
             ops: ops.clone(),
         };
         check_engine(&s);
@@ -222,4 +223,20 @@ fn an_accepted_conversion_ignores_an_unknown_interaction() {
     assert_eq!(ev.kind, EventKind::Conversion);
     let json = r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":0,"interaction":"sideways"}"#;
     assert!(parse_event(json.as_bytes()).is_ok());
+}
+
+#[test]
+fn runs_split_at_long_gaps_and_pending_conversions() {
+    // Derived by hand from docs/contract.md "Touch cap": expiry 10 ms, touches
+    // at 0, 1 and 100 make runs of 2 and 1; a pending conversion at 0 (after
+    // the first touch in arrival order) splits the first run.
+    let t = |ts: i64, seq: u64| match touch(UserKey([1; 32]), seq, ts, "email", false).kind {
+        JourneyEventKind::Touch(t) => t,
+        _ => unreachable!(),
+    };
+    let touches = [t(0, 1), t(1, 3), t(100, 4)];
+    assert_eq!(runs(&touches, &[], 10), vec![2, 1]);
+    let c = Conversion { event_id: "c".into(), ts: 0, seq: 2, goal: "g".into(), value: None, currency: None };
+    assert_eq!(runs(&touches, &[c], 10), vec![1, 1, 1]);
+    assert_eq!(runs(&[], &[], 10), Vec::<usize>::new());
 }
