@@ -314,10 +314,12 @@ fn crlf_line_endings_lose_nothing() {
 }
 
 #[test]
-fn a_user_with_ten_thousand_touches_is_credited_and_costs_no_good_data() {
-    // 10 000 touches a second apart, then a conversion: one path of 10 000
-    // touches; every model's credits still sum to 1 and the neighbours'
-    // conversions are credited.
+fn a_user_with_ten_thousand_touches_is_capped_credited_and_costs_no_good_data() {
+    // 10 000 touches a second apart, then a conversion: one run of 10 000
+    // touches, which max_touches_per_journey (default 1000,
+    // default_config.toml; docs/contract.md "Touch cap") cuts to the newest
+    // 1000. Every model credits those 1000, its credits sum to 1, and the
+    // neighbours' conversions are credited.
     let dir = tempfile::tempdir().unwrap();
     let mut input = String::new();
     for l in BEFORE {
@@ -342,10 +344,14 @@ fn a_user_with_ten_thousand_touches_is_credited_and_costs_no_good_data() {
     let models = "last_touch,first_touch,linear,time_decay,u_shaped,shapley,markov";
     let (rows, rej) = run(dir.path(), input.as_bytes(), models);
     assert!(rej.is_empty(), "{rej:?}");
+    let newest: Vec<String> = (9_000..10_000).map(|i| format!("h-t{i}")).collect();
     for m in models.split(',') {
         let r = rows_of(&rows, "h-c", m);
-        assert_eq!(r.len(), 10_000, "{m}: one row per touch");
-        assert!(r.iter().all(|r| r["path_length"] == 10_000));
+        assert_eq!(r.len(), 1000, "{m}: one row per kept touch");
+        assert!(r.iter().all(|r| r["path_length"] == 1000));
+        let mut ids: Vec<String> = r.iter().map(|r| r["touch_event_id"].as_str().unwrap().to_string()).collect();
+        ids.sort_by_key(|id| id[3..].parse::<u32>().unwrap());
+        assert_eq!(ids, newest, "{m}: the newest 1000 touches are kept");
         for conv in ["b-c", "a-c"] {
             rows_of(&rows, conv, m);
         }
