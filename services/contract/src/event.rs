@@ -225,6 +225,11 @@ fn string_field(
         Some(Loose::Str(s)) => {
             if s.is_empty() {
                 Err(Rejection::new(invalid, format!("field `{field}` must not be empty")))
+            } else if s.contains('\0') {
+                // Valid JSON (`\u0000`), but PostgreSQL text cannot hold it
+                // and a C reader of the other outputs would cut the string
+                // there (docs/contract.md, "Input events").
+                Err(Rejection::new(invalid, format!("field `{field}` must not contain U+0000 (NUL)")))
             } else if s.len() > max {
                 Err(Rejection::new(invalid, format!("field `{field}` is {} bytes, at most {max} allowed", s.len())))
             } else {
@@ -257,6 +262,14 @@ pub fn parse_event_limited(line: &[u8], max_bytes: usize) -> Result<Event, Rejec
     }
     let text =
         std::str::from_utf8(line).map_err(|e| Rejection::new(RejectReason::InvalidUtf8, format!("not UTF-8: {e}")))?;
+    if text.starts_with('\u{feff}') {
+        // RFC 8259 section 8.1: a byte order mark must not be sent; say so
+        // rather than "expected value at column 1".
+        return Err(Rejection::new(
+            RejectReason::InvalidJson,
+            "not valid JSON: starts with a byte order mark (U+FEFF), which RFC 8259 section 8.1 forbids",
+        ));
+    }
     let trimmed = text.trim();
     if !trimmed.starts_with('{') {
         // Distinguish "valid JSON, wrong shape" from "not JSON".
@@ -332,9 +345,16 @@ fn validate(raw: RawEvent<'_>) -> Result<Event, Rejection> {
                     "field `timestamp` epoch milliseconds out of range (years 1 to 9999)",
                 ))
             }
+            // Beyond u64 a JSON integer arrives as a float: still out of range.
+            Some(Loose::Float(v)) if v.fract() == 0.0 && !time_fmt::in_range_f64(*v) => {
+                return Err(Rejection::new(
+                    RejectReason::InvalidTimestamp,
+                    "field `timestamp` epoch milliseconds out of range (years 1 to 9999)",
+                ))
+            }
             Some(Loose::Float(_)) => return Err(Rejection::new(
                 RejectReason::InvalidTimestamp,
-                "field `timestamp` must be an RFC 3339 string or integer epoch milliseconds, got a fractional number",
+                "field `timestamp` must be an RFC 3339 string or integer epoch milliseconds, got a number with a fraction or exponent",
             )),
             Some(other) => {
                 return Err(Rejection::new(
@@ -395,7 +415,9 @@ fn validate(raw: RawEvent<'_>) -> Result<Event, Rejection> {
                 None => None,
                 Some(Loose::Int(v)) if *v >= 0 => Some(*v as f64),
                 Some(Loose::UInt(v)) => Some(*v as f64),
-                Some(Loose::Float(v)) if v.is_finite() && *v >= 0.0 => Some(*v),
+                // -0.0 passes `>= 0.0`; store it as 0.0 so that no output
+                // shows a negative zero credited value.
+                Some(Loose::Float(v)) if v.is_finite() && *v >= 0.0 => Some(if *v == 0.0 { 0.0 } else { *v }),
                 Some(Loose::Int(_)) | Some(Loose::Float(_)) => {
                     return Err(Rejection::new(
                         RejectReason::InvalidValue,
@@ -444,4 +466,91 @@ fn truncate(s: &str) -> String {
         end -= 1;
     }
     format!("{}...", &s[..end])
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn touch_with(extra: &str) -> String {
+        format!(
+            r#"{{"type":"touch","event_id":"t1","user_id":"u1","timestamp":"2026-03-01T10:00:00Z","channel":"email"{extra}}}"#
+        )
+    }
+
+    fn reason(line: &[u8]) -> (RejectReason, String) {
+        let r = parse_event(line).expect_err("rejected");
+        (r.reason, r.detail)
+    }
+
+    #[test]
+    fn byte_order_mark_is_named() {
+        // RFC 8259 section 8.1: "Implementations MUST NOT add a byte order
+        // mark (U+FEFF) to the beginning of a networked-transmitted JSON text."
+        let mut line = "\u{feff}".as_bytes().to_vec();
+        line.extend_from_slice(touch_with("").as_bytes());
+        let (r, d) = reason(&line);
+        assert_eq!(r, RejectReason::InvalidJson);
+        assert!(d.contains("byte order mark"), "{d}");
+        // Without it the same line is accepted.
+        assert!(parse_event(touch_with("").as_bytes()).is_ok());
+    }
+
+    #[test]
+    fn nul_in_a_string_field_is_rejected_by_field() {
+        // `\u0000` is a valid JSON escape (RFC 8259 section 7) but no text
+        // column of PostgreSQL can hold U+0000 (PostgreSQL manual, "Character
+        // Types": "the character with code zero ... cannot be stored").
+        let line = r#"{"type":"touch","event_id":"t1","user_id":"u1","timestamp":"2026-03-01T10:00:00Z","channel":"e\u0000mail"}"#;
+        let (r, d) = reason(line.as_bytes());
+        assert_eq!(r, RejectReason::InvalidChannel);
+        assert!(d.contains("U+0000"), "{d}");
+        let line =
+            r#"{"type":"touch","event_id":"t\u0000","user_id":"u1","timestamp":"2026-03-01T10:00:00Z","channel":"x"}"#;
+        assert_eq!(reason(line.as_bytes()).0, RejectReason::InvalidEventId);
+        let line = r#"{"type":"conversion","event_id":"c","user_id":"\u0000","timestamp":0}"#;
+        assert_eq!(reason(line.as_bytes()).0, RejectReason::InvalidUserId);
+        let line = r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":0,"goal":"a\u0000"}"#;
+        assert_eq!(reason(line.as_bytes()).0, RejectReason::InvalidGoal);
+    }
+
+    #[test]
+    fn whole_timestamps_beyond_u64_are_out_of_range_not_fractional() {
+        // 2^64 = 18446744073709551616 (derived by hand) does not fit u64, so
+        // the JSON reader hands it over as a float.
+        let line = r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":18446744073709551616}"#;
+        let (r, d) = reason(line.as_bytes());
+        assert_eq!(r, RejectReason::InvalidTimestamp);
+        assert!(d.contains("out of range"), "{d}");
+        let line = r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":-1e300}"#;
+        assert!(reason(line.as_bytes()).1.contains("out of range"));
+        // In range but written with an exponent or a fraction: not an integer.
+        for ts in ["1e12", "1772359200000.5"] {
+            let line = format!(r#"{{"type":"conversion","event_id":"c","user_id":"u","timestamp":{ts}}}"#);
+            let (r, d) = reason(line.as_bytes());
+            assert_eq!(r, RejectReason::InvalidTimestamp);
+            assert!(d.contains("fraction or exponent"), "{ts}: {d}");
+        }
+    }
+
+    #[test]
+    fn negative_zero_value_is_stored_as_zero() {
+        // IEEE 754 -0.0 compares equal to 0.0, so it passes `>= 0`; it must
+        // not reach an output as "-0.0".
+        let line = r#"{"type":"conversion","event_id":"c","user_id":"u","timestamp":0,"value":-0.0}"#;
+        let v = parse_event(line.as_bytes()).unwrap().value.unwrap();
+        assert_eq!(v, 0.0);
+        assert!(v.is_sign_positive());
+    }
+
+    #[test]
+    fn leap_second_is_read_as_the_last_millisecond_before_midnight() {
+        // RFC 3339 section 5.7 allows second 60 at a leap second; the IERS
+        // inserted one at 2016-12-31T23:59:60Z (IERS Bulletin C 52). Epoch
+        // milliseconds have no leap seconds (POSIX time), so it is read as
+        // 23:59:59.999, keeping the order of events around it.
+        let line = touch_with("").replace("2026-03-01T10:00:00Z", "2016-12-31T23:59:60Z");
+        let ev = parse_event(line.as_bytes()).unwrap();
+        assert_eq!(time_fmt::format_ms(ev.timestamp_ms), "2016-12-31T23:59:59.999Z");
+    }
 }

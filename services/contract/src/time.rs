@@ -38,6 +38,12 @@ pub fn in_range(ms: i64) -> bool {
     (MIN_TIMESTAMP_MS..=MAX_TIMESTAMP_MS).contains(&ms)
 }
 
+/// [`in_range`] for a whole number that arrived as a float (a JSON integer
+/// beyond `u64`).
+pub fn in_range_f64(ms: f64) -> bool {
+    (MIN_TIMESTAMP_MS as f64..=MAX_TIMESTAMP_MS as f64).contains(&ms)
+}
+
 /// (year, month, day) of a count of days since 1970-01-01 (proleptic
 /// Gregorian calendar; Hinnant's `civil_from_days`).
 fn civil_from_days(z: i64) -> (i64, u32, u32) {
