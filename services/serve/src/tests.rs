@@ -739,7 +739,7 @@ fn path_statistics_are_kept_only_for_data_driven_models() {
 /// hand).
 #[test]
 fn an_http_request_is_split_into_batches() {
-    use crate::embedded::http::{split_lines, IngestRequest};
+    use crate::embedded::http::IngestRequest;
     use crate::embedded::EmbeddedSource;
     use crate::source::Source;
 
@@ -756,7 +756,7 @@ fn an_http_request_is_split_into_batches() {
         }
     }
     let (reply, mut answer) = tokio::sync::oneshot::channel();
-    tx.try_send(IngestRequest { lines: split_lines(&axum::body::Bytes::from(body)), reply }).unwrap();
+    tx.try_send(IngestRequest { body: axum::body::Bytes::from(body + "\n\n"), reply }).unwrap();
     let mut sizes = Vec::new();
     for _ in 0..3 {
         assert!(answer.try_recv().is_err(), "answered before its last batch");

@@ -3,8 +3,9 @@
 //! a result per line.
 //!
 //! Memory is bounded: the body is at most `embedded.max_body_bytes` (413
-//! above, before anything is applied), its lines are slices of the body
-//! (no copy per line), at most `embedded.queue_requests` requests wait for
+//! above, before anything is applied), it is kept as it came and cut into
+//! lines only as the pipeline takes them (no copy and no index per line:
+//! a request costs its body, whatever its line count), at most `embedded.queue_requests` requests wait for
 //! the pipeline (one more gets 429 with `Retry-After` at once), and the
 //! pipeline takes a request's lines in batches of at most the batch limit
 //! (`batch_size`, growing to `max_batch_size` under a backlog), so one big
@@ -33,11 +34,44 @@ pub const RETRY_AFTER_SECONDS: u32 = 1;
 
 /// One HTTP ingest request.
 pub struct IngestRequest {
-    /// Non-blank lines with their 1-based line numbers in the body (slices
-    /// of the body, not copies).
-    pub lines: Vec<(usize, Bytes)>,
+    /// The body: NDJSON lines, at least one of them not blank.
+    pub body: Bytes,
     /// Where the answer goes.
     pub reply: tokio::sync::oneshot::Sender<IngestReply>,
+}
+
+/// A position in a body: the lines before `pos` are taken; `line` is the
+/// 1-based number of the line starting at `pos`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Cursor {
+    /// Byte offset of the next line.
+    pub pos: usize,
+    /// Its 1-based line number.
+    pub line: usize,
+}
+
+impl Default for Cursor {
+    fn default() -> Self {
+        Cursor { pos: 0, line: 1 }
+    }
+}
+
+/// The next non-blank line of `body` at or after `at` (a trailing `\r`
+/// removed) with its 1-based number, moving `at` past it; `None` at the end.
+pub fn next_line<'a>(body: &'a [u8], at: &mut Cursor) -> Option<(usize, &'a [u8])> {
+    while at.pos < body.len() {
+        let start = at.pos;
+        let end = body[start..].iter().position(|b| *b == b'\n').map_or(body.len(), |i| start + i);
+        let n = at.line;
+        at.pos = end + 1;
+        at.line += 1;
+        let line = &body[start..end];
+        let line = line.strip_suffix(b"\r").unwrap_or(line);
+        if !line.iter().all(u8::is_ascii_whitespace) {
+            return Some((n, line));
+        }
+    }
+    None
 }
 
 /// Per-line problem in an ingest reply.
@@ -101,34 +135,19 @@ pub fn ingest_router(tx: SyncSender<IngestRequest>, max_body: usize, token: Opti
     }
 }
 
-/// The non-blank lines of `body` with their 1-based numbers, a trailing
-/// `\r` removed; slices of `body`.
-pub fn split_lines(body: &Bytes) -> Vec<(usize, Bytes)> {
-    let mut out = Vec::new();
-    let mut start = 0;
-    let mut n = 0;
-    while start <= body.len() {
-        n += 1;
-        let end = body[start..].iter().position(|b| *b == b'\n').map_or(body.len(), |i| start + i);
-        let line = &body[start..end];
-        let line = line.strip_suffix(b"\r").unwrap_or(line);
-        if !line.iter().all(u8::is_ascii_whitespace) {
-            out.push((n, body.slice(start..start + line.len())));
-        }
-        start = end + 1;
-    }
-    out
+/// Every non-blank line of `body` with its 1-based number (see [`next_line`]).
+pub fn split_lines(body: &[u8]) -> Vec<(usize, &[u8])> {
+    let mut at = Cursor::default();
+    std::iter::from_fn(|| next_line(body, &mut at)).collect()
 }
 
 async fn ingest(State(s): State<IngestState>, body: Bytes) -> Response {
-    let lines = split_lines(&body);
-    drop(body);
-    if lines.is_empty() {
+    if body.iter().all(u8::is_ascii_whitespace) {
         // Nothing to apply: answered at once, without a batch.
         return (StatusCode::ACCEPTED, Json(IngestReply::default())).into_response();
     }
     let (reply, rx) = tokio::sync::oneshot::channel();
-    match s.tx.try_send(IngestRequest { lines, reply }) {
+    match s.tx.try_send(IngestRequest { body, reply }) {
         Ok(()) => {}
         Err(TrySendError::Full(_)) => {
             return (
@@ -185,18 +204,17 @@ mod tests {
     fn answer_all(rx: std::sync::mpsc::Receiver<IngestRequest>) {
         std::thread::spawn(move || {
             for r in rx {
-                let _ = r.reply.send(IngestReply { accepted: r.lines.len(), ..Default::default() });
+                let _ = r.reply.send(IngestReply { accepted: split_lines(&r.body).len(), ..Default::default() });
             }
         });
     }
 
     #[test]
-    fn lines_are_slices_with_their_numbers() {
-        let body = Bytes::from_static(b"a\r\n\n  \nbc\nd");
-        let got: Vec<(usize, Vec<u8>)> = split_lines(&body).into_iter().map(|(n, l)| (n, l.to_vec())).collect();
-        assert_eq!(got, vec![(1, b"a".to_vec()), (4, b"bc".to_vec()), (5, b"d".to_vec())]);
-        assert!(split_lines(&Bytes::new()).is_empty());
-        assert!(split_lines(&Bytes::from_static(b"\n\r\n \t\n")).is_empty());
+    fn lines_are_cut_with_their_numbers() {
+        assert_eq!(split_lines(b"a\r\n\n  \nbc\nd"), vec![(1, &b"a"[..]), (4, &b"bc"[..]), (5, &b"d"[..])]);
+        assert_eq!(split_lines(b"a\n"), vec![(1, &b"a"[..])]);
+        assert!(split_lines(b"").is_empty());
+        assert!(split_lines(b"\n\r\n \t\n").is_empty());
     }
 
     #[tokio::test]
@@ -238,13 +256,14 @@ mod tests {
         // A queue of one, already holding a request nobody reads (a stalled pipeline).
         let (tx, rx) = std::sync::mpsc::sync_channel(1);
         let (held, _held_rx) = tokio::sync::oneshot::channel();
-        tx.try_send(IngestRequest { lines: vec![(1, Bytes::from_static(b"{}"))], reply: held }).unwrap();
+        tx.try_send(IngestRequest { body: Bytes::from_static(b"{}"), reply: held }).unwrap();
         let addr = serve(ingest_router(tx, 1 << 20, None)).await;
         let (status, head, _) = post(addr, "", b"{}\n").await;
         assert_eq!(status, 429);
         // RFC 9110 section 10.2.3: Retry-After as delay-seconds.
         assert!(head.contains(&format!("retry-after: {RETRY_AFTER_SECONDS}")), "{head}");
-        // Once the pipeline reads the queue, the retry is taken and answered.
+        // Once the pipeline has read the queue, the retry is taken and answered.
+        let _taken = rx.recv().unwrap();
         answer_all(rx);
         let (status, _, body) = post(addr, "", b"{}\n").await;
         assert_eq!(status, 202, "{body}");

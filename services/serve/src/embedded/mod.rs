@@ -27,10 +27,10 @@ struct Waiting {
     lines: Vec<usize>,
 }
 
-/// A request whose lines are partly taken: `lines[next..]` remain.
+/// A request whose lines are partly taken: those from `at` on remain.
 struct Current {
-    lines: Vec<(usize, axum::body::Bytes)>,
-    next: usize,
+    body: axum::body::Bytes,
+    at: http::Cursor,
     reply: tokio::sync::oneshot::Sender<IngestReply>,
 }
 
@@ -102,22 +102,37 @@ impl Source for EmbeddedSource {
                         self.rx.try_recv().map_err(|_| RecvTimeoutError::Timeout).ok()
                     };
                     match req {
-                        Some(r) => Current { lines: r.lines, next: 0, reply: r.reply },
+                        Some(r) => Current { body: r.body, at: http::Cursor::default(), reply: r.reply },
                         None => break,
                     }
                 }
             };
             first = false;
-            let take = (max - http.len()).min(cur.lines.len() - cur.next);
-            let mut lines = Vec::with_capacity(take);
-            for (n, l) in &mut cur.lines[cur.next..cur.next + take] {
-                let payload = std::mem::take(l).to_vec();
-                http.push(InMsg { offset: self.next_seq, payload, arrived: now, timestamp_ms: wall });
-                self.next_seq += 1;
-                lines.push(*n);
+            let mut lines = Vec::new();
+            let mut done = false;
+            while http.len() < max {
+                match http::next_line(&cur.body, &mut cur.at) {
+                    Some((n, l)) => {
+                        http.push(InMsg {
+                            offset: self.next_seq,
+                            payload: l.to_vec(),
+                            arrived: now,
+                            timestamp_ms: wall,
+                        });
+                        self.next_seq += 1;
+                        lines.push(n);
+                    }
+                    None => {
+                        done = true;
+                        break;
+                    }
+                }
             }
-            cur.next += take;
-            if cur.next == cur.lines.len() {
+            // The end of the body may be blank lines only.
+            if !done && http::next_line(&cur.body, &mut { cur.at }).is_none() {
+                done = true;
+            }
+            if done {
                 self.waiting.push(Waiting { reply: Some(cur.reply), lines });
             } else {
                 self.waiting.push(Waiting { reply: None, lines });
