@@ -293,6 +293,28 @@ pub fn http(port: u16, method: &str, path: &str, body: &[u8]) -> Option<(u16, St
     Some((status, body))
 }
 
+/// An HTTP/1.0 request with extra header lines (each `Name: value`):
+/// (status, the head in lower case, the body).
+pub fn http_with(port: u16, method: &str, path: &str, headers: &[&str], body: &[u8]) -> Option<(u16, String, String)> {
+    let mut s = TcpStream::connect(("127.0.0.1", port)).ok()?;
+    s.set_read_timeout(Some(Duration::from_secs(60))).ok()?;
+    let mut head = format!("{method} {path} HTTP/1.0\r\nHost: localhost\r\nContent-Length: {}\r\n", body.len());
+    for h in headers {
+        head.push_str(h);
+        head.push_str("\r\n");
+    }
+    head.push_str("\r\n");
+    s.write_all(head.as_bytes()).ok()?;
+    // A server may answer (401, 413) and close before reading the whole body.
+    let _ = s.write_all(body);
+    let mut buf = Vec::new();
+    let _ = s.read_to_end(&mut buf);
+    let text = String::from_utf8_lossy(&buf).into_owned();
+    let status = text.split_whitespace().nth(1)?.parse().ok()?;
+    let (h, b) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
+    Some((status, h.to_ascii_lowercase(), b.to_string()))
+}
+
 /// Runs `apportion replay` on `input` and returns the credit rows.
 pub fn replay(input: &Path, extra: &[&str]) -> Vec<Value> {
     let dir = tempfile::tempdir().unwrap();

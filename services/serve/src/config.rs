@@ -24,6 +24,12 @@ pub const DEFAULT_CONFIG: &str = include_str!("default_config.toml");
 /// `too_large`.
 pub const MAX_EVENT_BYTES_LIMIT: usize = 16 << 20;
 
+/// Default of `embedded.max_body_bytes`: 16 MiB.
+pub const DEFAULT_MAX_BODY_BYTES: usize = 16 << 20;
+
+/// The largest `embedded.max_body_bytes` accepted: 1 GiB.
+pub const MAX_BODY_BYTES_LIMIT: usize = 1 << 30;
+
 /// What to do with an event older than the watermark.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
 #[serde(rename_all = "snake_case")]
@@ -152,6 +158,14 @@ pub struct EmbeddedConfig {
     pub output_dir: String,
     /// Rotate an output file after this many bytes.
     pub rotate_bytes: u64,
+    /// Largest accepted body of one ingest request, in bytes (413 above).
+    pub max_body_bytes: usize,
+    /// Ingest requests waiting for the pipeline; when full, 429 with Retry-After.
+    pub queue_requests: usize,
+    /// Bearer token required by ingest (prefer APPORTION_EMBEDDED_TOKEN or token_file).
+    pub token: Option<String>,
+    /// A file holding the bearer token (surrounding whitespace ignored).
+    pub token_file: Option<String>,
 }
 
 /// Kafka.
@@ -243,6 +257,10 @@ impl Default for EmbeddedConfig {
             watch_file: None,
             output_dir: "apportion-out".into(),
             rotate_bytes: 64 << 20,
+            max_body_bytes: DEFAULT_MAX_BODY_BYTES,
+            queue_requests: 16,
+            token: None,
+            token_file: None,
         }
     }
 }
@@ -335,6 +353,18 @@ impl Config {
                 self.batch_size
             );
         }
+        if !(1..=MAX_BODY_BYTES_LIMIT).contains(&self.embedded.max_body_bytes) {
+            bail!(
+                "embedded.max_body_bytes must be between 1 and {MAX_BODY_BYTES_LIMIT} (1 GiB), got {}",
+                self.embedded.max_body_bytes
+            );
+        }
+        if self.embedded.queue_requests == 0 {
+            bail!("embedded.queue_requests must be at least 1");
+        }
+        if non_empty(&self.embedded.token).is_some() && non_empty(&self.embedded.token_file).is_some() {
+            bail!("embedded.token and embedded.token_file are both set; keep one source of the ingest token");
+        }
         if let Some(k) = &self.kafka {
             if k.input_topics.is_empty() {
                 bail!("kafka.input_topics must list at least one topic");
@@ -399,6 +429,26 @@ impl Config {
         self.data_dir.as_deref().filter(|d| !d.is_empty()).map(PathBuf::from)
     }
 
+    /// The bearer token of the ingest endpoint: `embedded.token`, else the
+    /// contents of `embedded.token_file` without surrounding whitespace;
+    /// `None` when neither is set. A token file that cannot be read or is
+    /// empty is an error naming it.
+    pub fn ingest_token(&self) -> Result<Option<String>> {
+        if let Some(t) = non_empty(&self.embedded.token) {
+            return Ok(Some(t.to_string()));
+        }
+        let Some(path) = non_empty(&self.embedded.token_file) else { return Ok(None) };
+        let text = std::fs::read_to_string(path).with_context(|| format!("cannot read embedded.token_file {path}"))?;
+        let t = text.trim();
+        if t.is_empty() {
+            bail!("embedded.token_file {path} is empty; put the ingest token in it");
+        }
+        if t.contains(char::is_whitespace) {
+            bail!("embedded.token_file {path} holds more than one word; a bearer token has no spaces");
+        }
+        Ok(Some(t.to_string()))
+    }
+
     /// The file to follow in embedded mode, if set.
     pub fn watch_file(&self) -> Option<PathBuf> {
         self.embedded.watch_file.as_deref().filter(|d| !d.is_empty()).map(PathBuf::from)
@@ -418,6 +468,8 @@ impl Config {
             ..Default::default()
         };
         full.embedded.watch_file = Some(String::new());
+        full.embedded.token = Some(String::new());
+        full.embedded.token_file = Some(String::new());
         full
     }
 }
@@ -439,6 +491,10 @@ pub fn managed_kafka_property(key: &str) -> Option<&'static str> {
         "isolation.level" => "the consumer's isolation level is part of the delivery guarantee",
         _ => return None,
     })
+}
+
+fn non_empty(v: &Option<String>) -> Option<&str> {
+    v.as_deref().filter(|s| !s.is_empty())
 }
 
 fn merge(base: &mut toml::Value, over: toml::Value) {
@@ -555,6 +611,52 @@ mod tests {
         }
         assert!(Config { max_event_bytes: MAX_EVENT_BYTES_LIMIT, ..Config::default() }.validate().is_ok());
         assert!(MAX_EVENT_BYTES_LIMIT < crate::embedded::file::READ_LIMIT as usize);
+    }
+
+    #[test]
+    fn ingest_token_sources() {
+        let dir = tempfile::tempdir().unwrap();
+        let file = dir.path().join("token");
+        let with_file = |f: &Path| Config {
+            embedded: EmbeddedConfig { token_file: Some(f.display().to_string()), ..Default::default() },
+            ..Config::default()
+        };
+        assert_eq!(Config::default().ingest_token().unwrap(), None);
+        let inline = Config {
+            embedded: EmbeddedConfig { token: Some("s3cret".into()), ..Default::default() },
+            ..Config::default()
+        };
+        assert_eq!(inline.ingest_token().unwrap().as_deref(), Some("s3cret"));
+        // A file: the trailing newline of an editor or `echo` is not part of it.
+        std::fs::write(&file, "s3cret\n").unwrap();
+        assert_eq!(with_file(&file).ingest_token().unwrap().as_deref(), Some("s3cret"));
+        std::fs::write(&file, " \n").unwrap();
+        let e = with_file(&file).ingest_token().unwrap_err().to_string();
+        assert!(e.contains("is empty"), "{e}");
+        let missing = dir.path().join("absent");
+        let e = with_file(&missing).ingest_token().unwrap_err().to_string();
+        assert!(e.contains("cannot read embedded.token_file"), "{e}");
+        let both = Config {
+            embedded: EmbeddedConfig {
+                token: Some("a".into()),
+                token_file: Some(file.display().to_string()),
+                ..Default::default()
+            },
+            ..Config::default()
+        };
+        assert!(both.validate().unwrap_err().to_string().contains("both set"));
+        // The environment variable of the field path sets it.
+        let cfg = Config::load(None, [("APPORTION_EMBEDDED_TOKEN".to_string(), "from-env".to_string())]).unwrap();
+        assert_eq!(cfg.ingest_token().unwrap().as_deref(), Some("from-env"));
+    }
+
+    #[test]
+    fn ingest_limits_are_checked() {
+        let e = |emb: EmbeddedConfig| Config { embedded: emb, ..Config::default() }.validate();
+        assert!(e(EmbeddedConfig { max_body_bytes: 0, ..Default::default() }).is_err());
+        assert!(e(EmbeddedConfig { max_body_bytes: MAX_BODY_BYTES_LIMIT + 1, ..Default::default() }).is_err());
+        assert!(e(EmbeddedConfig { queue_requests: 0, ..Default::default() }).is_err());
+        assert_eq!(EmbeddedConfig::default().max_body_bytes, 16 * 1024 * 1024);
     }
 
     #[test]

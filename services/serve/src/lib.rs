@@ -21,6 +21,7 @@
 //! - [`kafka`]: consumer source, producer sink, repartition stage.
 //! - [`embedded`]: HTTP ingest and the followed file.
 //! - [`admin`]: `/metrics`, `/healthz`, `/readyz`, `/v1/models`.
+//! - [`auth`]: the bearer-token check of ingest and state-changing endpoints.
 //! - [`metrics`]: every metric (spec: docs/telemetry.md).
 //! - [`replay_file`], [`output`]: `replay` over a file, atomic output files.
 //! - [`state_admin`]: `apportion state` (show the store, reset a watermark).
@@ -28,6 +29,7 @@
 #![forbid(unsafe_code)]
 
 pub mod admin;
+pub mod auth;
 pub mod config;
 pub mod embedded;
 pub mod kafka;

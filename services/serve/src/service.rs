@@ -112,7 +112,7 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
             (Box::new(source), vec![Box::new(sink) as Box<dyn Sink>], None)
         }
         None => {
-            let (tx, rx) = std::sync::mpsc::sync_channel(64);
+            let (tx, rx) = std::sync::mpsc::sync_channel(cfg.embedded.queue_requests);
             let source = crate::embedded::EmbeddedSource::new(&mut pipeline, rx, cfg.watch_file())?;
             let sink = apportion_sinks::ndjson::NdjsonSink::open(
                 Path::new(&cfg.embedded.output_dir),
@@ -122,10 +122,12 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
             let ingest = if cfg.embedded.http_listen.is_empty() {
                 None
             } else {
+                let token = cfg.ingest_token()?;
                 let l = rt
                     .block_on(tokio::net::TcpListener::bind(&cfg.embedded.http_listen))
                     .with_context(|| format!("cannot listen on ingest address {}", cfg.embedded.http_listen))?;
-                Some((l, tx))
+                let token = crate::auth::ingest_guard(token, l.local_addr()?)?;
+                Some((l, tx, token))
             };
             (Box::new(source), vec![Box::new(sink) as Box<dyn Sink>], ingest)
         }
@@ -143,14 +145,15 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
             let _ = axum::serve(admin, router).with_graceful_shutdown(async move { n.notified().await }).await;
         });
     }
-    if let Some((l, tx)) = ingest {
+    if let Some((l, tx, token)) = ingest {
         let addr = l.local_addr()?;
-        let router = crate::embedded::http::ingest_router(tx, 256 << 20);
+        let authenticated = token.is_some();
+        let router = crate::embedded::http::ingest_router(tx, cfg.embedded.max_body_bytes, token);
         let n = http_stop.clone();
         rt.spawn(async move {
             let _ = axum::serve(l, router).with_graceful_shutdown(async move { n.notified().await }).await;
         });
-        tracing::info!(%addr, "ingest endpoint listening (POST /v1/events)");
+        tracing::info!(%addr, authenticated, "ingest endpoint listening (POST /v1/events)");
     }
     let models: Vec<&str> = cfg.models.iter().map(|m| m.as_str()).collect();
     tracing::info!(%admin_addr, data_dir = %data_dir.display(), models = ?models, "apportion serve started");

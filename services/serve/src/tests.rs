@@ -764,3 +764,48 @@ fn an_applied_erase_writes_one_audit_record() {
     let json = serde_json::to_string(e).unwrap();
     assert!(json.starts_with(r#"{"user_key":""#) && !json.contains(r#""u""#), "{json}");
 }
+
+/// One HTTP ingest request of 25 lines with a batch limit of 10 goes
+/// through three batches (10, 10, 5) and is answered once, after the last;
+/// the line numbers of rejected lines are those of the body (derived by
+/// hand).
+#[test]
+fn an_http_request_is_split_into_batches() {
+    use crate::embedded::http::IngestRequest;
+    use crate::embedded::EmbeddedSource;
+    use crate::source::Source;
+
+    let mut p = pipeline(config(), Store::temporary().unwrap());
+    let (tx, rx) = std::sync::mpsc::sync_channel(1);
+    let mut src = EmbeddedSource::new(&mut p, rx, None).unwrap();
+    let mut body = String::new();
+    for i in 0..25 {
+        if i == 12 {
+            body.push_str("not json\n");
+        } else {
+            body.push_str(&String::from_utf8(touch(&format!("t{i}"), "u1", 1_000 * SEC + i * SEC, "email")).unwrap());
+            body.push('\n');
+        }
+    }
+    let (reply, mut answer) = tokio::sync::oneshot::channel();
+    tx.try_send(IngestRequest { body: axum::body::Bytes::from(body + "\n\n"), reply }).unwrap();
+    let mut sizes = Vec::new();
+    for _ in 0..3 {
+        assert!(answer.try_recv().is_err(), "answered before its last batch");
+        let batch = src.poll(&mut p, 10, Duration::from_millis(10)).unwrap();
+        let mut out = OutputBatch::default();
+        let mut statuses = Vec::new();
+        for (id, msgs) in &batch {
+            sizes.push(msgs.len());
+            statuses.push((id.clone(), p.process(id, msgs, &mut out).unwrap()));
+        }
+        p.commit().unwrap();
+        src.committed(&p, statuses).unwrap();
+    }
+    assert_eq!(sizes, vec![10, 10, 5]);
+    let r = answer.try_recv().expect("answered after the last batch");
+    assert_eq!((r.accepted, r.rejected, r.duplicates), (24, 1, 0));
+    assert_eq!(r.errors[0].line, 13);
+    assert_eq!(r.errors[0].reason, "invalid_json");
+    assert!(src.poll(&mut p, 10, Duration::from_millis(10)).unwrap().is_empty());
+}

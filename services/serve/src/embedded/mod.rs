@@ -1,8 +1,9 @@
 //! Embedded mode (no Kafka): events arrive by HTTP (`POST /v1/events`, a
 //! body of NDJSON lines) and/or from a followed NDJSON file; output goes to
 //! rotating NDJSON files. Each source is one partition (`http/0`,
-//! `file/0`) with its own watermark; an HTTP request is answered after its
-//! batch is committed, with per-line results.
+//! `file/0`) with its own watermark; an HTTP request's lines go into
+//! batches of at most the batch limit, and the request is answered after
+//! the batch holding its last line is committed, with per-line results.
 
 pub mod file;
 pub mod http;
@@ -19,9 +20,18 @@ use crate::source::{InMsg, MsgStatus, PartId, Payload, Source};
 use file::{Follower, Identity};
 use http::{IngestReply, IngestRequest, LineError};
 
+/// The lines of one request taken into the current batch; `reply` is set
+/// on the segment holding the request's last line.
 struct Waiting {
-    reply: tokio::sync::oneshot::Sender<IngestReply>,
+    reply: Option<tokio::sync::oneshot::Sender<IngestReply>>,
     lines: Vec<usize>,
+}
+
+/// A request whose lines are partly taken: those from `at` on remain.
+struct Current {
+    body: axum::body::Bytes,
+    at: http::Cursor,
+    reply: tokio::sync::oneshot::Sender<IngestReply>,
 }
 
 /// HTTP and file input.
@@ -29,6 +39,11 @@ pub struct EmbeddedSource {
     rx: Receiver<IngestRequest>,
     next_seq: i64,
     waiting: Vec<Waiting>,
+    /// The request being taken, when it did not fit into one batch.
+    current: Option<Current>,
+    /// The reply of the oldest request not yet answered, counted over the
+    /// batches committed so far (requests are taken in order).
+    partial: IngestReply,
     file: Option<Follower>,
     http: PartId,
     file_part: PartId,
@@ -54,6 +69,8 @@ impl EmbeddedSource {
             rx,
             next_seq: committed.map_or(0, |c| c + 1),
             waiting: Vec::new(),
+            current: None,
+            partial: IngestReply::default(),
             file,
             http,
             file_part,
@@ -71,27 +88,58 @@ impl Source for EmbeddedSource {
                 pipeline.set_source_position(&self.file_part, id.to_bytes());
             }
         }
-        let first = if file.is_empty() {
-            self.rx.recv_timeout(wait)
-        } else {
-            self.rx.try_recv().map_err(|_| RecvTimeoutError::Timeout)
-        };
-        let mut next = first.ok();
-        while let Some(req) = next.take() {
-            let now = Instant::now();
-            let wall = crate::pipeline::now_ms();
-            let mut lines = Vec::with_capacity(req.lines.len());
-            for (n, l) in req.lines {
-                http.push(InMsg { offset: self.next_seq, payload: l, arrived: now, timestamp_ms: wall });
-                self.next_seq += 1;
-                lines.push(n);
+        let max = max.max(1);
+        let now = Instant::now();
+        let wall = crate::pipeline::now_ms();
+        let mut first = true;
+        while http.len() < max {
+            let mut cur = match self.current.take() {
+                Some(c) => c,
+                None => {
+                    let req = if first && file.is_empty() && http.is_empty() {
+                        self.rx.recv_timeout(wait).ok()
+                    } else {
+                        self.rx.try_recv().map_err(|_| RecvTimeoutError::Timeout).ok()
+                    };
+                    match req {
+                        Some(r) => Current { body: r.body, at: http::Cursor::default(), reply: r.reply },
+                        None => break,
+                    }
+                }
+            };
+            first = false;
+            let mut lines = Vec::new();
+            let mut done = false;
+            while http.len() < max {
+                match http::next_line(&cur.body, &mut cur.at) {
+                    Some((n, l)) => {
+                        http.push(InMsg {
+                            offset: self.next_seq,
+                            payload: l.to_vec(),
+                            arrived: now,
+                            timestamp_ms: wall,
+                        });
+                        self.next_seq += 1;
+                        lines.push(n);
+                    }
+                    None => {
+                        done = true;
+                        break;
+                    }
+                }
             }
-            self.waiting.push(Waiting { reply: req.reply, lines });
-            if http.len() < max {
-                next = self.rx.try_recv().ok();
+            // The end of the body may be blank lines only.
+            if !done && http::next_line(&cur.body, &mut { cur.at }).is_none() {
+                done = true;
+            }
+            if done {
+                self.waiting.push(Waiting { reply: Some(cur.reply), lines });
+            } else {
+                self.waiting.push(Waiting { reply: None, lines });
+                self.current = Some(cur);
             }
         }
-        self.http_backlog = http.len() >= max;
+        self.http_backlog = http.len() >= max || self.current.is_some();
         let mut out = Vec::new();
         if !http.is_empty() {
             out.push((self.http.clone(), http));
@@ -106,7 +154,7 @@ impl Source for EmbeddedSource {
         let Some((_, st)) = statuses.into_iter().find(|(id, _)| *id == self.http) else { return Ok(()) };
         let mut it = st.into_iter();
         for w in self.waiting.drain(..) {
-            let mut reply = IngestReply::default();
+            let reply = &mut self.partial;
             for line in w.lines {
                 match it.next() {
                     Some(MsgStatus::Accepted) | Some(MsgStatus::AlreadyApplied) | Some(MsgStatus::Progress) => {
@@ -114,13 +162,14 @@ impl Source for EmbeddedSource {
                     }
                     Some(MsgStatus::Duplicate) => reply.duplicates += 1,
                     Some(MsgStatus::Rejected(r)) => {
-                        reply.rejected += 1;
-                        reply.errors.push(LineError { line, reason: r.reason.code().into(), detail: r.detail });
+                        reply.reject(LineError { line, reason: r.reason.code().into(), detail: r.detail })
                     }
                     None => {}
                 }
             }
-            let _ = w.reply.send(reply);
+            if let Some(tx) = w.reply {
+                let _ = tx.send(std::mem::take(&mut self.partial));
+            }
         }
         Ok(())
     }

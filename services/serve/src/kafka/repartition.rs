@@ -305,7 +305,7 @@ impl Repartitioner {
                     send(&self.producer, &self.topic, Some(&key.to_hex()), &json)?;
                 }
                 Err(rej) => {
-                    let (kind, event_id) = decode::sniff(payload, bytes);
+                    let (kind, event_id) = decode::sniff(payload, bytes, self.max_bytes);
                     self.metrics.events_rejected.with_label_values(&[rej.reason.code()]).inc();
                     self.metrics.events_consumed.with_label_values(&[kind, "rejected"]).inc();
                     let d = dead_letter(id, *offset, &rej, event_id, now_ms());

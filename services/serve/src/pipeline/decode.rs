@@ -28,8 +28,13 @@ pub fn decode(payload: Payload, bytes: &[u8], max_bytes: usize) -> Result<(Event
 
 /// The kind (a metric label: `touch`, `conversion`, `erase` or `unknown`)
 /// and the `event_id` of a message that was rejected, as far as they can be
-/// read.
-pub fn sniff(payload: Payload, bytes: &[u8]) -> (&'static str, Option<String>) {
+/// read. A message longer than `max_bytes` (rejected as `too_large`
+/// without being parsed) is not parsed here either: `unknown`, no id, so
+/// that a long rejected line costs no parse at all.
+pub fn sniff(payload: Payload, bytes: &[u8], max_bytes: usize) -> (&'static str, Option<String>) {
+    if bytes.len() > max_bytes {
+        return ("unknown", None);
+    }
     let (kind, id) = match payload {
         Payload::Event(Format::Protobuf) => apportion_wire::sniff_protobuf(bytes),
         Payload::Event(Format::Json) | Payload::Pseudonymized => sniff_json(bytes),
@@ -38,15 +43,30 @@ pub fn sniff(payload: Payload, bytes: &[u8]) -> (&'static str, Option<String>) {
 }
 
 fn sniff_json(bytes: &[u8]) -> (Option<EventKind>, Option<String>) {
-    let Ok(v) = serde_json::from_slice::<serde_json::Value>(bytes) else { return (None, None) };
-    let kind = match v.get("type").and_then(|t| t.as_str()) {
+    /// Only the two fields, read without building the whole document;
+    /// any other field, of any type, is skipped.
+    #[derive(serde::Deserialize)]
+    struct Sniffed {
+        #[serde(rename = "type", default, deserialize_with = "string_or_none")]
+        kind: Option<String>,
+        #[serde(default, deserialize_with = "string_or_none")]
+        event_id: Option<String>,
+    }
+    fn string_or_none<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Option<String>, D::Error> {
+        use serde::Deserialize;
+        Ok(match serde_json::Value::deserialize(d)? {
+            serde_json::Value::String(s) => Some(s),
+            _ => None,
+        })
+    }
+    let Ok(v) = serde_json::from_slice::<Sniffed>(bytes) else { return (None, None) };
+    let kind = match v.kind.as_deref() {
         Some("touch") => Some(EventKind::Touch),
         Some("conversion") => Some(EventKind::Conversion),
         Some("erase") => Some(EventKind::Erase),
         _ => None,
     };
-    let id = v.get("event_id").and_then(|i| i.as_str()).filter(|i| i.len() <= MAX_EVENT_ID_BYTES).map(str::to_string);
-    (kind, id)
+    (kind, v.event_id.filter(|i| i.len() <= MAX_EVENT_ID_BYTES))
 }
 
 /// The internal repartitioned form of an event: the contract's JSON with the
@@ -106,9 +126,19 @@ mod tests {
         let p = Payload::Event(Format::Protobuf);
         let r = decode(p, &bytes, 1 << 20).unwrap_err();
         assert_eq!(r.reason, RejectReason::InvalidCurrency);
-        assert_eq!(sniff(p, &bytes), ("conversion", Some("c-1".into())));
-        assert_eq!(sniff(p, b"\xff\xff"), ("unknown", None));
-        assert_eq!(sniff(Payload::Event(Format::Json), line.as_bytes()), ("conversion", Some("c-1".into())));
+        assert_eq!(sniff(p, &bytes, 1 << 20), ("conversion", Some("c-1".into())));
+        assert_eq!(sniff(p, b"\xff\xff", 1 << 20), ("unknown", None));
+        let json = Payload::Event(Format::Json);
+        assert_eq!(sniff(json, line.as_bytes(), 1 << 20), ("conversion", Some("c-1".into())));
+        // Longer than the limit: rejected unparsed (too_large), sniffed as nothing.
+        assert_eq!(sniff(json, line.as_bytes(), line.len() - 1), ("unknown", None));
+        // A field of another type than expected is left out; other fields are skipped.
+        assert_eq!(
+            sniff(json, br#"{"type":7,"event_id":"e","x":[1,{"y":null}]}"#, 1 << 20),
+            ("unknown", Some("e".into()))
+        );
+        assert_eq!(sniff(json, br#"{"type":"erase","event_id":{"a":1}}"#, 1 << 20), ("erase", None));
+        assert_eq!(sniff(json, b"[1,2]", 1 << 20), ("unknown", None));
     }
 
     /// The pseudonymized form reads back to the same event with the key

@@ -205,7 +205,7 @@ impl Pipeline {
         let (mut ev, key) = match decoded {
             Ok(v) => v,
             Err(r) => {
-                let (kind, event_id) = decode::sniff(payload, &m.payload);
+                let (kind, event_id) = decode::sniff(payload, &m.payload, self.cfg.max_event_bytes);
                 self.metrics.events_consumed.with_label_values(&[kind, "rejected"]).inc();
                 self.metrics.events_rejected.with_label_values(&[r.reason.code()]).inc();
                 out.dead_letters.push(emit::dead_letter(id, m.offset, &r, event_id, received_at));
