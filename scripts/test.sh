@@ -51,6 +51,9 @@ cargo clippy --workspace --all-targets --locked -- -D warnings 2>&1
 echo "== cargo test"
 cargo test --workspace --release --locked --no-fail-fast 2>&1
 
+echo "== fuzz: every target 60 s under AFL++ (scripts/fuzz.sh; fails on any crash)"
+bash scripts/fuzz.sh 60
+
 echo "== benchmark harness smoke test (load/bench.sh --quick; no speed assertions)"
 cargo build --release --locked -p apportion -p apportion-load 2>&1
 bench_tmp="$(mktemp -d)"

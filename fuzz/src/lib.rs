@@ -435,6 +435,9 @@ pub fn check_engine(s: &Scenario) {
         view_lookback_ms: i64::from(s.view_lookback_h) * day,
         expiry_ms: i64::from(s.expiry_h) * day,
         max_touches: usize::from(s.max_touches % 33),
+        // The high bit turns the age limit on: twice the lookback (it is at
+        // least the lookback, as the configuration requires).
+        max_age_ms: if s.max_touches >= 128 { 2 * i64::from(s.lookback_h) * day } else { 0 },
     };
     let mut params = RuleParams {
         half_life_ms: (i64::from(s.half_life_min) + 1) * 60_000,
@@ -492,13 +495,19 @@ pub fn check_engine(s: &Scenario) {
                         rules.max_touches
                     );
                 }
+                if rules.max_age_ms > 0 {
+                    let span = path.last().map_or(0, |l| l.ts - path[0].ts);
+                    assert!(span <= rules.max_age_ms, "a path spanning {span} ms, age limit {}", rules.max_age_ms);
+                }
                 for t in path {
                     assert!(touches_seen.insert(t.event_id.clone()), "touch {} in two paths", t.event_id);
                 }
             }
             Effect::Erased { .. } => {}
-            Effect::TouchesDropped { touches, .. } => {
-                assert!(rules.max_touches > 0 && *touches > 0, "{touches} touches dropped without a cap");
+            Effect::TouchesDropped { cap, age, .. } => {
+                assert!(*cap == 0 || rules.max_touches > 0, "{cap} touches dropped without a cap");
+                assert!(*age == 0 || rules.max_age_ms > 0, "{age} touches dropped without an age limit");
+                assert!(cap + age > 0, "an empty drop");
             }
         }
     }
@@ -518,10 +527,10 @@ pub fn check_engine(s: &Scenario) {
         }
     }
 
-    // Streaming equals replay without a cap; with one only for input that
+    // Streaming equals replay without limits; with them only for input that
     // arrives in time order (a touch arriving before an older conversion
     // can be dropped from a run that replay would have split).
-    check_stream_equals_replay(Rules { max_touches: 0, ..rules }, &steps);
+    check_stream_equals_replay(Rules { max_touches: 0, max_age_ms: 0, ..rules }, &steps);
     let events: Vec<&JourneyEvent> = steps.iter().filter_map(|(e, _)| e.as_ref()).collect();
     if events.windows(2).all(|w| (w[0].ts(), w[0].seq) <= (w[1].ts(), w[1].seq)) {
         check_stream_equals_replay(rules, &steps);
