@@ -423,3 +423,53 @@ fn ingest_without_token_off_loopback_refuses_to_start() {
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(err.contains("not a loopback address") && err.contains("APPORTION_EMBEDDED_TOKEN"), "{err}");
 }
+
+/// `POST /v1/erase` (issue 15, item 4): behind the same bearer token as
+/// ingest; erases the user's open touches (the conversion after it is
+/// unattributed) and writes one audit record naming the request. Expected
+/// values derived by hand from docs/contract.md ("Journey rules", "Erasure
+/// records", "HTTP ingest").
+#[test]
+fn the_erase_endpoint_erases_and_audits() {
+    let dir = tempfile::tempdir().unwrap();
+    let token_file = dir.path().join("ingest-token");
+    std::fs::write(&token_file, "hedgerow-91c2\n").unwrap();
+    let (admin, ingest) = (free_port(), free_port());
+    let cfg =
+        embedded_config_with(dir.path(), admin, ingest, "", &format!("token_file = \"{}\"", token_file.display()));
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(30));
+    let auth = "Authorization: Bearer hedgerow-91c2";
+    let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64;
+    let touch = |id: &str, ts: i64, ch: &str| {
+        format!("{{\"type\":\"touch\",\"event_id\":\"{id}\",\"user_id\":\"erase-me\",\"timestamp\":{ts},\"channel\":\"{ch}\"}}\n")
+    };
+    let touches = touch("t1", now - 10_000, "email") + &touch("t2", now - 9_000, "seo");
+    let (status, _, reply) = http_with(ingest, "POST", "/v1/events", &[auth], touches.as_bytes()).unwrap();
+    assert_eq!(status, 202, "{reply}");
+    let body = br#"{"user_id":"erase-me","request_id":"req-42"}"#;
+    let (status, head, _) = http_with(ingest, "POST", "/v1/erase", &[], body).unwrap();
+    assert_eq!(status, 401, "the erase endpoint needs the token");
+    assert!(head.contains("www-authenticate: bearer"), "{head}");
+    let (status, _, reply) = http_with(ingest, "POST", "/v1/erase", &[auth], br#"{"user":"erase-me"}"#).unwrap();
+    assert_eq!(status, 400, "{reply}");
+    assert!(reply.contains("user_id"), "{reply}");
+    let (status, _, reply) = http_with(ingest, "POST", "/v1/erase", &[auth], body).unwrap();
+    assert_eq!(status, 202, "{reply}");
+    let conv = format!(
+        "{{\"type\":\"conversion\",\"event_id\":\"c1\",\"user_id\":\"erase-me\",\"timestamp\":{}}}\n",
+        now + 2_000
+    );
+    let (status, _, reply) = http_with(ingest, "POST", "/v1/events", &[auth], conv.as_bytes()).unwrap();
+    assert_eq!(status, 202, "{reply}");
+    assert_eq!(s.signal("TERM").code(), Some(0));
+    let out = dir.path().join("out");
+    let credit = read_rows(&out, "credit");
+    assert!(!credit.is_empty(), "the conversion is credited");
+    assert!(credit.iter().all(|r| r["channel"] == "unattributed"), "{credit:?}");
+    let erasures = read_rows(&out, "erasures");
+    assert_eq!(erasures.len(), 1, "{erasures:?}");
+    assert_eq!(erasures[0]["request_id"], "req-42");
+    assert_eq!(erasures[0]["touches_deleted"], 2);
+    assert_eq!(erasures[0]["source"], "http");
+}

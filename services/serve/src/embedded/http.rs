@@ -127,6 +127,7 @@ struct IngestState {
 pub fn ingest_router(tx: SyncSender<IngestRequest>, max_body: usize, token: Option<BearerToken>) -> Router {
     let router = Router::new()
         .route("/v1/events", post(ingest))
+        .route("/v1/erase", post(erase))
         .layer(DefaultBodyLimit::max(max_body))
         .with_state(IngestState { tx });
     match token {
@@ -139,6 +140,45 @@ pub fn ingest_router(tx: SyncSender<IngestRequest>, max_body: usize, token: Opti
 pub fn split_lines(body: &[u8]) -> Vec<(usize, &[u8])> {
     let mut at = Cursor::default();
     std::iter::from_fn(|| next_line(body, &mut at)).collect()
+}
+
+/// The body of `POST /v1/erase`.
+#[derive(Debug, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+struct EraseRequest {
+    /// The raw user id to erase (pseudonymized at once, like an event's).
+    user_id: String,
+    /// An id for the request, copied to the erase's `event_id` and to its
+    /// audit record; a repeated id is a duplicate.
+    request_id: Option<String>,
+}
+
+/// `POST /v1/erase` with `{"user_id": "...", "request_id": "..."}`: an
+/// `erase` event for the user, timed now, through the same queue and
+/// pipeline as ingested events (so it is applied in order, deduplicated
+/// and audited like one; contract: HTTP ingest).
+async fn erase(State(s): State<IngestState>, body: Bytes) -> Response {
+    let req: EraseRequest = match serde_json::from_slice(&body) {
+        Ok(r) => r,
+        Err(e) => {
+            return (
+                StatusCode::BAD_REQUEST,
+                format!("the body must be {{\"user_id\": \"...\"}} with an optional \"request_id\": {e}\n"),
+            )
+                .into_response()
+        }
+    };
+    let mut event = serde_json::json!({
+        "type": "erase",
+        "user_id": req.user_id,
+        "timestamp": crate::pipeline::now_ms(),
+    });
+    if let Some(id) = req.request_id {
+        event["event_id"] = serde_json::Value::String(id);
+    }
+    let mut line = serde_json::to_vec(&event).expect("JSON serializes");
+    line.push(b'\n');
+    ingest(State(s), Bytes::from(line)).await
 }
 
 async fn ingest(State(s): State<IngestState>, body: Bytes) -> Response {
