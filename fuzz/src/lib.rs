@@ -73,34 +73,7 @@ fn check_accepted(ev: &Event) {
 /// The JSON line of an accepted event as the contract writes it (only the
 /// fields its kind reads; the time as epoch milliseconds).
 pub fn canonical_json(ev: &Event) -> String {
-    use serde_json::{Map, Value};
-    let mut m = Map::new();
-    m.insert("type".into(), ev.kind.as_str().into());
-    if !ev.event_id.is_empty() {
-        m.insert("event_id".into(), ev.event_id.clone().into());
-    }
-    m.insert("user_id".into(), ev.user_id.clone().into());
-    m.insert("timestamp".into(), ev.timestamp_ms.into());
-    match ev.kind {
-        EventKind::Touch => {
-            m.insert("channel".into(), ev.channel.clone().into());
-            if let Some(c) = &ev.campaign {
-                m.insert("campaign".into(), c.clone().into());
-            }
-            m.insert("interaction".into(), ev.interaction.as_str().into());
-        }
-        EventKind::Conversion => {
-            m.insert("goal".into(), ev.goal.clone().into());
-            if let Some(v) = ev.value {
-                m.insert("value".into(), serde_json::Number::from_f64(v).expect("finite").into());
-            }
-            if let Some(c) = &ev.currency {
-                m.insert("currency".into(), c.clone().into());
-            }
-        }
-        EventKind::Erase => {}
-    }
-    Value::Object(m).to_string()
+    serde_json::Value::Object(apportion_contract::event::event_fields(ev, &ev.user_id)).to_string()
 }
 
 /// An accepted event written out again, in JSON and in protobuf, is read

@@ -240,6 +240,40 @@ fn string_field(
     }
 }
 
+/// The fields of `ev` as the contract writes them (only the fields its kind
+/// reads; the time as epoch milliseconds), with `user_id` in place of the
+/// event's own (e.g. a user key, where the raw id must not travel on).
+/// Parsing the result gives back the same event.
+pub fn event_fields(ev: &Event, user_id: &str) -> serde_json::Map<String, serde_json::Value> {
+    let mut m = serde_json::Map::new();
+    m.insert("type".into(), ev.kind.as_str().into());
+    if !ev.event_id.is_empty() {
+        m.insert("event_id".into(), ev.event_id.clone().into());
+    }
+    m.insert("user_id".into(), user_id.into());
+    m.insert("timestamp".into(), ev.timestamp_ms.into());
+    match ev.kind {
+        EventKind::Touch => {
+            m.insert("channel".into(), ev.channel.clone().into());
+            if let Some(c) = &ev.campaign {
+                m.insert("campaign".into(), c.clone().into());
+            }
+            m.insert("interaction".into(), ev.interaction.as_str().into());
+        }
+        EventKind::Conversion => {
+            m.insert("goal".into(), ev.goal.clone().into());
+            if let Some(v) = ev.value {
+                m.insert("value".into(), serde_json::json!(v));
+            }
+            if let Some(c) = &ev.currency {
+                m.insert("currency".into(), c.clone().into());
+            }
+        }
+        EventKind::Erase => {}
+    }
+    m
+}
+
 /// True when `code` is three ASCII capital letters, the shape of an ISO 4217
 /// alphabetic code.
 pub fn is_currency_code(code: &str) -> bool {

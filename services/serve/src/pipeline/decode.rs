@@ -84,31 +84,7 @@ pub fn encode_pseudonymized_with(ev: &Event, key: &UserKey, carried: Option<&Car
         m.insert("source_max_ts".into(), c.progress.max_ts.into());
         m.insert("source_caught_up".into(), c.progress.caught_up.into());
     }
-    m.insert("type".into(), ev.kind.as_str().into());
-    if !ev.event_id.is_empty() {
-        m.insert("event_id".into(), ev.event_id.clone().into());
-    }
-    m.insert("user_id".into(), key.to_hex().into());
-    m.insert("timestamp".into(), ev.timestamp_ms.into());
-    match ev.kind {
-        EventKind::Touch => {
-            m.insert("channel".into(), ev.channel.clone().into());
-            if let Some(c) = &ev.campaign {
-                m.insert("campaign".into(), c.clone().into());
-            }
-            m.insert("interaction".into(), ev.interaction.as_str().into());
-        }
-        EventKind::Conversion => {
-            m.insert("goal".into(), ev.goal.clone().into());
-            if let Some(v) = ev.value {
-                m.insert("value".into(), serde_json::json!(v));
-            }
-            if let Some(c) = &ev.currency {
-                m.insert("currency".into(), c.clone().into());
-            }
-        }
-        EventKind::Erase => {}
-    }
+    m.extend(apportion_contract::event::event_fields(ev, &key.to_hex()));
     serde_json::to_vec(&serde_json::Value::Object(m)).expect("JSON values serialize")
 }
 
