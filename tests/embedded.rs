@@ -331,6 +331,11 @@ fn http_ingest_token_limit_and_batches() {
     over.push('\n');
     let (status, _, _) = http_with(ingest, "POST", "/v1/events", &[auth], over.as_bytes()).unwrap();
     assert_eq!(status, 413);
+    // Refusals are counted by reason (two 401s and one 413 so far).
+    let m = s.get("/metrics").unwrap().1;
+    assert_eq!(metric_value(&m, "apportion_ingest_requests_refused_total{reason=\"unauthorized\"}"), 2.0);
+    assert_eq!(metric_value(&m, "apportion_ingest_requests_refused_total{reason=\"too_large\"}"), 1.0);
+    assert_eq!(metric_value(&m, "apportion_ingest_requests_refused_total{reason=\"queue_full\"}"), 0.0);
 
     let batches = |s: &Serve| metric_value(&s.get("/metrics").unwrap().1, "apportion_batch_duration_seconds_count");
     let before = batches(&s);

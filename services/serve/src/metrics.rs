@@ -37,6 +37,8 @@ pub struct Metrics {
     pub journeys_closed: IntCounterVec,
     /// apportion_journey_touches_dropped_total{reason}.
     pub touches_dropped: IntCounterVec,
+    /// apportion_ingest_requests_refused_total{reason}.
+    pub ingest_refused: IntCounterVec,
     /// apportion_credit_rows_total{model}.
     pub credit_rows: IntCounterVec,
     /// apportion_conversions_credited_total{attributed}.
@@ -159,6 +161,12 @@ impl Metrics {
                 "Event ids held in memory for duplicate detection (about 40 bytes each).",
             ),
             journeys_closed: counter(r, "apportion_journeys_closed_total", "Journeys closed, by reason.", &["reason"]),
+            ingest_refused: counter(
+                r,
+                "apportion_ingest_requests_refused_total",
+                "HTTP ingest requests refused before anything of them was applied, by reason.",
+                &["reason"],
+            ),
             touches_dropped: counter(
                 r,
                 "apportion_journey_touches_dropped_total",
@@ -224,6 +232,9 @@ impl Metrics {
         }
         for r in ["touch_cap", "max_age"] {
             m.touches_dropped.with_label_values(&[r]);
+        }
+        for r in ["unauthorized", "too_large", "queue_full"] {
+            m.ingest_refused.with_label_values(&[r]);
         }
         for model in ModelId::ALL {
             m.credit_rows.with_label_values(&[model.as_str()]);

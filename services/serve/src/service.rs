@@ -148,7 +148,10 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
     if let Some((l, tx, token)) = ingest {
         let addr = l.local_addr()?;
         let authenticated = token.is_some();
-        let router = crate::embedded::http::ingest_router(tx, cfg.embedded.max_body_bytes, token);
+        let router = crate::embedded::http::count_refusals(
+            crate::embedded::http::ingest_router(tx, cfg.embedded.max_body_bytes, token),
+            metrics.clone(),
+        );
         let n = http_stop.clone();
         rt.spawn(async move {
             let _ = axum::serve(l, router).with_graceful_shutdown(async move { n.notified().await }).await;

@@ -136,6 +136,27 @@ pub fn ingest_router(tx: SyncSender<IngestRequest>, max_body: usize, token: Opti
     }
 }
 
+/// Counts the requests `router` refuses before applying anything (401, 413,
+/// 429) in `apportion_ingest_requests_refused_total`.
+pub fn count_refusals(router: Router, metrics: crate::metrics::Metrics) -> Router {
+    router.layer(axum::middleware::from_fn(move |req: axum::extract::Request, next: axum::middleware::Next| {
+        let metrics = metrics.clone();
+        async move {
+            let resp = next.run(req).await;
+            let reason = match resp.status() {
+                StatusCode::UNAUTHORIZED => Some("unauthorized"),
+                StatusCode::PAYLOAD_TOO_LARGE => Some("too_large"),
+                StatusCode::TOO_MANY_REQUESTS => Some("queue_full"),
+                _ => None,
+            };
+            if let Some(r) = reason {
+                metrics.ingest_refused.with_label_values(&[r]).inc();
+            }
+            resp
+        }
+    }))
+}
+
 /// Every non-blank line of `body` with its 1-based number (see [`next_line`]).
 pub fn split_lines(body: &[u8]) -> Vec<(usize, &[u8])> {
     let mut at = Cursor::default();
