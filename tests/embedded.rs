@@ -346,14 +346,14 @@ fn http_ingest_token_limit_and_batches() {
     // At most batch_size lines per batch: at least ceil(n / 10) batches. The
     // reply goes out at the last commit, a moment before that batch's
     // duration is observed, so the count is read until it settles.
-    let want = events.len().div_ceil(10) as f64;
+    let want_batches = events.len().div_ceil(10) as f64;
     let t = std::time::Instant::now();
     let mut committed = batches(&s) - before;
-    while committed < want && t.elapsed() < Duration::from_secs(10) {
+    while committed < want_batches && t.elapsed() < Duration::from_secs(10) {
         std::thread::sleep(Duration::from_millis(100));
         committed = batches(&s) - before;
     }
-    assert!(committed >= want, "{committed} batches for {} lines", events.len());
+    assert!(committed >= want_batches, "{committed} batches for {} lines", events.len());
     let log_path = s.log.clone();
     let log = || std::fs::read_to_string(&log_path).unwrap();
     assert!(!log().contains("orchard-lane-7f3a"), "the token is in the log");
