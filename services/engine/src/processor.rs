@@ -117,8 +117,6 @@ pub enum Effect {
         user_key: UserKey,
         /// Touches dropped.
         touches: usize,
-        /// Pending conversions dropped.
-        conversions: usize,
         /// Event ids of the pending conversions dropped.
         conversion_ids: Vec<String>,
     },
@@ -177,7 +175,6 @@ impl Processor {
                 let effect = Effect::Erased {
                     user_key: key,
                     touches: j.touches.len(),
-                    conversions: j.pending.len(),
                     conversion_ids: j.pending.into_iter().map(|c| c.event_id).collect(),
                 };
                 store.save(&key, Journey::default(), None)?;

@@ -13,8 +13,11 @@ use sha2::{Digest, Sha256};
 /// id itself; a collision between two of 2^64 ids is about as likely as
 /// one in 2^-64, far below any input size this runs on).
 pub fn event_id_digest(event_id: &str) -> u128 {
-    let d = Sha256::digest(event_id.as_bytes());
-    u128::from_be_bytes(d[..16].try_into().expect("16 bytes"))
+    first_128_bits(&Sha256::digest(event_id.as_bytes()))
+}
+
+fn first_128_bits(digest: &[u8]) -> u128 {
+    u128::from_be_bytes(digest[..16].try_into().expect("a SHA-256 digest has 32 bytes"))
 }
 
 /// The identity of an `erase` without an `event_id`: a digest of its user
@@ -30,8 +33,7 @@ pub fn erase_digest(user: &[u8], timestamp_ms: i64) -> u128 {
     h.update((user.len() as u64).to_be_bytes());
     h.update(user);
     h.update(timestamp_ms.to_be_bytes());
-    let d = h.finalize();
-    u128::from_be_bytes(d[..16].try_into().expect("16 bytes"))
+    first_128_bits(&h.finalize())
 }
 
 /// The identity under which an event is remembered for duplicate

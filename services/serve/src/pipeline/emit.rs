@@ -4,7 +4,7 @@
 use std::collections::HashMap;
 use std::time::Instant;
 
-use apportion_contract::{DeadLetter, Rejection, Timestamp};
+use apportion_contract::{DeadLetter, ErasureRecord, Rejection, Timestamp};
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::replay::effect_rows;
 use apportion_engine::{Effect, Model, Outcome};
@@ -68,6 +68,31 @@ pub fn emit(
         out.paths.extend(path);
     }
     stats_changed
+}
+
+/// The audit record of an erase applied at `offset` of partition `id`, if
+/// `effect` is its erasure (contract: Erasure records); `request_id` is
+/// the erase's `event_id` (empty: none).
+pub fn erasure(
+    id: &PartId,
+    offset: i64,
+    effect: &Effect,
+    request_id: &str,
+    requested_at: i64,
+    received_at: i64,
+) -> Option<ErasureRecord> {
+    let Effect::Erased { user_key, touches, conversion_ids } = effect else { return None };
+    Some(ErasureRecord {
+        user_key: *user_key,
+        touches_deleted: *touches as u64,
+        conversions_deleted: conversion_ids.len() as u64,
+        request_id: (!request_id.is_empty()).then(|| request_id.to_string()),
+        requested_at: Timestamp(requested_at),
+        erased_at: Timestamp(received_at),
+        source: id.source.clone(),
+        partition: Some(id.partition),
+        offset: Some(offset),
+    })
 }
 
 /// The dead letter of a message of partition `id`.

@@ -24,7 +24,7 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use anyhow::{Context, Result};
 use apportion_contract::time::format_ms;
-use apportion_contract::{ErasureRecord, EventKind, RejectReason, Rejection, Timestamp};
+use apportion_contract::{EventKind, RejectReason, Rejection};
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::replay::dedupe_digest;
 use apportion_engine::{Effect, JourneyEvent, Model, Processor, Pseudonymizer};
@@ -251,13 +251,7 @@ impl Pipeline {
             return Ok(MsgStatus::Duplicate);
         }
         let mut outcome = "accepted";
-        // An erase is never late: it takes effect where it arrives.
-        let judged = if ev.kind == EventKind::Erase {
-            Lateness::OnTime
-        } else {
-            policy::judge(ev.timestamp_ms, part.clock.watermark, self.cfg.late_policy)
-        };
-        match judged {
+        match policy::judge(ev.kind, ev.timestamp_ms, part.clock.watermark, self.cfg.late_policy) {
             Lateness::OnTime => {}
             Lateness::DeadLetter => {
                 let r = Rejection::new(
@@ -284,27 +278,14 @@ impl Pipeline {
             part.arrivals.insert(ev.event_id.clone(), m.arrived);
         }
         part.clock.max_ts = part.clock.max_ts.max(ev.timestamp_ms);
-        let erase_request = (ev.kind == EventKind::Erase)
-            .then(|| ((!ev.event_id.is_empty()).then(|| ev.event_id.clone()), ev.timestamp_ms));
+        let erase_request = (ev.kind == EventKind::Erase).then(|| (ev.event_id.clone(), ev.timestamp_ms));
         let seq = m.offset.max(0) as u64;
         let wm = part.clock.watermark;
         let mut effects = self.processor.apply(&mut part.store, JourneyEvent::from_event(ev, key, seq), wm)?;
         if let Some((request_id, requested_at)) = erase_request {
-            for e in &effects {
-                if let Effect::Erased { user_key, touches, conversions, .. } = e {
-                    out.erasures.push(ErasureRecord {
-                        user_key: *user_key,
-                        touches_deleted: *touches as u64,
-                        conversions_deleted: *conversions as u64,
-                        request_id: request_id.clone(),
-                        requested_at: Timestamp(requested_at),
-                        erased_at: Timestamp(received_at),
-                        source: id.source.clone(),
-                        partition: Some(id.partition),
-                        offset: Some(m.offset),
-                    });
-                }
-            }
+            out.erasures.extend(
+                effects.iter().filter_map(|e| emit::erasure(id, m.offset, e, &request_id, requested_at, received_at)),
+            );
         }
         // Move the watermark: largest event time - allowed lateness (for
         // repartitioned input: of the slowest input partition).

@@ -3,6 +3,8 @@
 //! the IO so they can be tested alone and stated once (docs/contract.md,
 //! "Streaming time").
 
+use apportion_contract::EventKind;
+
 use crate::config::LatePolicy;
 
 /// What to do with an event, judged against its partition's watermark.
@@ -16,9 +18,11 @@ pub enum Lateness {
     Apply,
 }
 
-/// Judges an event at `ts` against `watermark` (`i64::MIN`: none yet).
-pub fn judge(ts: i64, watermark: i64, policy: LatePolicy) -> Lateness {
-    if watermark == i64::MIN || ts >= watermark {
+/// Judges an event of `kind` at `ts` against `watermark` (`i64::MIN`: none
+/// yet). An erase is never late: it takes effect where it arrives
+/// (contract: Journey rules, Erase).
+pub fn judge(kind: EventKind, ts: i64, watermark: i64, policy: LatePolicy) -> Lateness {
+    if kind == EventKind::Erase || watermark == i64::MIN || ts >= watermark {
         return Lateness::OnTime;
     }
     match policy {
@@ -62,10 +66,10 @@ mod tests {
     // "Streaming time".
     #[test]
     fn lateness() {
-        assert_eq!(judge(5, i64::MIN, LatePolicy::DeadLetter), Lateness::OnTime);
-        assert_eq!(judge(5, 5, LatePolicy::DeadLetter), Lateness::OnTime);
-        assert_eq!(judge(4, 5, LatePolicy::DeadLetter), Lateness::DeadLetter);
-        assert_eq!(judge(4, 5, LatePolicy::Apply), Lateness::Apply);
+        assert_eq!(judge(EventKind::Touch, 5, i64::MIN, LatePolicy::DeadLetter), Lateness::OnTime);
+        assert_eq!(judge(EventKind::Touch, 5, 5, LatePolicy::DeadLetter), Lateness::OnTime);
+        assert_eq!(judge(EventKind::Touch, 4, 5, LatePolicy::DeadLetter), Lateness::DeadLetter);
+        assert_eq!(judge(EventKind::Touch, 4, 5, LatePolicy::Apply), Lateness::Apply);
     }
 
     #[test]
