@@ -21,7 +21,9 @@
 //!
 //! A failed produce, flush or offset commit does not stop the service: the
 //! stage waits (exponential backoff up to 30 s), rewinds its consumer to the
-//! last committed input offsets and reads the same messages again. Messages
+//! last committed input offsets and reads the same messages again. Offsets
+//! are committed asynchronously: no call of the stage waits without a time
+//! limit, so a broker restart during a rebalance cannot stall it. Messages
 //! produced twice are the same records; stage 2 drops the second copy of an
 //! event as a duplicate.
 
@@ -347,7 +349,14 @@ impl Repartitioner {
             for ((t, p), o) in offsets {
                 tpl.add_partition_offset(&t, p, Offset::Offset(o + 1))?;
             }
-            self.consumer.commit(&tpl, CommitMode::Sync).context("committing repartition offsets")?;
+            // Asynchronous on purpose: a synchronous commit waits without a
+            // time limit, and while the group rejoins after a broker restart
+            // it can wait for a rebalance that only this thread's next poll
+            // would serve (the service then stalls for good). A commit that
+            // is lost only means the same input is read again after a
+            // restart or rewind; stage 2 drops the repeated events as
+            // duplicates (contract: Journey rules).
+            self.consumer.commit(&tpl, CommitMode::Async).context("committing repartition offsets")?;
         }
         Ok(())
     }
