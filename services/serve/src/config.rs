@@ -111,6 +111,9 @@ pub struct Config {
     pub refit_interval: Period,
     /// Streaming: how long event ids are remembered for duplicate detection (event time).
     pub dedupe_horizon: Period,
+    /// serve: how often the stored journeys are scanned for the age of the
+    /// oldest event they hold (`0s`: never).
+    pub state_scan_interval: Period,
     /// Streaming: number of events in one processing batch when input is
     /// light (the batch limit starts here and returns here).
     pub batch_size: usize,
@@ -231,6 +234,7 @@ impl Default for Config {
             max_future_skew: Period(15 * 60_000),
             refit_interval: Period(15 * 60_000),
             dedupe_horizon: Period::days(7),
+            state_scan_interval: Period(5 * 60_000),
             batch_size: 5000,
             max_batch_size: 50_000,
             shutdown_grace: Period::seconds(30),

@@ -42,6 +42,7 @@ pub mod run_loop;
 pub mod service;
 pub mod source;
 pub mod state_admin;
+mod state_scan;
 
 #[cfg(test)]
 mod tests;

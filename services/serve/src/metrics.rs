@@ -57,6 +57,8 @@ pub struct Metrics {
     pub consumer_lag: IntGaugeVec,
     /// apportion_store_size_bytes.
     pub store_size: IntGauge,
+    /// apportion_state_oldest_event_age_seconds.
+    pub state_oldest_age: IntGauge,
     /// apportion_store_disk_available_bytes.
     pub disk_available: IntGauge,
     /// apportion_model_last_refit_timestamp_seconds{model}.
@@ -195,6 +197,10 @@ impl Metrics {
             watermark_lag,
             consumer_lag,
             store_size: gauge("apportion_store_size_bytes", "Size of the sled store on disk."),
+            state_oldest_age: gauge(
+                "apportion_state_oldest_event_age_seconds",
+                "Wall-clock age, at the last state scan, of the oldest event held in a stored journey (0: none).",
+            ),
             disk_available: gauge(
                 "apportion_store_disk_available_bytes",
                 "Free bytes on the data directory's filesystem.",

@@ -809,3 +809,33 @@ fn an_http_request_is_split_into_batches() {
     assert_eq!(r.errors[0].reason, "invalid_json");
     assert!(src.poll(&mut p, 10, Duration::from_millis(10)).unwrap().is_empty());
 }
+
+#[test]
+fn the_state_scan_reports_the_oldest_stored_event() {
+    // Contract: Journey rules, "How long state is kept" (derived by hand):
+    // the oldest event held is u's touch three days before now, so the
+    // gauge reads 3 x 86 400 s (plus the seconds the test takes); the
+    // newer touches of u and v do not lower it.
+    let metrics = Metrics::new(prometheus::Registry::new());
+    let now = crate::pipeline::now_ms();
+    let day = 86_400 * SEC;
+    let cfg = Config { state_scan_interval: Period(3_600 * SEC), ..config() };
+    let mut p = Pipeline::new(cfg, Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let mut out = OutputBatch::default();
+    let batch = vec![
+        touch("b", "u", now - 3 * day, "seo"),
+        touch("c", "u", now - 2 * day, "social"),
+        touch("a", "v", now - day, "email"),
+    ];
+    p.process(&part(), &msgs(1, batch, Instant::now()), &mut out).unwrap();
+    p.commit().unwrap();
+    p.update_gauges();
+    let deadline = Instant::now() + Duration::from_secs(30);
+    while metrics.state_oldest_age.get() == 0 && Instant::now() < deadline {
+        std::thread::sleep(Duration::from_millis(20));
+        p.update_gauges();
+    }
+    let age = metrics.state_oldest_age.get();
+    assert!((3 * 86_400..3 * 86_400 + 60).contains(&age), "oldest event age {age} s");
+}

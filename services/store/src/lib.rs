@@ -246,6 +246,39 @@ impl Store {
         Ok(self.db.drop_tree(format!("p/{name}"))?)
     }
 
+    /// The event time of the oldest event (touch or pending conversion)
+    /// held in the committed journeys of every partition, and how many
+    /// journeys were read; `None` when no journey is stored. A full scan of
+    /// the journey records: run it off the processing thread. It stops early,
+    /// returning `Ok(None)`, once `cancel` is set.
+    pub fn oldest_journey_event(
+        &self,
+        cancel: &std::sync::atomic::AtomicBool,
+    ) -> Result<Option<(i64, u64)>, StoreError> {
+        let mut oldest: Option<i64> = None;
+        let mut read = 0u64;
+        for name in self.partitions() {
+            let tree = self.db.open_tree(format!("p/{name}"))?;
+            for item in tree.scan_prefix([partition::J]) {
+                if read % 4096 == 0 && cancel.load(std::sync::atomic::Ordering::Relaxed) {
+                    return Ok(None);
+                }
+                let (_, v) = item?;
+                let stored = codec::decode_journey(&v)?;
+                read += 1;
+                let first =
+                    [stored.journey.touches.first().map(|t| t.ts), stored.journey.pending.first().map(|c| c.ts)]
+                        .into_iter()
+                        .flatten()
+                        .min();
+                if let Some(t) = first {
+                    oldest = Some(oldest.map_or(t, |o| o.min(t)));
+                }
+            }
+        }
+        Ok(oldest.map(|o| (o, read)))
+    }
+
     /// Bytes on disk.
     pub fn size_on_disk(&self) -> u64 {
         self.db.size_on_disk().unwrap_or(0)

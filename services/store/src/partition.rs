@@ -15,7 +15,7 @@ use crate::codec::{
 use crate::seen::Seen;
 use crate::StoreError;
 
-const J: u8 = b'j';
+pub(crate) const J: u8 = b'j';
 /// Wake index keys that earlier builds wrote (wake time + user key); the
 /// index now lives in memory, rebuilt from the journey records on open.
 const W: u8 = b'w';

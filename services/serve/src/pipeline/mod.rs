@@ -54,13 +54,17 @@ pub struct Pipeline {
     parts: BTreeMap<PartId, PartState>,
     refit: Refit,
     metrics: Metrics,
+    state_scan: crate::state_scan::StateScan,
 }
 
 impl Pipeline {
     /// Opens the pipeline over `store`.
     pub fn new(cfg: Config, pseudo: Pseudonymizer, store: Store, metrics: Metrics) -> Result<Self> {
         let refit = Refit::new(cfg.model_plan(), cfg.refit_interval.ms(), metrics.clone());
+        let scan_every = (cfg.state_scan_interval.ms() > 0).then(|| cfg.state_scan_interval.to_std());
+        let state_scan = crate::state_scan::StateScan::new(store.clone(), scan_every, metrics.clone());
         Ok(Pipeline {
+            state_scan,
             processor: Processor::new(cfg.rules()),
             cfg,
             pseudo,
@@ -485,8 +489,9 @@ impl Pipeline {
         self.parts.iter().filter_map(|(k, v)| v.committed.map(|o| (k.clone(), o))).collect()
     }
 
-    /// Updates store gauges.
-    pub fn update_gauges(&self) {
+    /// Updates store gauges (and starts or collects the state scan).
+    pub fn update_gauges(&mut self) {
+        self.state_scan.tick();
         let open: u64 = self.parts.values().map(|p| p.store.open_journeys()).sum();
         self.metrics.journeys_open.set(open as i64);
         let ids: usize = self.parts.values().map(|p| p.store.remembered_ids()).sum();
