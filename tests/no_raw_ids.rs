@@ -202,3 +202,63 @@ fn no_raw_id_in_state_logs_metrics_or_output() {
     // The check can fail: the input itself holds every raw id.
     assert!(!hits(&[input.parent().unwrap()], &[]).is_empty());
 }
+
+/// The same scenario through `serve` on the real broker, input not keyed by
+/// user (so the internal repartition topic is used), debug logs: no raw id
+/// in any message (key or payload) of the repartition, credit, path,
+/// dead-letter or erasure topics, in the store, the log or /metrics. The
+/// input topic itself holds them (the search is shown to find them there).
+#[test]
+fn no_raw_id_in_kafka_topics() {
+    use apportion_e2e::{consume_raw_until, create_topics, kafka_config, produce, server, unique, Serve};
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("raw");
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events"), &format!("{prefix}-repart")], 2, &[]);
+    let msgs: Vec<(Option<String>, Vec<u8>, Option<i32>)> =
+        lines().into_iter().enumerate().map(|(i, l)| (None, l.into_bytes(), Some((i % 2) as i32))).collect();
+    produce(&brokers, &format!("{prefix}-events"), &msgs);
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, false, "");
+    let text = std::fs::read_to_string(&cfg)
+        .unwrap()
+        .replace("level = \"info\"", "level = \"debug\"")
+        .replace("allowed_lateness = \"2s\"", "allowed_lateness = \"0s\"");
+    std::fs::write(&cfg, text).unwrap();
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let topic = |name: &str| format!("{prefix}-{name}");
+    let wait = Duration::from_secs(90);
+    // The six bad lines are dead letters (the "late" touch need not be: the
+    // watermark follows the slower of the two input partitions); one erase
+    // record.
+    let dead = consume_raw_until(&brokers, &topic("dead"), wait, |m| m.len() >= 6);
+    let texts: Vec<_> = dead.iter().map(|m| String::from_utf8_lossy(&m.1)).collect();
+    assert!(dead.len() >= 6, "dead letters: {texts:?}");
+    let erasures = consume_raw_until(&brokers, &topic("erasures"), wait, |m| !m.is_empty());
+    assert_eq!(erasures.len(), 1);
+    let credit = consume_raw_until(&brokers, &topic("credit"), wait, |m| !m.is_empty());
+    assert!(!credit.is_empty(), "credit rows were written");
+    let (_, metrics) = s.get("/metrics").unwrap();
+    assert_eq!(s.signal("TERM").code(), Some(0));
+    let short = Duration::from_secs(3);
+    let mut found = Vec::new();
+    for name in ["repart", "credit", "paths", "dead", "erasures"] {
+        let all = consume_raw_until(&brokers, &topic(name), short, |_| false);
+        if name != "paths" {
+            assert!(!all.is_empty(), "topic {name} holds messages");
+        }
+        for (i, (key, payload)) in all.iter().enumerate() {
+            if holds_mark(key) || holds_mark(payload) {
+                found.push(format!("{name} message {i}: {}", String::from_utf8_lossy(payload)));
+            }
+        }
+    }
+    let serve_log = std::fs::read_to_string(&s.log).unwrap();
+    assert!(serve_log.contains("DEBUG"), "debug logging is on");
+    found.extend(hits(&[&dir.path().join("data")], &[("serve log", &serve_log), ("/metrics", &metrics)]));
+    assert!(found.is_empty(), "raw ids found: {found:?}");
+    // The search finds raw ids where they are: the input topic.
+    let input = consume_raw_until(&brokers, &topic("events"), short, |_| false);
+    assert!(input.iter().any(|(_, p)| holds_mark(p)), "the input holds the raw ids");
+}

@@ -163,6 +163,24 @@ pub fn consume_until_with(
     decode: impl Fn(&[u8]) -> Value,
     mut done: impl FnMut(&[Value]) -> bool,
 ) -> Vec<Value> {
+    let mut decoded: Vec<Value> = Vec::new();
+    let raw = consume_raw_until(brokers, topic, timeout, |msgs| {
+        decoded.extend(msgs[decoded.len()..].iter().map(|(_, payload)| decode(payload)));
+        done(&decoded)
+    });
+    decoded.extend(raw[decoded.len()..].iter().map(|(_, payload)| decode(payload)));
+    decoded
+}
+
+/// Reads every message of `topic` from the beginning until `done` says so
+/// (asked whenever no message is waiting) or `timeout` passes. Returns each
+/// message's key (empty when it has none) and payload, as stored.
+pub fn consume_raw_until(
+    brokers: &str,
+    topic: &str,
+    timeout: Duration,
+    mut done: impl FnMut(&[(Vec<u8>, Vec<u8>)]) -> bool,
+) -> Vec<(Vec<u8>, Vec<u8>)> {
     let c: BaseConsumer = ClientConfig::new()
         .set("bootstrap.servers", brokers)
         .set("group.id", unique("reader"))
@@ -191,7 +209,7 @@ pub fn consume_until_with(
     let mut out = Vec::new();
     while start.elapsed() < timeout {
         match c.poll(Duration::from_millis(200)) {
-            Some(Ok(m)) => out.push(decode(m.payload().unwrap_or_default())),
+            Some(Ok(m)) => out.push((m.key().unwrap_or_default().to_vec(), m.payload().unwrap_or_default().to_vec())),
             Some(Err(e)) => eprintln!("consumer error: {e}"),
             None => {
                 if done(&out) {
