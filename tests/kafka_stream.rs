@@ -609,3 +609,87 @@ fn broker_restart_during_repartitioning() {
     assert_eq!(canonical(&unique_rows), canonical(&want), "log: {}", std::fs::read_to_string(&s.log).unwrap());
     assert_eq!(s.signal("TERM").code(), Some(0));
 }
+
+/// `POST /v1/erase` on the admin listener in Kafka mode (contract: HTTP
+/// ingest, Erase; derived by hand): off without an admin token (404), 401
+/// without the bearer token, and with it the erase reaches every input
+/// partition: u-gone's touch is dropped (its later conversion is
+/// `unattributed`, one row per model), u-kept keeps its credit, and the
+/// audit records name u-gone's key (the key its credit rows carry) and the
+/// request id. Keyed input: one record per input partition (each applies
+/// its copy). Repartitioned input: the copies meet on one partition and
+/// the second is a duplicate, so one record.
+fn erase_endpoint(keyed: bool) {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique(if keyed { "erk" } else { "eru" });
+    let dir = tempfile::tempdir().unwrap();
+    create_topics(&brokers, &[&format!("{prefix}-events"), &format!("{prefix}-repart")], 2, &[]);
+    let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64;
+    let touch = |id: &str, user: &str, ts: i64| {
+        format!(r#"{{"type":"touch","event_id":"{id}","user_id":"{user}","timestamp":{ts},"channel":"email"}}"#)
+            .into_bytes()
+    };
+    produce(
+        &brokers,
+        &format!("{prefix}-events"),
+        &[(None, touch("t1", "u-gone", now - 60_000), Some(0)), (None, touch("t2", "u-kept", now - 60_000), Some(1))],
+    );
+    let admin = free_port();
+    let cfg = kafka_config(dir.path(), &brokers, admin, &prefix, keyed, "");
+    let plain = std::fs::read_to_string(&cfg).unwrap();
+    // First without a token: the endpoint is off.
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let body = br#"{"user_id":"u-gone","request_id":"req-1"}"#;
+    let (status, _, text) = http_with(admin, "POST", "/v1/erase", &[], body).unwrap();
+    assert_eq!((status, text.contains("admin token")), (404, true), "{text}");
+    wait_accepted(&s, 2, Duration::from_secs(60));
+    assert_eq!(s.signal("TERM").code(), Some(0));
+    std::fs::write(&cfg, plain.replace("[admin]\n", "[admin]\ntoken = \"erase-me-token\"\n")).unwrap();
+    let mut s = Serve::start(&cfg, admin, &dir.path().join("serve.log"));
+    s.wait_ready(Duration::from_secs(60));
+    let (status, head, _) = http_with(admin, "POST", "/v1/erase", &[], body).unwrap();
+    assert_eq!(status, 401);
+    assert!(head.contains("www-authenticate: bearer"), "{head}");
+    let auth = ["Authorization: Bearer erase-me-token"];
+    let (status, _, text) = http_with(admin, "POST", "/v1/erase", &auth, b"{\"user\":\"u-gone\"}").unwrap();
+    assert_eq!(status, 400, "{text}");
+    let (status, _, text) = http_with(admin, "POST", "/v1/erase", &auth, body).unwrap();
+    assert_eq!(status, 202, "{text}");
+    let answer: Value = serde_json::from_str(&text).unwrap();
+    assert_eq!(answer["partitions"], 2, "{answer}");
+    assert_eq!(answer["request_id"], "req-1");
+    // Conversions after the erase (later than its time, so not late).
+    let later = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64 + 1_000;
+    let conv = |id: &str, user: &str| {
+        format!(r#"{{"type":"conversion","event_id":"{id}","user_id":"{user}","timestamp":{later}}}"#).into_bytes()
+    };
+    produce(
+        &brokers,
+        &format!("{prefix}-events"),
+        &[(None, conv("c1", "u-gone"), Some(0)), (None, conv("c2", "u-kept"), Some(1))],
+    );
+    let credit = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 10);
+    assert_eq!(credit.len(), 10, "{credit:?}");
+    let gone: Vec<&Value> = credit.iter().filter(|r| r["conversion_id"] == "c1").collect();
+    assert!(gone.iter().all(|r| r["channel"] == "unattributed"), "{gone:?}");
+    assert!(credit.iter().filter(|r| r["conversion_id"] == "c2").all(|r| r["touch_event_id"] == "t2"), "{credit:?}");
+    let want_records = if keyed { 2 } else { 1 };
+    let records =
+        consume_until(&brokers, &format!("{prefix}-erasures"), Duration::from_secs(30), |r| r.len() >= want_records);
+    assert_eq!(records.len(), want_records, "{records:?}");
+    assert!(records.iter().all(|r| r["user_key"] == gone[0]["user_key"] && r["request_id"] == "req-1"), "{records:?}");
+    let deleted: i64 = records.iter().map(|r| r["touches_deleted"].as_i64().unwrap()).sum();
+    assert_eq!(deleted, 1, "{records:?}");
+    assert_eq!(s.signal("TERM").code(), Some(0));
+}
+
+#[test]
+fn erase_endpoint_reaches_every_keyed_partition() {
+    erase_endpoint(true);
+}
+
+#[test]
+fn erase_endpoint_through_the_repartition_stage() {
+    erase_endpoint(false);
+}

@@ -79,8 +79,12 @@ pub struct Event {
     pub kind: EventKind,
     /// Unique id (empty for `erase`).
     pub event_id: String,
-    /// Raw user id. Never stored, logged or written out.
+    /// Raw user id. Never stored, logged or written out. Empty for an
+    /// erase that names the user by `user_key`.
     pub user_id: String,
+    /// Erase only: the user named by pseudonymous key (the `user_key` of the
+    /// output rows) instead of by raw id.
+    pub user_key: Option<crate::UserKey>,
     /// Event time, epoch milliseconds.
     pub timestamp_ms: i64,
     /// Channel (touches only; empty otherwise).
@@ -187,6 +191,8 @@ struct RawEvent<'a> {
     #[serde(borrow)]
     user_id: Option<Loose<'a>>,
     #[serde(borrow)]
+    user_key: Option<Loose<'a>>,
+    #[serde(borrow)]
     timestamp: Option<Loose<'a>>,
     #[serde(borrow)]
     channel: Option<Loose<'a>>,
@@ -203,6 +209,12 @@ struct RawEvent<'a> {
 }
 
 /// Treats JSON null as absent.
+/// A user key as the output rows write it: exactly 64 lowercase hex digits.
+pub fn parse_user_key(s: &str) -> Option<crate::UserKey> {
+    let lower_hex = s.len() == 64 && s.bytes().all(|c| c.is_ascii_digit() || (b'a'..=b'f').contains(&c));
+    lower_hex.then(|| crate::UserKey::from_hex(s)).flatten()
+}
+
 fn present<'a, 'b>(v: &'b Option<Loose<'a>>) -> Option<&'b Loose<'a>> {
     match v {
         None | Some(Loose::Null) => None,
@@ -242,15 +254,19 @@ fn string_field(
 
 /// The fields of `ev` as the contract writes them (only the fields its kind
 /// reads; the time as epoch milliseconds), with `user_id` in place of the
-/// event's own (e.g. a user key, where the raw id must not travel on).
-/// Parsing the result gives back the same event.
+/// event's own (e.g. a user key, where the raw id must not travel on). An
+/// erase by user key with an empty `user_id` is written with its
+/// `user_key`. Parsing the result gives back the same event.
 pub fn event_fields(ev: &Event, user_id: &str) -> serde_json::Map<String, serde_json::Value> {
     let mut m = serde_json::Map::new();
     m.insert("type".into(), ev.kind.as_str().into());
     if !ev.event_id.is_empty() {
         m.insert("event_id".into(), ev.event_id.clone().into());
     }
-    m.insert("user_id".into(), user_id.into());
+    match &ev.user_key {
+        Some(k) if user_id.is_empty() => m.insert("user_key".into(), k.to_hex().into()),
+        _ => m.insert("user_id".into(), user_id.into()),
+    };
     m.insert("timestamp".into(), ev.timestamp_ms.into());
     match ev.kind {
         EventKind::Touch => {
@@ -354,14 +370,48 @@ fn validate(raw: RawEvent<'_>) -> Result<Event, Rejection> {
         .unwrap_or_default()
     };
 
-    let user_id = string_field(
-        &raw.user_id,
-        "user_id",
-        MAX_USER_ID_BYTES,
-        Some(RejectReason::MissingUserId),
-        RejectReason::InvalidUserId,
-    )?
-    .unwrap_or_default();
+    let user_key = match present(&raw.user_key) {
+        None => None,
+        Some(_) if kind != EventKind::Erase => {
+            return Err(Rejection::new(
+                RejectReason::InvalidUserId,
+                "field `user_key` is allowed on erase events only; touches and conversions carry the raw `user_id`",
+            ))
+        }
+        Some(Loose::Str(s)) => Some(parse_user_key(s).ok_or_else(|| {
+            Rejection::new(
+                RejectReason::InvalidUserId,
+                format!(
+                    "field `user_key` must be 64 lowercase hex digits (a user_key of the output rows), got {:?}",
+                    truncate(s)
+                ),
+            )
+        })?),
+        Some(other) => {
+            return Err(Rejection::new(
+                RejectReason::InvalidUserId,
+                format!("field `user_key` must be a string, got {}", other.kind()),
+            ))
+        }
+    };
+    let user_id = if user_key.is_some() {
+        if present(&raw.user_id).is_some() {
+            return Err(Rejection::new(
+                RejectReason::InvalidUserId,
+                "an erase names its user by `user_id` or by `user_key`, not both",
+            ));
+        }
+        String::new()
+    } else {
+        string_field(
+            &raw.user_id,
+            "user_id",
+            MAX_USER_ID_BYTES,
+            Some(RejectReason::MissingUserId),
+            RejectReason::InvalidUserId,
+        )?
+        .unwrap_or_default()
+    };
 
     let timestamp_ms =
         match present(&raw.timestamp) {
@@ -405,6 +455,7 @@ fn validate(raw: RawEvent<'_>) -> Result<Event, Rejection> {
         kind,
         event_id,
         user_id,
+        user_key,
         timestamp_ms,
         channel: String::new(),
         campaign: None,
@@ -515,6 +566,37 @@ mod tests {
     fn reason(line: &[u8]) -> (RejectReason, String) {
         let r = parse_event(line).expect_err("rejected");
         (r.reason, r.detail)
+    }
+
+    #[test]
+    fn an_erase_can_name_its_user_by_key() {
+        // Contract: Input events (erase by user_key). The key is 32 bytes
+        // written as 64 lowercase hex digits, as in the output rows.
+        let k = "0123456789abcdef".repeat(4);
+        let line = format!(r#"{{"type":"erase","event_id":"r1","user_key":"{k}","timestamp":0}}"#);
+        let ev = parse_event(line.as_bytes()).unwrap();
+        assert_eq!(ev.user_key.map(|u| u.to_hex()), Some(k.clone()));
+        assert_eq!(ev.user_id, "");
+        // The shared writer gives the same event back.
+        let again = serde_json::to_vec(&event_fields(&ev, "")).unwrap();
+        assert_eq!(parse_event(&again).unwrap(), ev);
+        for (line, want) in [
+            (
+                format!(r#"{{"type":"touch","event_id":"t","user_key":"{k}","timestamp":0,"channel":"x"}}"#),
+                "erase events only",
+            ),
+            (format!(r#"{{"type":"erase","user_id":"u","user_key":"{k}","timestamp":0}}"#), "not both"),
+            (format!(r#"{{"type":"erase","user_key":"{}","timestamp":0}}"#, k.to_uppercase()), "64 lowercase hex"),
+            (format!(r#"{{"type":"erase","user_key":"{}","timestamp":0}}"#, &k[..63]), "64 lowercase hex"),
+            (r#"{"type":"erase","user_key":7,"timestamp":0}"#.to_string(), "must be a string"),
+        ] {
+            let (r, detail) = reason(line.as_bytes());
+            assert_eq!(r, RejectReason::InvalidUserId, "{line}");
+            assert!(detail.contains(want), "{line}: {detail}");
+        }
+        // Null is absent: the raw id is then required, as before.
+        let (r, _) = reason(br#"{"type":"erase","user_key":null,"timestamp":0}"#);
+        assert_eq!(r, RejectReason::MissingUserId);
     }
 
     #[test]

@@ -37,6 +37,12 @@ impl Pseudonymizer {
         UserKey(mac.finalize().into_bytes().into())
     }
 
+    /// The key of an event's user: the key it names (an erase by
+    /// `user_key`), else the key of its raw id.
+    pub fn key_of(&self, ev: &crate::Event) -> UserKey {
+        ev.user_key.unwrap_or_else(|| self.key_for(&ev.user_id))
+    }
+
     /// A fingerprint of the secret key: the HMAC of a fixed label that no
     /// user id can equal (it is not valid UTF-8), so it never matches a user
     /// key. The store keeps it to refuse a different key (docs/contract.md,

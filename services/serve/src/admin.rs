@@ -1,14 +1,21 @@
 //! The admin HTTP endpoints: `/metrics`, `/healthz`, `/readyz`,
-//! `/v1/models` and `/v1/compare`, all read-only. (The ingest endpoint of embedded mode is in
-//! [`crate::embedded::http`].)
+//! `/v1/models` and `/v1/compare`, all read-only and open; in Kafka mode
+//! also `POST /v1/erase`, behind the admin token ([`erase_router`]). (The
+//! ingest endpoints of embedded mode are in [`crate::embedded::http`].)
 
 use std::sync::{Arc, Mutex};
 
+use apportion_engine::Pseudonymizer;
+use axum::body::Bytes;
 use axum::extract::State;
 use axum::http::{header, StatusCode};
 use axum::response::{IntoResponse, Response};
-use axum::routing::get;
+use axum::routing::{get, post};
 use axum::{Json, Router};
+
+use crate::auth::BearerToken;
+use crate::erase_request::EraseRequest;
+use crate::kafka::erase::EraseSender;
 
 use crate::metrics::Metrics;
 use crate::run_loop::Shared;
@@ -70,5 +77,62 @@ async fn compare(State(s): State<AdminState>) -> Response {
             Ok(r) => Json(r).into_response(),
             Err(e) => (StatusCode::INTERNAL_SERVER_ERROR, format!("{e}\n")).into_response(),
         },
+    }
+}
+
+#[derive(Clone)]
+struct EraseState {
+    sender: Arc<EraseSender>,
+    pseudo: Pseudonymizer,
+}
+
+/// `POST /v1/erase` of the admin listener in Kafka mode: with a token, the
+/// erase is produced to every input partition ([`crate::kafka::erase`]) and
+/// answered `202` once delivered; without one the endpoint is off (`404`
+/// saying how to turn it on).
+pub fn erase_router(config: Option<(EraseSender, Pseudonymizer, BearerToken)>) -> Router {
+    match config {
+        None => Router::new().route(
+            "/v1/erase",
+            post(|| async {
+                (
+                    StatusCode::NOT_FOUND,
+                    "POST /v1/erase is off: set an admin token (APPORTION_ADMIN_TOKEN, admin.token or admin.token_file) to turn it on\n",
+                )
+            }),
+        ),
+        Some((sender, pseudo, token)) => crate::auth::protect(
+            Router::new()
+                .route("/v1/erase", post(erase))
+                .layer(axum::extract::DefaultBodyLimit::max(64 << 10))
+                .with_state(EraseState { sender: Arc::new(sender), pseudo }),
+            token,
+        ),
+    }
+}
+
+async fn erase(State(s): State<EraseState>, body: Bytes) -> Response {
+    let req = match EraseRequest::parse(&body, &s.pseudo) {
+        Ok(r) => r,
+        Err(e) => return (StatusCode::BAD_REQUEST, format!("{e}\n")).into_response(),
+    };
+    let line = req.event_line(crate::pipeline::now_ms());
+    let key = req.user_key.to_hex();
+    let sender = s.sender.clone();
+    match tokio::task::spawn_blocking(move || sender.send(&line, &key)).await {
+        Ok(Ok(partitions)) => {
+            let mut answer = req.json();
+            answer["partitions"] = partitions.into();
+            (StatusCode::ACCEPTED, Json(answer)).into_response()
+        }
+        Ok(Err(e)) => {
+            tracing::warn!(error = %format!("{e:#}"), "an erase request could not be produced");
+            (
+                StatusCode::SERVICE_UNAVAILABLE,
+                format!("the erase could not be produced to every input partition ({e:#}); send the request again (with the same request_id a repeat is a duplicate)\n"),
+            )
+                .into_response()
+        }
+        Err(_) => (StatusCode::INTERNAL_SERVER_ERROR, "the erase task failed\n").into_response(),
     }
 }

@@ -147,6 +147,12 @@ pub struct AdminConfig {
     /// Keep a running comparison of the models for /v1/compare (a little
     /// work and memory per credited conversion).
     pub compare: bool,
+    /// Bearer token of `POST /v1/erase` on this listener in Kafka mode
+    /// (prefer APPORTION_ADMIN_TOKEN or token_file); without one the
+    /// endpoint is off.
+    pub token: Option<String>,
+    /// A file holding that token (surrounding whitespace ignored).
+    pub token_file: Option<String>,
 }
 
 /// Embedded mode.
@@ -250,7 +256,7 @@ impl Default for Config {
 
 impl Default for AdminConfig {
     fn default() -> Self {
-        AdminConfig { listen: "127.0.0.1:9464".into(), max_ready_lag: 0, compare: true }
+        AdminConfig { listen: "127.0.0.1:9464".into(), max_ready_lag: 0, compare: true, token: None, token_file: None }
     }
 }
 
@@ -369,6 +375,9 @@ impl Config {
         if non_empty(&self.embedded.token).is_some() && non_empty(&self.embedded.token_file).is_some() {
             bail!("embedded.token and embedded.token_file are both set; keep one source of the ingest token");
         }
+        if non_empty(&self.admin.token).is_some() && non_empty(&self.admin.token_file).is_some() {
+            bail!("admin.token and admin.token_file are both set; keep one source of the admin token");
+        }
         if let Some(k) = &self.kafka {
             if k.input_topics.is_empty() {
                 bail!("kafka.input_topics must list at least one topic");
@@ -438,19 +447,14 @@ impl Config {
     /// `None` when neither is set. A token file that cannot be read or is
     /// empty is an error naming it.
     pub fn ingest_token(&self) -> Result<Option<String>> {
-        if let Some(t) = non_empty(&self.embedded.token) {
-            return Ok(Some(t.to_string()));
-        }
-        let Some(path) = non_empty(&self.embedded.token_file) else { return Ok(None) };
-        let text = std::fs::read_to_string(path).with_context(|| format!("cannot read embedded.token_file {path}"))?;
-        let t = text.trim();
-        if t.is_empty() {
-            bail!("embedded.token_file {path} is empty; put the ingest token in it");
-        }
-        if t.contains(char::is_whitespace) {
-            bail!("embedded.token_file {path} holds more than one word; a bearer token has no spaces");
-        }
-        Ok(Some(t.to_string()))
+        read_token(&self.embedded.token, &self.embedded.token_file, "embedded", "ingest")
+    }
+
+    /// The bearer token of `POST /v1/erase` on the admin listener (Kafka
+    /// mode): `admin.token`, else the contents of `admin.token_file`, as
+    /// [`Config::ingest_token`] reads them.
+    pub fn admin_token(&self) -> Result<Option<String>> {
+        read_token(&self.admin.token, &self.admin.token_file, "admin", "admin")
     }
 
     /// The file to follow in embedded mode, if set.
@@ -474,6 +478,8 @@ impl Config {
         full.embedded.watch_file = Some(String::new());
         full.embedded.token = Some(String::new());
         full.embedded.token_file = Some(String::new());
+        full.admin.token = Some(String::new());
+        full.admin.token_file = Some(String::new());
         full
     }
 }
@@ -495,6 +501,24 @@ pub fn managed_kafka_property(key: &str) -> Option<&'static str> {
         "isolation.level" => "the consumer's isolation level is part of the delivery guarantee",
         _ => return None,
     })
+}
+
+/// A bearer token given inline, else read from a file (surrounding
+/// whitespace ignored); `section` and `what` name it in errors.
+fn read_token(inline: &Option<String>, file: &Option<String>, section: &str, what: &str) -> Result<Option<String>> {
+    if let Some(t) = non_empty(inline) {
+        return Ok(Some(t.to_string()));
+    }
+    let Some(path) = non_empty(file) else { return Ok(None) };
+    let text = std::fs::read_to_string(path).with_context(|| format!("cannot read {section}.token_file {path}"))?;
+    let t = text.trim();
+    if t.is_empty() {
+        bail!("{section}.token_file {path} is empty; put the {what} token in it");
+    }
+    if t.contains(char::is_whitespace) {
+        bail!("{section}.token_file {path} holds more than one word; a bearer token has no spaces");
+    }
+    Ok(Some(t.to_string()))
 }
 
 fn non_empty(v: &Option<String>) -> Option<&str> {

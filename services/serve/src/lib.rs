@@ -32,6 +32,7 @@ pub mod admin;
 pub mod auth;
 pub mod config;
 pub mod embedded;
+pub mod erase_request;
 pub mod kafka;
 pub mod metrics;
 pub mod output;

@@ -307,7 +307,7 @@ fn apply_events(
                                 rec.offset
                             )
                         })?;
-                        let key = pseudo.key_for(&ev.user_id);
+                        let key = pseudo.key_of(&ev);
                         ev.user_id.clear();
                         // The byte offset is the arrival sequence (it grows with the line).
                         Ok(JourneyEvent::from_event(ev, key, rec.offset))

@@ -139,7 +139,16 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
 
     let http_stop = Arc::new(tokio::sync::Notify::new());
     {
+        let erase = match (&cfg.kafka, cfg.admin_token()?) {
+            (Some(_), Some(token)) => Some((
+                crate::kafka::erase::EraseSender::new(&cfg)?,
+                Pseudonymizer::new(&key),
+                crate::auth::BearerToken::new(&token),
+            )),
+            _ => None,
+        };
         let router = crate::admin::admin_router(metrics.clone(), shared.clone());
+        let router = if cfg.kafka.is_some() { router.merge(crate::admin::erase_router(erase)) } else { router };
         let n = http_stop.clone();
         rt.spawn(async move {
             let _ = axum::serve(admin, router).with_graceful_shutdown(async move { n.notified().await }).await;
@@ -149,7 +158,7 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
         let addr = l.local_addr()?;
         let authenticated = token.is_some();
         let router = crate::embedded::http::count_refusals(
-            crate::embedded::http::ingest_router(tx, cfg.embedded.max_body_bytes, token),
+            crate::embedded::http::ingest_router(tx, Pseudonymizer::new(&key), cfg.embedded.max_body_bytes, token),
             metrics.clone(),
         );
         let n = http_stop.clone();

@@ -676,6 +676,29 @@ fn a_resent_erase_does_not_wipe_later_touches() {
 }
 
 #[test]
+fn an_erase_by_user_key_erases_the_same_user() {
+    // Contract: Input events (`user_key` on erase) and Journey rules, Erase
+    // (derived by hand): an erase naming u by key drops u's touch, so u's
+    // conversion is unattributed; its audit record names the same key; a
+    // copy by raw id at the same time is the same erase (a duplicate).
+    let mut p = pipeline(config(), Store::temporary().unwrap());
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let key = Pseudonymizer::new(KEY).key_for("u").to_hex();
+    let by_key = format!(r#"{{"type":"erase","user_key":"{key}","timestamp":{}}}"#, 110 * SEC).into_bytes();
+    let mut out = OutputBatch::default();
+    let batch =
+        vec![touch("a", "u", 100 * SEC, "email"), by_key, erase("u", 110 * SEC), conversion("c", "u", 120 * SEC)];
+    let st = p.process(&part(), &msgs(1, batch, Instant::now()), &mut out).unwrap();
+    assert_eq!(st[1], MsgStatus::Accepted);
+    assert_eq!(st[2], MsgStatus::Duplicate);
+    assert_eq!(out.credit.len(), 1);
+    assert_eq!(out.credit[0].channel, "unattributed");
+    assert_eq!(out.erasures.len(), 1);
+    assert_eq!(out.erasures[0].user_key.to_hex(), key);
+    assert_eq!(out.erasures[0].touches_deleted, 1);
+}
+
+#[test]
 fn an_erased_conversion_leaves_no_arrival_behind() {
     // Allowed lateness 60s: the conversion at 100s waits for the watermark
     // (contract: Streaming time); erasing the user drops it, and its arrival

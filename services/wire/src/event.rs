@@ -91,6 +91,7 @@ pub fn to_contract_json(msg: &InputEvent) -> Vec<u8> {
     };
     put("event_id", &msg.event_id);
     put("user_id", &msg.user_id);
+    put("user_key", &msg.user_key);
     put("channel", &msg.channel);
     put("campaign", &msg.campaign);
     put("goal", &msg.goal);
@@ -132,6 +133,7 @@ struct JsonFields {
     kind: Option<Value>,
     event_id: Option<Value>,
     user_id: Option<Value>,
+    user_key: Option<Value>,
     timestamp: Option<Value>,
     channel: Option<Value>,
     campaign: Option<Value>,
@@ -197,6 +199,7 @@ pub fn encode_event_protobuf(json_line: &str) -> Result<Vec<u8>, String> {
         r#type: kind as i32,
         event_id: opt_string("event_id", f.event_id)?,
         user_id: opt_string("user_id", f.user_id)?,
+        user_key: opt_string("user_key", f.user_key)?,
         timestamp,
         channel: opt_string("channel", f.channel)?,
         campaign: opt_string("campaign", f.campaign)?,

@@ -122,8 +122,10 @@ pub fn run(cfg: Option<Config>, opts: ConfigOpts) -> Result<()> {
         if shown.pseudonym_key.as_deref().is_some_and(|k| !k.is_empty()) {
             shown.pseudonym_key = Some("<set>".into());
         }
-        if shown.embedded.token.as_deref().is_some_and(|k| !k.is_empty()) {
-            shown.embedded.token = Some("<set>".into());
+        for token in [&mut shown.embedded.token, &mut shown.admin.token] {
+            if token.as_deref().is_some_and(|k| !k.is_empty()) {
+                *token = Some("<set>".into());
+            }
         }
         if let Some(pg) = shown.postgres.as_mut() {
             pg.url = mask_password(&pg.url);

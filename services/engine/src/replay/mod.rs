@@ -120,7 +120,7 @@ pub fn sorted_events(lines: &[&str]) -> SortedEvents {
 /// The journey form of a validated event: the raw user id is turned into
 /// its key and goes no further.
 pub fn journey_event(ev: &Event, pseudonymizer: &Pseudonymizer, seq: u64) -> JourneyEvent {
-    let key = pseudonymizer.key_for(&ev.user_id);
+    let key = pseudonymizer.key_of(ev);
     let mut ev = ev.clone();
     ev.user_id.clear();
     if ev.kind == EventKind::Erase {

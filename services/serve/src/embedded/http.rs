@@ -115,6 +115,7 @@ impl IngestReply {
 #[derive(Clone)]
 struct IngestState {
     tx: SyncSender<IngestRequest>,
+    pseudo: apportion_engine::Pseudonymizer,
 }
 
 /// The ingest router: `POST /v1/events` with NDJSON lines. 202 when every
@@ -124,12 +125,17 @@ struct IngestState {
 /// harmless because ids are deduplicated); 413 when the body is longer
 /// than `max_body`; 429 with `Retry-After` when `tx` is full; 401 without
 /// the right bearer token when `token` is set.
-pub fn ingest_router(tx: SyncSender<IngestRequest>, max_body: usize, token: Option<BearerToken>) -> Router {
+pub fn ingest_router(
+    tx: SyncSender<IngestRequest>,
+    pseudo: apportion_engine::Pseudonymizer,
+    max_body: usize,
+    token: Option<BearerToken>,
+) -> Router {
     let router = Router::new()
         .route("/v1/events", post(ingest))
         .route("/v1/erase", post(erase))
         .layer(DefaultBodyLimit::max(max_body))
-        .with_state(IngestState { tx });
+        .with_state(IngestState { tx, pseudo });
     match token {
         Some(t) => crate::auth::protect(router, t),
         None => router,
@@ -163,41 +169,17 @@ pub fn split_lines(body: &[u8]) -> Vec<(usize, &[u8])> {
     std::iter::from_fn(|| next_line(body, &mut at)).collect()
 }
 
-/// The body of `POST /v1/erase`.
-#[derive(Debug, serde::Deserialize)]
-#[serde(deny_unknown_fields)]
-struct EraseRequest {
-    /// The raw user id to erase (pseudonymized at once, like an event's).
-    user_id: String,
-    /// An id for the request, copied to the erase's `event_id` and to its
-    /// audit record; a repeated id is a duplicate.
-    request_id: Option<String>,
-}
-
-/// `POST /v1/erase` with `{"user_id": "...", "request_id": "..."}`: an
-/// `erase` event for the user, timed now, through the same queue and
-/// pipeline as ingested events (so it is applied in order, deduplicated
-/// and audited like one; contract: HTTP ingest).
+/// `POST /v1/erase` with `{"user_id": "..."}` or `{"user_key": "..."}` and
+/// an optional `"request_id"` ([`crate::erase_request`]): an `erase` event
+/// for the user (by key), timed now, through the same queue and pipeline as
+/// ingested events (so it is applied in order, deduplicated and audited
+/// like one; contract: HTTP ingest).
 async fn erase(State(s): State<IngestState>, body: Bytes) -> Response {
-    let req: EraseRequest = match serde_json::from_slice(&body) {
+    let req = match crate::erase_request::EraseRequest::parse(&body, &s.pseudo) {
         Ok(r) => r,
-        Err(e) => {
-            return (
-                StatusCode::BAD_REQUEST,
-                format!("the body must be {{\"user_id\": \"...\"}} with an optional \"request_id\": {e}\n"),
-            )
-                .into_response()
-        }
+        Err(e) => return (StatusCode::BAD_REQUEST, format!("{e}\n")).into_response(),
     };
-    let mut event = serde_json::json!({
-        "type": "erase",
-        "user_id": req.user_id,
-        "timestamp": crate::pipeline::now_ms(),
-    });
-    if let Some(id) = req.request_id {
-        event["event_id"] = serde_json::Value::String(id);
-    }
-    let mut line = serde_json::to_vec(&event).expect("JSON serializes");
+    let mut line = req.event_line(crate::pipeline::now_ms());
     line.push(b'\n');
     ingest(State(s), Bytes::from(line)).await
 }
@@ -282,7 +264,7 @@ mod tests {
     async fn body_over_the_limit_is_413() {
         let (tx, rx) = std::sync::mpsc::sync_channel(4);
         answer_all(rx);
-        let addr = serve(ingest_router(tx, 64, None)).await;
+        let addr = serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 64, None)).await;
         let (status, _, _) = post(addr, "", &[b'x'; 65]).await;
         // RFC 9110 section 15.5.14: 413 Content Too Large.
         assert_eq!(status, 413);
@@ -294,7 +276,13 @@ mod tests {
     async fn a_token_is_required_when_configured() {
         let (tx, rx) = std::sync::mpsc::sync_channel(4);
         answer_all(rx);
-        let addr = serve(ingest_router(tx, 1 << 20, Some(BearerToken::new("mF_9.B5f-4.1JqM")))).await;
+        let addr = serve(ingest_router(
+            tx,
+            apportion_engine::Pseudonymizer::new(b"http-test-key"),
+            1 << 20,
+            Some(BearerToken::new("mF_9.B5f-4.1JqM")),
+        ))
+        .await;
         // RFC 6750 section 3.1: 401 with a Bearer challenge; no error code
         // when the request has no credentials, invalid_token when wrong.
         let (status, head, _) = post(addr, "", b"{}\n").await;
@@ -318,7 +306,8 @@ mod tests {
         let (tx, rx) = std::sync::mpsc::sync_channel(1);
         let (held, _held_rx) = tokio::sync::oneshot::channel();
         tx.try_send(IngestRequest { body: Bytes::from_static(b"{}"), reply: held }).unwrap();
-        let addr = serve(ingest_router(tx, 1 << 20, None)).await;
+        let addr =
+            serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 1 << 20, None)).await;
         let (status, head, _) = post(addr, "", b"{}\n").await;
         assert_eq!(status, 429);
         // RFC 9110 section 10.2.3: Retry-After as delay-seconds.
@@ -334,7 +323,8 @@ mod tests {
     async fn an_empty_body_is_answered() {
         // Nobody reads the queue: an empty body must not wait for it.
         let (tx, _rx) = std::sync::mpsc::sync_channel(1);
-        let addr = serve(ingest_router(tx, 1 << 20, None)).await;
+        let addr =
+            serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 1 << 20, None)).await;
         for body in [&b""[..], b"\n\r\n  \n"] {
             let (status, _, reply) =
                 tokio::time::timeout(std::time::Duration::from_secs(10), post(addr, "", body)).await.expect("answered");

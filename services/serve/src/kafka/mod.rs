@@ -12,8 +12,10 @@
 //! - [`sink`]: [`KafkaSink`], credit rows, paths and dead letters to topics.
 //! - [`repartition`]: stage 1 for input not keyed by user.
 //! - [`encode`]: JSON or protobuf payloads of the output topics.
+//! - [`erase`]: `POST /v1/erase` in Kafka mode, an erase to every input partition.
 
 pub mod encode;
+pub mod erase;
 pub mod repartition;
 pub mod sink;
 pub mod source;

@@ -35,11 +35,11 @@ use anyhow::{Context, Result};
 use apportion_contract::{RejectReason, Rejection};
 use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer};
 use rdkafka::message::Message;
-use rdkafka::producer::{BaseProducer, BaseRecord, Producer};
+use rdkafka::producer::{BaseProducer, Producer};
 use rdkafka::{Offset, TopicPartitionList};
 use serde::{Deserialize, Serialize};
 
-use super::sink::{flush_checked, producer, send, DeliveryCounter};
+use super::sink::{flush_checked, producer, send, send_to, DeliveryCounter};
 use super::{consumer_config, encode};
 use crate::config::{Config, Format};
 use crate::metrics::Metrics;
@@ -302,7 +302,7 @@ impl Repartitioner {
                     p.max_ts = p.max_ts.max(ev.timestamp_ms);
                     p.caught_up = false;
                     let carried = Carried { source: id.store_name(), progress: *p };
-                    let key = self.pseudo.key_for(&ev.user_id);
+                    let key = self.pseudo.key_of(&ev);
                     let json = decode::encode_pseudonymized_with(&ev, &key, Some(&carried));
                     send(&self.producer, &self.topic, Some(&key.to_hex()), &json)?;
                 }
@@ -370,27 +370,11 @@ impl Repartitioner {
         };
         let bytes = serde_json::to_vec(&rec).expect("progress serializes");
         for part in 0..self.partitions_out {
-            let mut r = BaseRecord::<(), [u8]>::to(&self.topic).payload(&bytes[..]).partition(part);
-            loop {
-                match self.producer.send(r) {
-                    Ok(()) => break,
-                    Err((
-                        rdkafka::error::KafkaError::MessageProduction(rdkafka::types::RDKafkaErrorCode::QueueFull),
-                        back,
-                    )) => {
-                        self.producer.poll(Duration::from_millis(50));
-                        r = back;
-                    }
-                    Err((e, _)) => return Err(e.into()),
-                }
-            }
+            send_to(&self.producer, &self.topic, Some(part), None, &bytes)?;
         }
         Ok(())
     }
 
-    /// Input partitions read to their end: the position (or, before the
-    /// first message, the committed offset) is at the partition's high
-    /// watermark, or the partition is empty.
     fn caught_up_partitions(&self) -> BTreeSet<PartId> {
         let mut out = BTreeSet::new();
         let Ok(positions) = self.consumer.position() else { return out };

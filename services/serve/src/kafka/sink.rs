@@ -50,11 +50,25 @@ pub(crate) fn send(
     key: Option<&str>,
     payload: &[u8],
 ) -> Result<(), KafkaError> {
+    send_to(p, topic, None, key, payload)
+}
+
+/// [`send`] to a chosen partition (`None`: the partitioner's, by key),
+/// waiting while the producer's queue is full.
+pub(crate) fn send_to(
+    p: &BaseProducer<DeliveryCounter>,
+    topic: &str,
+    partition: Option<i32>,
+    key: Option<&str>,
+    payload: &[u8],
+) -> Result<(), KafkaError> {
     let mut rec = BaseRecord::to(topic).payload(payload);
     if let Some(k) = key {
         rec = rec.key(k);
     }
-    let mut rec = rec;
+    if let Some(part) = partition {
+        rec = rec.partition(part);
+    }
     loop {
         match p.send(rec) {
             Ok(()) => return Ok(()),

@@ -238,7 +238,7 @@ impl Pipeline {
             out.dead_letters.push(emit::dead_letter(id, m.offset, &r, Some(ev.event_id.clone()), received_at));
             return Ok(MsgStatus::Rejected(r));
         }
-        let key = key.unwrap_or_else(|| self.pseudo.key_for(&ev.user_id));
+        let key = key.unwrap_or_else(|| self.pseudo.key_of(&ev));
         ev.user_id.clear();
         // Remembered for dedupe_horizon past the later of its event time and
         // the watermark it arrived at (a late event too), so whether an id is

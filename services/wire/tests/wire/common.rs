@@ -10,7 +10,8 @@ pub fn all_models() -> ModelPlan {
 
 /// Valid events: several customers, touches (click and view, with and
 /// without campaign), conversions with and without value, a duplicate, a
-/// conversion with no touch, a non-converting journey and an erase.
+/// conversion with no touch, a non-converting journey and erases (by raw
+/// id and by user key).
 /// Timestamps come in both contract forms (RFC 3339 and epoch ms).
 pub const VALID: &[&str] = &[
     r#"{"type":"touch","event_id":"t-001","user_id":"cust-1001","timestamp":"2026-03-01T09:00:00Z","channel":"paid_search","campaign":"spring-tents"}"#,
@@ -38,6 +39,8 @@ pub const VALID: &[&str] = &[
     r#"{"type":"conversion","event_id":"c-401","user_id":"cust-1005","timestamp":"2026-03-02T13:00:00Z","goal":"purchase","value":64.99,"currency":"GBP"}"#,
     // Erase with an event_id is accepted too.
     r#"{"type":"erase","event_id":"e-501","user_id":"cust-1006","timestamp":0}"#,
+    // Erase naming its user by key (64 lowercase hex digits) instead of raw id.
+    r#"{"type":"erase","event_id":"e-601","user_key":"00112233445566778899aabbccddeeff00112233445566778899aabbccddeeff","timestamp":0}"#,
 ];
 
 /// A string of `n` ASCII bytes.

@@ -29,6 +29,8 @@ fn invalid_lines() -> Vec<(String, RejectReason)> {
         (r#"{"type":"erase","event_id":"","user_id":"cust-1900","timestamp":0}"#.into(), InvalidEventId),
         (r#"{"type":"touch","event_id":"t-901","timestamp":0,"channel":"email"}"#.into(), MissingUserId),
         (r#"{"type":"erase","user_id":"","timestamp":0}"#.into(), InvalidUserId),
+        (format!(r#"{{"type":"touch",{ok_touch},"user_key":"{}"}}"#, "ab".repeat(32)), InvalidUserId),
+        (format!(r#"{{"type":"erase","user_id":"cust-1900","user_key":"{}","timestamp":0}}"#, "ab".repeat(32)), InvalidUserId),
         (
             format!(r#"{{"type":"touch","event_id":"t-902","user_id":"{}","timestamp":0,"channel":"email"}}"#, bytes(257)),
             InvalidUserId,

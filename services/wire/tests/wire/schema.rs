@@ -186,8 +186,19 @@ fn dead_letter_message_matches_serde_type() {
 #[test]
 fn input_event_covers_every_contract_field() {
     // The input fields of docs/contract.md, "Input events".
-    const CONTRACT: [&str; 10] =
-        ["type", "event_id", "user_id", "timestamp", "channel", "campaign", "interaction", "goal", "value", "currency"];
+    const CONTRACT: [&str; 11] = [
+        "type",
+        "event_id",
+        "user_id",
+        "timestamp",
+        "channel",
+        "campaign",
+        "interaction",
+        "goal",
+        "value",
+        "currency",
+        "user_key",
+    ];
     let file = schema_file();
     let m = message(&file, "InputEvent");
     // A contract field is a protobuf field of that name, or (timestamp) a
