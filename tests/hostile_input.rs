@@ -20,6 +20,9 @@ enum Want {
     /// Accepted: a conversion of the hostile user, id `h-c`, credited with
     /// this conversion time.
     Credited(&'static str),
+    /// Valid but without consent to measurement: neither rejected nor
+    /// credited (contract: Input events, Consent).
+    Dropped,
 }
 
 use Want::*;
@@ -194,6 +197,24 @@ fn cases() -> Vec<Case> {
         c("lower-case t and z", conv(r#","timestamp":"2026-03-01t10:30:00z""#), Credited("2026-03-01T10:30:00.000Z")),
         // IEEE 754 negative zero is >= 0; stored as 0 (checked below).
         c("value -0.0", conv_at(r#","value":-0.0"#), Credited("2026-03-01T10:30:00.000Z")),
+        // --- consent (contract: Input events, Consent) ---
+        c("consent not an object", conv_at(r#","consent":"no""#), Rejected("invalid_consent", "must be an object")),
+        c(
+            "consent.measurement as text",
+            conv_at(r#","consent":{"measurement":"false"}"#),
+            Rejected("invalid_consent", "true or false, got a string"),
+        ),
+        c(
+            "repeated consent.measurement",
+            conv_at(r#","consent":{"measurement":true,"measurement":false}"#),
+            Rejected("invalid_json", "duplicate field `measurement`"),
+        ),
+        c("no consent to measurement", conv_at(r#","consent":{"measurement":false}"#), Dropped),
+        c(
+            "consent given, unknown consent keys",
+            conv_at(r#","consent":{"measurement":true,"ads":{"x":[1]}}"#),
+            Credited("2026-03-01T10:30:00.000Z"),
+        ),
     ]
 }
 
@@ -280,6 +301,10 @@ fn hostile_lines_get_their_reason_and_cost_no_good_data() {
                     let d = rej[0]["detail"].as_str().unwrap();
                     assert!(d.contains(detail), "detail {d:?} should name {detail:?}");
                     assert!(!rows.iter().any(|r| r["conversion_id"] == "h-c"), "a rejected line was credited");
+                }
+                Dropped => {
+                    assert!(rej.is_empty(), "nothing rejected: {rej:?}");
+                    assert!(!rows.iter().any(|r| r["conversion_id"] == "h-c"), "an event without consent was credited");
                 }
                 Credited(at) => {
                     assert!(rej.is_empty(), "nothing rejected: {rej:?}");

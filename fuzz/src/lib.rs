@@ -44,7 +44,11 @@ fn check_accepted(ev: &Event) {
         EventKind::Erase => assert!(ev.event_id.is_empty() || text_ok(&ev.event_id, MAX_EVENT_ID_BYTES)),
         _ => assert!(text_ok(&ev.event_id, MAX_EVENT_ID_BYTES), "event_id {:?}", ev.event_id),
     }
-    assert!(text_ok(&ev.user_id, MAX_USER_ID_BYTES), "user_id");
+    // A raw id, or (erase only) a user key in its place.
+    match ev.user_key {
+        Some(_) => assert!(ev.kind == EventKind::Erase && ev.user_id.is_empty(), "user_key on {:?}", ev.kind),
+        None => assert!(text_ok(&ev.user_id, MAX_USER_ID_BYTES), "user_id"),
+    }
     assert!(in_range(ev.timestamp_ms), "timestamp {}", ev.timestamp_ms);
     match ev.kind {
         EventKind::Touch => {

@@ -99,6 +99,10 @@ pub struct Event {
     pub value: Option<f64>,
     /// ISO 4217 currency of `value`.
     pub currency: Option<String>,
+    /// `consent.measurement`: `Some(false)` when the person did not consent
+    /// to measurement (the event is then counted, never stored or
+    /// credited; an erase is applied regardless). `None`: not stated.
+    pub measurement_consent: Option<bool>,
 }
 
 /// A JSON value read loosely, so that each field's type can be checked with
@@ -119,6 +123,15 @@ pub enum Loose<'a> {
     Str(Cow<'a, str>),
     /// An array or object.
     Composite,
+}
+
+impl Event {
+    /// The person did not consent to measurement (`consent.measurement`
+    /// false) and the event is not an erase: count it and drop it unread
+    /// (contract: Input events, Consent).
+    pub fn without_consent(&self) -> bool {
+        self.measurement_consent == Some(false) && self.kind != EventKind::Erase
+    }
 }
 
 impl Loose<'_> {
@@ -206,15 +219,80 @@ struct RawEvent<'a> {
     value: Option<Loose<'a>>,
     #[serde(borrow)]
     currency: Option<Loose<'a>>,
+    #[serde(borrow)]
+    consent: Option<Consent<'a>>,
 }
 
-/// Treats JSON null as absent.
+/// The `consent` field, read loosely: an object's `measurement` (its other
+/// keys skipped unread, a repeated `measurement` an error like a repeated
+/// contract field), or the JSON kind of anything else.
+#[derive(Debug)]
+enum Consent<'a> {
+    /// An object.
+    Object {
+        /// Its `measurement`, as given.
+        measurement: Option<Loose<'a>>,
+    },
+    /// Not an object (null is absent, handled by `Option`).
+    Other(&'static str),
+}
+
+impl<'de: 'a, 'a> Deserialize<'de> for Consent<'a> {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = Consent<'de>;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("any JSON value")
+            }
+            fn visit_unit<E>(self) -> Result<Self::Value, E> {
+                Ok(Consent::Other("null"))
+            }
+            fn visit_bool<E>(self, _: bool) -> Result<Self::Value, E> {
+                Ok(Consent::Other("a boolean"))
+            }
+            fn visit_i64<E>(self, _: i64) -> Result<Self::Value, E> {
+                Ok(Consent::Other("a number"))
+            }
+            fn visit_u64<E>(self, _: u64) -> Result<Self::Value, E> {
+                Ok(Consent::Other("a number"))
+            }
+            fn visit_f64<E>(self, _: f64) -> Result<Self::Value, E> {
+                Ok(Consent::Other("a number"))
+            }
+            fn visit_str<E>(self, _: &str) -> Result<Self::Value, E> {
+                Ok(Consent::Other("a string"))
+            }
+            fn visit_seq<A: SeqAccess<'de>>(self, mut seq: A) -> Result<Self::Value, A::Error> {
+                while seq.next_element::<IgnoredAny>()?.is_some() {}
+                Ok(Consent::Other("an array"))
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
+                let mut measurement = None;
+                while let Some(key) = map.next_key::<Cow<'de, str>>()? {
+                    if key == "measurement" {
+                        if measurement.is_some() {
+                            return Err(serde::de::Error::duplicate_field("measurement"));
+                        }
+                        measurement = Some(map.next_value::<Loose<'de>>()?);
+                    } else {
+                        map.next_value::<IgnoredAny>()?;
+                    }
+                }
+                Ok(Consent::Object { measurement })
+            }
+        }
+        d.deserialize_any(V)
+    }
+}
+
 /// A user key as the output rows write it: exactly 64 lowercase hex digits.
 pub fn parse_user_key(s: &str) -> Option<crate::UserKey> {
     let lower_hex = s.len() == 64 && s.bytes().all(|c| c.is_ascii_digit() || (b'a'..=b'f').contains(&c));
     lower_hex.then(|| crate::UserKey::from_hex(s)).flatten()
 }
 
+/// Treats JSON null as absent.
 fn present<'a, 'b>(v: &'b Option<Loose<'a>>) -> Option<&'b Loose<'a>> {
     match v {
         None | Some(Loose::Null) => None,
@@ -267,6 +345,9 @@ pub fn event_fields(ev: &Event, user_id: &str) -> serde_json::Map<String, serde_
         Some(k) if user_id.is_empty() => m.insert("user_key".into(), k.to_hex().into()),
         _ => m.insert("user_id".into(), user_id.into()),
     };
+    if let Some(c) = ev.measurement_consent {
+        m.insert("consent".into(), serde_json::json!({ "measurement": c }));
+    }
     m.insert("timestamp".into(), ev.timestamp_ms.into());
     match ev.kind {
         EventKind::Touch => {
@@ -463,6 +544,7 @@ fn validate(raw: RawEvent<'_>) -> Result<Event, Rejection> {
         goal: String::new(),
         value: None,
         currency: None,
+        measurement_consent: None,
     };
 
     match kind {
@@ -538,6 +620,25 @@ fn validate(raw: RawEvent<'_>) -> Result<Event, Rejection> {
         }
         EventKind::Erase => {}
     }
+    ev.measurement_consent = match &raw.consent {
+        None => None,
+        Some(Consent::Other(kind)) => {
+            return Err(Rejection::new(
+                RejectReason::InvalidConsent,
+                format!("field `consent` must be an object such as {{\"measurement\": false}}, got {kind}"),
+            ))
+        }
+        Some(Consent::Object { measurement }) => match present(measurement) {
+            None => None,
+            Some(Loose::Bool(b)) => Some(*b),
+            Some(other) => {
+                return Err(Rejection::new(
+                    RejectReason::InvalidConsent,
+                    format!("field `consent.measurement` must be true or false, got {}", other.kind()),
+                ))
+            }
+        },
+    };
     Ok(ev)
 }
 
@@ -566,6 +667,46 @@ mod tests {
     fn reason(line: &[u8]) -> (RejectReason, String) {
         let r = parse_event(line).expect_err("rejected");
         (r.reason, r.detail)
+    }
+
+    #[test]
+    fn consent_is_an_optional_object_with_a_boolean() {
+        // Contract: Input events, Consent (derived by hand); JSON types per
+        // RFC 8259. `measurement` false marks the event; true, null or no
+        // consent leave it as before; other keys are ignored.
+        let cases: [(&str, Option<bool>); 6] = [
+            ("", None),
+            (r#","consent":null"#, None),
+            (r#","consent":{}"#, None),
+            (r#","consent":{"measurement":null,"marketing":"yes"}"#, None),
+            (r#","consent":{"measurement":true}"#, Some(true)),
+            (r#","consent":{"other":[1,{"measurement":1}],"measurement":false}"#, Some(false)),
+        ];
+        for (extra, want) in cases {
+            let ev = parse_event(touch_with(extra).as_bytes()).unwrap();
+            assert_eq!(ev.measurement_consent, want, "{extra}");
+            assert_eq!(ev.without_consent(), want == Some(false), "{extra}");
+            // The shared writer keeps it.
+            let again = serde_json::to_vec(&event_fields(&ev, &ev.user_id)).unwrap();
+            assert_eq!(parse_event(&again).unwrap(), ev, "{extra}");
+        }
+        for (extra, want) in [
+            (r#","consent":false"#, "must be an object"),
+            (r#","consent":"none""#, "got a string"),
+            (r#","consent":[]"#, "got an array"),
+            (r#","consent":{"measurement":"false"}"#, "must be true or false, got a string"),
+            (r#","consent":{"measurement":0}"#, "must be true or false, got a number"),
+        ] {
+            let (r, detail) = reason(touch_with(extra).as_bytes());
+            assert_eq!(r, RejectReason::InvalidConsent, "{extra}");
+            assert!(detail.contains(want), "{extra}: {detail}");
+        }
+        // A repeated `measurement` is refused like a repeated contract field.
+        let (r, _) = reason(touch_with(r#","consent":{"measurement":true,"measurement":false}"#).as_bytes());
+        assert_eq!(r, RejectReason::InvalidJson);
+        // An erase is applied whatever its consent says.
+        let erase = parse_event(br#"{"type":"erase","user_id":"u","timestamp":0,"consent":{"measurement":false}}"#);
+        assert!(!erase.unwrap().without_consent());
     }
 
     #[test]

@@ -52,6 +52,8 @@ pub enum RejectReason {
     InvalidValue,
     /// `currency` not an ISO 4217 alphabetic code.
     InvalidCurrency,
+    /// `consent` not an object, or its `measurement` not a boolean.
+    InvalidConsent,
     /// Event time older than the watermark allows (streaming, by policy).
     Late,
     /// Event time further ahead of processing time than `max_future_skew`
@@ -62,7 +64,7 @@ pub enum RejectReason {
 
 impl RejectReason {
     /// Every reason, in a fixed order (for metrics pre-registration and docs).
-    pub const ALL: [RejectReason; 21] = [
+    pub const ALL: [RejectReason; 22] = [
         RejectReason::TooLarge,
         RejectReason::InvalidUtf8,
         RejectReason::InvalidJson,
@@ -82,6 +84,7 @@ impl RejectReason {
         RejectReason::InvalidGoal,
         RejectReason::InvalidValue,
         RejectReason::InvalidCurrency,
+        RejectReason::InvalidConsent,
         RejectReason::Late,
         RejectReason::FutureTimestamp,
     ];
@@ -108,6 +111,7 @@ impl RejectReason {
             RejectReason::InvalidGoal => "invalid_goal",
             RejectReason::InvalidValue => "invalid_value",
             RejectReason::InvalidCurrency => "invalid_currency",
+            RejectReason::InvalidConsent => "invalid_consent",
             RejectReason::Late => "late",
             RejectReason::FutureTimestamp => "future_timestamp",
         }

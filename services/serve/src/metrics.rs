@@ -55,6 +55,8 @@ pub struct Metrics {
     pub watermark_lag: GaugeVec,
     /// apportion_consumer_lag_messages{topic,partition}.
     pub consumer_lag: IntGaugeVec,
+    /// apportion_events_without_consent_total{type}.
+    pub events_without_consent: IntCounterVec,
     /// apportion_store_size_bytes.
     pub store_size: IntGauge,
     /// apportion_state_oldest_event_age_seconds.
@@ -157,6 +159,12 @@ impl Metrics {
                 "Events older than the watermark, by what was done with them.",
                 &["action"],
             ),
+            events_without_consent: counter(
+                r,
+                "apportion_events_without_consent_total",
+                "Events dropped unread because their consent.measurement is false, by type.",
+                &["type"],
+            ),
             journeys_open: gauge("apportion_journeys_open", "Open journeys held in the store."),
             dedupe_ids: gauge(
                 "apportion_dedupe_remembered_ids",
@@ -229,6 +237,9 @@ impl Metrics {
         }
         for r in RejectReason::ALL {
             m.events_rejected.with_label_values(&[r.code()]);
+        }
+        for t in ["touch", "conversion"] {
+            m.events_without_consent.with_label_values(&[t]);
         }
         for a in ["dropped", "applied"] {
             m.events_late.with_label_values(&[a]);

@@ -64,6 +64,9 @@ pub struct Summary {
     pub rejected: u64,
     /// Duplicate events dropped.
     pub duplicates: u64,
+    /// Valid events dropped unread because their `consent.measurement` is
+    /// false (contract: Input events, Consent).
+    pub without_consent: u64,
     /// Credit rows written.
     pub rows: u64,
     /// Closed paths.
@@ -196,6 +199,7 @@ pub fn index(io: &ReplayIo, cfg: &Config, rejected: &mut Rejected, summary: &mut
             seen.reserve(estimate.saturating_sub(seen.len()));
         }
         match parse_event_limited(body, cfg.max_event_bytes) {
+            Ok(ev) if ev.without_consent() => summary.without_consent += 1,
             Ok(ev) if ev.timestamp_ms > newest_plausible => {
                 summary.rejected += 1;
                 let r = Rejection::new(

@@ -74,6 +74,9 @@ pub enum MsgStatus {
     AlreadyApplied,
     /// Not an event: progress of an input partition (repartition topic).
     Progress,
+    /// Valid, but its `consent.measurement` is false: counted and dropped
+    /// (contract: Input events, Consent).
+    WithoutConsent,
 }
 
 /// A source of input batches.

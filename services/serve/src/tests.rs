@@ -699,6 +699,38 @@ fn an_erase_by_user_key_erases_the_same_user() {
 }
 
 #[test]
+fn an_event_without_consent_is_counted_not_stored() {
+    // Contract: Input events, Consent (derived by hand): u's touch without
+    // consent is dropped before anything is kept, so u's conversion is
+    // unattributed and nothing of it is in the store; v's touch with
+    // consent is credited. The later touch of u at 300s did not move the
+    // watermark either: with allowed lateness 0, v's conversion at 200s is
+    // still on time.
+    let metrics = Metrics::new(prometheus::Registry::new());
+    let mut p = Pipeline::new(config(), Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let no = |id: &str, user: &str, ts: i64| {
+        format!(r#"{{"type":"touch","event_id":"{id}","user_id":"{user}","timestamp":{ts},"channel":"email","consent":{{"measurement":false}}}}"#)
+            .into_bytes()
+    };
+    let mut out = OutputBatch::default();
+    let batch = vec![no("a", "u", 100 * SEC), touch("b", "v", 110 * SEC, "seo"), no("x", "u", 300 * SEC)];
+    let st = p.process(&part(), &msgs(1, batch, Instant::now()), &mut out).unwrap();
+    assert_eq!(st, [MsgStatus::WithoutConsent, MsgStatus::Accepted, MsgStatus::WithoutConsent]);
+    p.commit().unwrap();
+    p.update_gauges();
+    assert_eq!(metrics.journeys_open.get(), 1, "only v is stored");
+    let batch = vec![conversion("c", "u", 150 * SEC), conversion("d", "v", 200 * SEC)];
+    let st = p.process(&part(), &msgs(4, batch, Instant::now()), &mut out).unwrap();
+    assert_eq!(st, [MsgStatus::Accepted, MsgStatus::Accepted]);
+    let channels: Vec<(&str, &str)> =
+        out.credit.iter().map(|r| (r.conversion_id.as_str(), r.channel.as_str())).collect();
+    assert_eq!(channels, [("c", "unattributed"), ("d", "seo")]);
+    assert!(out.dead_letters.is_empty());
+    assert_eq!(metrics.events_without_consent.with_label_values(&["touch"]).get(), 2);
+}
+
+#[test]
 fn an_erased_conversion_leaves_no_arrival_behind() {
     // Allowed lateness 60s: the conversion at 100s waits for the watermark
     // (contract: Streaming time); erasing the user drops it, and its arrival

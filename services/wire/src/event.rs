@@ -117,6 +117,13 @@ pub fn to_contract_json(msg: &InputEvent) -> Vec<u8> {
             m.insert("interaction".into(), unknown_enum(msg.interaction));
         }
     }
+    if let Some(c) = &msg.consent {
+        let mut o = Map::new();
+        if let Some(b) = c.measurement {
+            o.insert("measurement".into(), Value::Bool(b));
+        }
+        m.insert("consent".into(), Value::Object(o));
+    }
     if let Some(v) = msg.value {
         let n = Number::from_f64(v).unwrap_or_else(|| Number::from_f64(-1.0).expect("finite"));
         m.insert("value".into(), Value::Number(n));
@@ -134,6 +141,7 @@ struct JsonFields {
     event_id: Option<Value>,
     user_id: Option<Value>,
     user_key: Option<Value>,
+    consent: Option<Value>,
     timestamp: Option<Value>,
     channel: Option<Value>,
     campaign: Option<Value>,
@@ -200,6 +208,17 @@ pub fn encode_event_protobuf(json_line: &str) -> Result<Vec<u8>, String> {
         event_id: opt_string("event_id", f.event_id)?,
         user_id: opt_string("user_id", f.user_id)?,
         user_key: opt_string("user_key", f.user_key)?,
+        consent: match f.consent {
+            None | Some(Value::Null) => None,
+            Some(Value::Object(o)) => Some(crate::pb::Consent {
+                measurement: match o.get("measurement") {
+                    None | Some(Value::Null) => None,
+                    Some(Value::Bool(b)) => Some(*b),
+                    Some(other) => return Err(not_representable("consent.measurement", other)),
+                },
+            }),
+            Some(other) => return Err(not_representable("consent", &other)),
+        },
         timestamp,
         channel: opt_string("channel", f.channel)?,
         campaign: opt_string("campaign", f.campaign)?,

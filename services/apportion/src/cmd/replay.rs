@@ -10,8 +10,8 @@ pub fn run(io: ReplayIo, cfg: &Config, quiet: bool) -> Result<()> {
     let s = replay_file::run(&io, cfg, &pseudo)?;
     if !quiet {
         eprintln!(
-            "replay: {} lines, {} events applied, {} conversions ({} unattributed), {} rejected, {} duplicates, {} credit rows, {} paths in {:.2}s",
-            s.lines, s.events, s.conversions, s.unattributed, s.rejected, s.duplicates, s.rows, s.paths, s.seconds
+            "replay: {} lines, {} events applied, {} conversions ({} unattributed), {} rejected, {} duplicates, {} without consent, {} credit rows, {} paths in {:.2}s",
+            s.lines, s.events, s.conversions, s.unattributed, s.rejected, s.duplicates, s.without_consent, s.rows, s.paths, s.seconds
         );
         if s.spilled > 0 {
             eprintln!(

@@ -96,11 +96,13 @@ pub struct SortedEvents {
     pub rejected: Vec<(u64, Rejection)>,
     /// Duplicates dropped.
     pub duplicates: u64,
+    /// Valid events dropped unread: `consent.measurement` false.
+    pub without_consent: u64,
 }
 
 /// Parses, deduplicates and sorts `lines` (see [`SortedEvents`]).
 pub fn sorted_events(lines: &[&str]) -> SortedEvents {
-    let mut out = SortedEvents { events: Vec::new(), rejected: Vec::new(), duplicates: 0 };
+    let mut out = SortedEvents { events: Vec::new(), rejected: Vec::new(), duplicates: 0, without_consent: 0 };
     let mut seen = FirstSeen::with_capacity(lines.len());
     for (i, line) in lines.iter().enumerate() {
         let n = i as u64 + 1;
@@ -108,6 +110,7 @@ pub fn sorted_events(lines: &[&str]) -> SortedEvents {
             continue;
         }
         match parse_event(line.as_bytes()) {
+            Ok(ev) if ev.without_consent() => out.without_consent += 1,
             Ok(ev) if seen.first(&ev) => out.events.push((n, ev)),
             Ok(_) => out.duplicates += 1,
             Err(r) => out.rejected.push((n, r)),

@@ -92,6 +92,9 @@ pub struct IngestReply {
     pub accepted: usize,
     /// Lines dropped as duplicates.
     pub duplicates: usize,
+    /// Valid lines dropped unread because their `consent.measurement` is
+    /// false (contract: Input events, Consent).
+    pub without_consent: usize,
     /// Lines rejected (see `errors`).
     pub rejected: usize,
     /// One entry per rejected line, the first [`MAX_REPORTED_ERRORS`].

@@ -161,6 +161,7 @@ impl Source for EmbeddedSource {
                         reply.accepted += 1
                     }
                     Some(MsgStatus::Duplicate) => reply.duplicates += 1,
+                    Some(MsgStatus::WithoutConsent) => reply.without_consent += 1,
                     Some(MsgStatus::Rejected(r)) => {
                         reply.reject(LineError { line, reason: r.reason.code().into(), detail: r.detail })
                     }

@@ -294,6 +294,11 @@ impl Repartitioner {
                 }
             });
             match decoded {
+                Ok((ev, _)) if ev.without_consent() => {
+                    // Dropped here, so it never crosses the repartition topic
+                    // (contract: Input events, Consent).
+                    self.metrics.events_without_consent.with_label_values(&[ev.kind.as_str()]).inc();
+                }
                 Ok((ev, _)) => {
                     let p = self
                         .progress

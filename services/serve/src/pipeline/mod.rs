@@ -217,6 +217,10 @@ impl Pipeline {
             }
         };
         let kind = ev.kind.as_str();
+        if ev.without_consent() {
+            self.metrics.events_without_consent.with_label_values(&[kind]).inc();
+            return Ok(MsgStatus::WithoutConsent);
+        }
         let part = self.parts.get_mut(id).expect("open partition");
         // Future-dated: judged against the message's processing time, or as
         // recorded when the same message came before.

@@ -39,6 +39,11 @@ pub const VALID: &[&str] = &[
     r#"{"type":"conversion","event_id":"c-401","user_id":"cust-1005","timestamp":"2026-03-02T13:00:00Z","goal":"purchase","value":64.99,"currency":"GBP"}"#,
     // Erase with an event_id is accepted too.
     r#"{"type":"erase","event_id":"e-501","user_id":"cust-1006","timestamp":0}"#,
+    // No consent to measurement: counted and dropped by both paths; stated
+    // consent and unknown consent keys change nothing.
+    r#"{"type":"touch","event_id":"t-701","user_id":"cust-1007","timestamp":"2026-03-01T12:00:00Z","channel":"email","consent":{"measurement":false}}"#,
+    r#"{"type":"touch","event_id":"t-702","user_id":"cust-1007","timestamp":"2026-03-01T13:00:00Z","channel":"social","consent":{"measurement":true}}"#,
+    r#"{"type":"conversion","event_id":"c-701","user_id":"cust-1007","timestamp":"2026-03-01T14:00:00Z","consent":{}}"#,
     // Erase naming its user by key (64 lowercase hex digits) instead of raw id.
     r#"{"type":"erase","event_id":"e-601","user_key":"00112233445566778899aabbccddeeff00112233445566778899aabbccddeeff","timestamp":0}"#,
 ];

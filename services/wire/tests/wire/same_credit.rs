@@ -74,6 +74,14 @@ fn invalid_lines() -> Vec<(String, RejectReason)> {
 /// (a JSON type the schema cannot carry): the helper refuses them rather
 /// than turning them into something valid.
 const UNREPRESENTABLE: &[(&str, RejectReason)] = &[
+    (
+        r#"{"type":"touch","event_id":"t-1","user_id":"u","timestamp":0,"channel":"email","consent":{"measurement":"no"}}"#,
+        RejectReason::InvalidConsent,
+    ),
+    (
+        r#"{"type":"touch","event_id":"t-1","user_id":"u","timestamp":0,"channel":"email","consent":true}"#,
+        RejectReason::InvalidConsent,
+    ),
     (r#"{"type":"click","event_id":"t-1","user_id":"u","timestamp":0,"channel":"email"}"#, RejectReason::InvalidType),
     (r#"{"type":"touch","event_id":"t-1","user_id":42,"timestamp":0,"channel":"email"}"#, RejectReason::InvalidUserId),
     (
@@ -280,6 +288,8 @@ fn same_events_in_either_encoding_give_identical_credit() {
         let n = i as u64 + 1;
         let bytes = encode_event_protobuf(line).unwrap_or_else(|e| panic!("{e}\n{line}"));
         match decode_event_protobuf(&bytes, DEFAULT_MAX_EVENT_BYTES) {
+            // Dropped unread, as replay does (contract: Input events, Consent).
+            Ok(ev) if ev.without_consent() => {}
             Ok(ev) => events.push((n, ev)),
             Err(r) => rejected.push((n, r)),
         }
@@ -297,16 +307,18 @@ fn same_events_in_either_encoding_give_identical_credit() {
         assert_eq!(a, b);
     }
 
-    // The input really exercised the engine: 5 conversions x 7 models, a
+    // The input really exercised the engine: 6 conversions x 7 models, a
     // 3-touch path (c-001), an unattributed row (c-301), a non-converting
     // path (cust-1003) and data-driven rows carrying a model_version.
     let conversions: std::collections::BTreeSet<&str> = rows.iter().map(|r| r.conversion_id.as_str()).collect();
-    assert_eq!(conversions.into_iter().collect::<Vec<_>>(), ["c-001", "c-101", "c-102", "c-301", "c-401"]);
+    assert_eq!(conversions.into_iter().collect::<Vec<_>>(), ["c-001", "c-101", "c-102", "c-301", "c-401", "c-701"]);
     assert!(rows.iter().any(|r| r.conversion_id == "c-001" && r.path_length == 3));
     assert!(rows.iter().any(|r| r.conversion_id == "c-301" && r.channel == "unattributed"));
     assert!(paths.iter().any(|p| !p.converted));
     assert!(rows.iter().any(|r| r.model == "markov" && r.model_version.is_some()));
-    assert_eq!(rows.iter().filter(|r| r.model == "linear").count(), 3 + 3 + 1 + 1 + 1);
+    assert_eq!(rows.iter().filter(|r| r.model == "linear").count(), 3 + 3 + 1 + 1 + 1 + 1);
+    // t-701 had no consent to measurement: c-701 credits only t-702.
+    assert!(rows.iter().filter(|r| r.conversion_id == "c-701").all(|r| r.touch_event_id.as_deref() == Some("t-702")));
     // The erase removed t-401: c-401 credits only t-402.
     assert!(rows.iter().filter(|r| r.conversion_id == "c-401").all(|r| r.touch_event_id.as_deref() == Some("t-402")));
 }

@@ -186,7 +186,7 @@ fn dead_letter_message_matches_serde_type() {
 #[test]
 fn input_event_covers_every_contract_field() {
     // The input fields of docs/contract.md, "Input events".
-    const CONTRACT: [&str; 11] = [
+    const CONTRACT: [&str; 12] = [
         "type",
         "event_id",
         "user_id",
@@ -198,6 +198,7 @@ fn input_event_covers_every_contract_field() {
         "value",
         "currency",
         "user_key",
+        "consent",
     ];
     let file = schema_file();
     let m = message(&file, "InputEvent");
