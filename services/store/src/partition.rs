@@ -9,10 +9,11 @@ use apportion_engine::datadriven::PathStats;
 
 use crate::changes::ChangeSet;
 use crate::codec::{
-    decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats,
-    from_ordered_i64, journey_header, ordered_i64, Clock, Decision,
+    decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, from_ordered_i64,
+    journey_header, ordered_i64, Clock, Decision,
 };
 use crate::seen::Seen;
+use crate::stats_keys;
 use crate::StoreError;
 
 const J: u8 = b'j';
@@ -27,6 +28,8 @@ const O: u8 = b'o';
 const M: u8 = b'm';
 const D: u8 = b'd';
 const META_CLOCK: &str = "clock";
+/// Path statistics as one record (format 1), as earlier builds kept them;
+/// converted to counters (`stats_keys`) when read.
 const META_STATS: &str = "stats";
 const META_SNAPSHOT: &str = "snapshot";
 const META_SOURCE: &str = "source";
@@ -164,6 +167,12 @@ pub struct PartitionStore {
 /// How often (in saves) a store in replay mode checks its budget.
 const AUTO_SPILL_EVERY: u64 = 1024;
 
+fn meta_key(name: &str) -> Vec<u8> {
+    let mut k = vec![M];
+    k.extend_from_slice(name.as_bytes());
+    k
+}
+
 fn jkey(k: &UserKey) -> Vec<u8> {
     let mut v = Vec::with_capacity(33);
     v.push(J);
@@ -296,15 +305,11 @@ impl PartitionStore {
     }
 
     fn stage_meta(&mut self, name: &str, value: Vec<u8>) {
-        let mut k = vec![M];
-        k.extend_from_slice(name.as_bytes());
-        self.staged.set(k, value);
+        self.staged.set(meta_key(name), value);
     }
 
     fn meta(&self, name: &str) -> Result<Option<sled::IVec>, StoreError> {
-        let mut k = vec![M];
-        k.extend_from_slice(name.as_bytes());
-        Ok(self.tree.get(k)?)
+        Ok(self.tree.get(meta_key(name))?)
     }
 
     /// The committed clock (the default, both `i64::MIN`, before any commit).
@@ -318,17 +323,39 @@ impl PartitionStore {
     }
 
     /// The committed path statistics (empty ones of `markov_order` before
-    /// any); an error when they were collected with another Markov order.
-    pub fn stats(&self, markov_order: usize) -> Result<PathStats, StoreError> {
-        match self.meta(META_STATS)? {
-            Some(b) => decode_stats(&b, markov_order),
-            None => Ok(PathStats::new(markov_order)),
+    /// any, without a channel cap); an error when they were collected with
+    /// another Markov order. Statistics an earlier build stored as one
+    /// record (`m` `stats`) are converted to counters: the counters and the
+    /// removal of the record are staged for the next commit.
+    pub fn stats(&mut self, markov_order: usize) -> Result<PathStats, StoreError> {
+        if let Some(b) = self.meta(META_STATS)? {
+            let mut stats = decode_stats(&b, markov_order)?;
+            let delta = stats.take_delta();
+            stats_keys::stage_delta(&self.tree, &stats, &delta, &mut self.staged)?;
+            self.staged.remove(meta_key(META_STATS));
+            return Ok(stats);
         }
+        Ok(stats_keys::load(&self.tree, markov_order)?.unwrap_or_else(|| PathStats::new(markov_order)))
     }
 
-    /// Stages path statistics to be committed with the next batch.
-    pub fn stage_stats(&mut self, stats: &PathStats) {
-        self.stage_meta(META_STATS, encode_stats(stats));
+    /// Stages the counters of `stats` changed since its last delta (see
+    /// [`PathStats::track_changes`]; untracked statistics are written
+    /// whole) to be committed with the next batch. Nothing when none changed.
+    pub fn stage_stats(&mut self, stats: &mut PathStats) -> Result<(), StoreError> {
+        let delta = stats.take_delta();
+        stats_keys::stage_delta(&self.tree, stats, &delta, &mut self.staged)
+    }
+
+    /// Stages the removal of the stored path statistics (counters, and the
+    /// record of earlier builds), e.g. when no model needs them any more.
+    /// Returns true when there were some.
+    pub fn stage_drop_stats(&mut self) -> Result<bool, StoreError> {
+        let mut n = stats_keys::stage_drop(&self.tree, &mut self.staged)?;
+        if self.meta(META_STATS)?.is_some() {
+            self.staged.remove(meta_key(META_STATS));
+            n += 1;
+        }
+        Ok(n > 0)
     }
 
     /// The model snapshot the partition credits with (its `model_version`),
