@@ -21,7 +21,6 @@ use apportion_contract::time::in_range;
 use apportion_contract::{
     parse_event, parse_event_limited, CreditRow, Event, EventKind, Interaction, ModelId, RejectReason,
 };
-use apportion_engine::datadriven::PathStats;
 use apportion_engine::registry::{check_params, ModelPlan, RuleParams};
 use apportion_engine::replay::two_pass::add_closed_path;
 use apportion_engine::{
