@@ -21,7 +21,6 @@ use apportion_contract::time::in_range;
 use apportion_contract::{
     parse_event, parse_event_limited, CreditRow, Event, EventKind, Interaction, ModelId, RejectReason,
 };
-use apportion_engine::datadriven::PathStats;
 use apportion_engine::registry::{check_params, ModelPlan, RuleParams};
 use apportion_engine::replay::two_pass::add_closed_path;
 use apportion_engine::{
@@ -423,13 +422,18 @@ pub fn check_engine(s: &Scenario) {
     };
     params.u_last = params.u_last.min(1.0 - params.u_first);
     check_params(&params).expect("generated parameters are valid");
-    let plan = ModelPlan { ids: ModelId::ALL.to_vec(), params, markov_order: usize::from(s.markov_order % 4) + 1 };
+    let plan = ModelPlan {
+        ids: ModelId::ALL.to_vec(),
+        params,
+        markov_order: usize::from(s.markov_order % 4) + 1,
+        ..ModelPlan::rules()
+    };
 
     let steps = expand(s);
     let effects = stream(rules, &steps);
 
     // Fit on the run's own closed paths, then credit with every model.
-    let mut stats = PathStats::new(plan.markov_order);
+    let mut stats = plan.empty_stats();
     for e in &effects {
         add_closed_path(&mut stats, e);
     }

@@ -66,12 +66,20 @@ pub struct ModelPlan {
     pub params: RuleParams,
     /// Order of the `markov` chain (1..=4).
     pub markov_order: usize,
+    /// Channel cap of the path statistics (`None`: no cap; see
+    /// [`PathStats::with_max_channels`]).
+    pub max_channels: Option<usize>,
 }
 
 impl ModelPlan {
     /// The five rule models with default parameters.
     pub fn rules() -> Self {
-        ModelPlan { ids: ModelId::RULES.to_vec(), params: RuleParams::default(), markov_order: 1 }
+        ModelPlan {
+            ids: ModelId::RULES.to_vec(),
+            params: RuleParams::default(),
+            markov_order: 1,
+            max_channels: Some(crate::datadriven::DEFAULT_MAX_CHANNELS),
+        }
     }
 
     /// True when a model of the plan is fitted on path statistics.
@@ -79,9 +87,9 @@ impl ModelPlan {
         self.ids.iter().any(|m| m.is_data_driven())
     }
 
-    /// Empty statistics of the plan's Markov order.
+    /// Empty statistics of the plan's Markov order and channel cap.
     pub fn empty_stats(&self) -> PathStats {
-        PathStats::new(self.markov_order)
+        PathStats::new(self.markov_order).with_max_channels(self.max_channels)
     }
 
     /// The models, in order. The data-driven ones are fitted on `stats`;

@@ -10,7 +10,8 @@
 use std::collections::{BTreeMap, BTreeSet};
 
 use apportion_engine::datadriven::{
-    shapley_monte_carlo, shapley_values, GlobalShapley, MarkovModel, PathStats, ShapleyMethod, ShapleyModel, StatsError,
+    shapley_monte_carlo, shapley_values, Counter, GlobalShapley, MarkovModel, Outcomes, PathStats, ShapleyMethod,
+    ShapleyModel, StatsError, OVERFLOW_CHANNEL,
 };
 use apportion_engine::journey::Touch;
 use apportion_engine::model::Model;
@@ -880,4 +881,157 @@ fn fingerprint_is_sha256_of_the_documented_encoding() {
     bytes.extend(u(1));
     let want = hex::encode(Sha256::digest(&bytes));
     assert_eq!(stats_of(&[(vec!["A"], true)], 1).fingerprint(), want);
+}
+
+// ------------------------------------------- channel cap and overflow bucket
+
+fn capped(paths: &[(Vec<&str>, bool)], order: usize, cap: usize) -> PathStats {
+    let mut s = PathStats::new(order).with_max_channels(Some(cap));
+    for (p, c) in paths {
+        s.add_path(p, *c);
+    }
+    s
+}
+
+/// The paths with every channel outside `keep` renamed to the bucket.
+fn renamed<'a>(paths: &[(Vec<&'a str>, bool)], keep: &BTreeSet<&str>) -> Vec<(Vec<&'a str>, bool)> {
+    paths
+        .iter()
+        .map(|(p, c)| (p.iter().map(|x| if keep.contains(x) { *x } else { OVERFLOW_CHANNEL }).collect(), *c))
+        .collect()
+}
+
+#[test]
+fn the_channel_after_the_cap_goes_to_the_overflow_bucket() {
+    // docs/contract.md, "Models", Channel cap (derived by hand): cap 2.
+    let mut s = PathStats::new(1).with_max_channels(Some(2));
+    assert_eq!(s.add_path(&["b"], true), 0);
+    assert_eq!(s.add_path(&["c"], false), 0);
+    // The third channel, "d", sorts after both kept ones: the bucket.
+    assert_eq!(s.add_path(&["d", "b", "d"], true), 2);
+    assert_eq!(s.channels(), vec![OVERFLOW_CHANNEL, "b", "c"]);
+    assert_eq!(s.set_outcomes(&["b", OVERFLOW_CHANNEL]), Outcomes { conversions: 1, non_conversions: 0 });
+    assert_eq!(s.set_outcomes(&["d", "b"]), Outcomes::default());
+    // "a" sorts before "c": "a" is kept and "c" (and its path) moves to the bucket.
+    assert_eq!(s.add_path(&["a"], false), 0);
+    assert_eq!(s.channels(), vec![OVERFLOW_CHANNEL, "a", "b"]);
+    assert_eq!(s.set_outcomes(&[OVERFLOW_CHANNEL]), Outcomes { conversions: 0, non_conversions: 1 });
+    assert_eq!(s.channel_count(), 3);
+    // The same as counting the renamed paths without a cap, and as counting
+    // them in the opposite order with the cap.
+    let paths = vec![(vec!["b"], true), (vec!["c"], false), (vec!["d", "b", "d"], true), (vec!["a"], false)];
+    let keep: BTreeSet<&str> = ["a", "b"].into();
+    assert_eq!(s, stats_of(&renamed(&paths, &keep), 1));
+    let rev: Vec<_> = paths.iter().rev().cloned().collect();
+    assert_eq!(s, capped(&rev, 1, 2));
+    // A lower cap applied later moves the largest kept name too.
+    let lower = s.clone().with_max_channels(Some(1));
+    assert_eq!(lower.channels(), vec![OVERFLOW_CHANNEL, "a"]);
+    assert_eq!(lower, stats_of(&renamed(&paths, &["a"].into()), 1));
+}
+
+#[test]
+fn overflowed_touches_are_credited_through_the_bucket() {
+    // Cap 1: "a" is kept; "x" and "y" share the bucket O. Statistics:
+    // [a, x] converted, [y] not (derived by hand).
+    let stats = capped(&[(vec!["a", "x"], true), (vec!["y"], false)], 1, 1);
+    let path = touches(&["a", "x", "y"]);
+    // Shapley (Shapley 1953, two players a and O): v({a}) = 0 (never seen
+    // alone), v({O}) = 0/1 = 0, v({a, O}) = 1/1 = 1, so phi(a) = phi(O) =
+    // 1/2 (1 - 0) = 1/2; O's half is split over its two touches.
+    let s = ShapleyModel::fit(&stats);
+    assert_eq!(s.bucket("x"), OVERFLOW_CHANNEL);
+    assert_all_close(&s.credit(&path, 0), &[0.5, 0.25, 0.25], 1e-12);
+    let e = s.explain_conversion(&["a", "x", "y"]);
+    assert_eq!(e.channels.len(), 2);
+    assert_eq!(e.channels[1].channel, OVERFLOW_CHANNEL);
+    // Markov, order 1 (removal effect, Anderl et al. 2016; solved by hand):
+    // START -> a 1/2, START -> O 1/2, a -> O 1, O -> CONV 1/2, O -> NULL 1/2.
+    // P = 1/2 * 1 * 1/2 + 1/2 * 1/2 = 1/2; without a: P = 1/4, RE(a) = 1/2;
+    // without O: P = 0, RE(O) = 1. Shares 1/3 and 2/3; O's over 2 touches.
+    let m = MarkovModel::fit(&stats);
+    assert!(close(m.conversion_probability(), 0.5, 1e-12));
+    assert!(close(m.removal_effect("a"), 0.5, 1e-12));
+    assert!(close(m.removal_effect(OVERFLOW_CHANNEL), 1.0, 1e-12));
+    assert_all_close(&m.credit(&path, 0), &[1.0 / 3.0, 1.0 / 3.0, 1.0 / 3.0], 1e-12);
+    // A channel never seen that sorts before the largest kept one would have
+    // been kept, not bucketed: it stays an unseen channel (value 0).
+    assert_eq!(m.bucket("Z"), "Z");
+    assert_eq!(s.bucket("zz"), OVERFLOW_CHANNEL);
+    // Without the cap the same counts credit "x" and "y" as unseen channels.
+    let uncapped = stats.clone().with_max_channels(None);
+    assert_eq!(ShapleyModel::fit(&uncapped).bucket("zz"), "zz");
+}
+
+fn arb_many_paths() -> impl Strategy<Value = Vec<(Vec<&'static str>, bool)>> {
+    // 10 names, so that small caps overflow and names arrive in any order.
+    const MANY: [&str; 10] = ["j", "i", "h", "g", "f", "e", "d", "c", "b", "a"];
+    prop::collection::vec((prop::collection::vec(0usize..10, 1..=6), any::<bool>()), 1..=30)
+        .prop_map(|v| v.into_iter().map(|(p, c)| (p.into_iter().map(|i| MANY[i]).collect(), c)).collect())
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(96))]
+
+    /// Capped statistics equal the uncapped statistics of the paths with
+    /// every channel but the `cap` smallest names renamed to the bucket
+    /// (module docs of stats.rs), whatever the order of the paths and
+    /// however they are split and merged (serve's partitions, replay's one
+    /// pass); credit still sums to 1 per conversion.
+    #[test]
+    fn capped_statistics_are_the_renamed_paths(
+        paths in arb_many_paths(),
+        cap in 1usize..6,
+        order in 1usize..=3,
+        cut in 0usize..30,
+        conv in prop::collection::vec(0usize..10, 1..8),
+    ) {
+        let names: BTreeSet<&str> = paths.iter().flat_map(|(p, _)| p.iter().copied()).collect();
+        let keep: BTreeSet<&str> = names.iter().copied().take(cap).collect();
+        let want = stats_of(&renamed(&paths, &keep), order);
+        let whole = capped(&paths, order, cap);
+        prop_assert_eq!(&whole, &want);
+        let cut = cut.min(paths.len());
+        let mut merged = capped(&paths[cut..], order, cap);
+        merged.merge(&capped(&paths[..cut], order, cap));
+        prop_assert_eq!(&merged, &want);
+        prop_assert_eq!(merged.fingerprint(), whole.fingerprint());
+        prop_assert!(whole.channel_count() <= cap + 1);
+        let path = touches(&conv.iter().map(|&i| ["a", "b", "c", "d", "e", "f", "g", "h", "i", "j", "k"][i]).collect::<Vec<_>>());
+        let models: [Box<dyn Model>; 2] = [Box::new(ShapleyModel::fit(&whole)), Box::new(MarkovModel::fit(&whole))];
+        for m in &models {
+            let c = m.credit(&path, 0);
+            prop_assert!(c.iter().all(|x| *x >= 0.0 && x.is_finite()), "{}: {c:?}", m.id());
+            prop_assert!(close(c.iter().sum::<f64>(), 1.0, 1e-9), "{}: {c:?}", m.id());
+        }
+    }
+
+    /// A tracked delta after each cut carries the changed counters: applied
+    /// over the previous ones (a full delta replacing them all) they give
+    /// every counter of the statistics (what the store writes per commit).
+    #[test]
+    fn deltas_rebuild_the_counters(paths in arb_many_paths(), cap in 1usize..12, order in 1usize..=3, cuts in prop::collection::vec(any::<bool>(), 30)) {
+        let mut s = PathStats::new(order).with_max_channels(Some(cap));
+        s.track_changes();
+        let mut stored: BTreeMap<String, Counter> = BTreeMap::new();
+        let key = |c: &Counter| match c {
+            Counter::Set { channels, .. } => format!("s{channels:?}"),
+            Counter::Transition { from, to, .. } => format!("t{from:?}{to:?}"),
+        };
+        for (i, (p, c)) in paths.iter().enumerate() {
+            s.add_path(p, *c);
+            if cuts[i] || i + 1 == paths.len() {
+                let d = s.take_delta();
+                if d.full {
+                    stored.clear();
+                }
+                for c in d.counters {
+                    stored.insert(key(&c), c);
+                }
+            }
+        }
+        let back = PathStats::from_counters(order, s.paths(), s.conversions(), stored.into_values()).unwrap();
+        prop_assert_eq!(&back, &capped(&paths, order, cap));
+        prop_assert!(s.take_delta().is_empty());
+    }
 }

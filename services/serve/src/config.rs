@@ -93,6 +93,10 @@ pub struct Config {
     pub u_shaped_last: f64,
     /// Order of the `markov` chain (1 to 4).
     pub markov_order: usize,
+    /// Most channels the path statistics of `shapley` and `markov` count
+    /// under their own names; the others share the overflow bucket
+    /// (docs/contract.md, "Models", Channel cap). 0: no cap.
+    pub max_channels: usize,
     /// Secret key for pseudonymization (prefer the environment variable).
     pub pseudonym_key: Option<String>,
     /// Largest accepted event, in bytes.
@@ -231,6 +235,7 @@ impl Default for Config {
             u_shaped_first: 0.4,
             u_shaped_last: 0.4,
             markov_order: 1,
+            max_channels: apportion_engine::datadriven::DEFAULT_MAX_CHANNELS,
             pseudonym_key: None,
             max_event_bytes: apportion_contract::event::DEFAULT_MAX_EVENT_BYTES,
             cache_bytes: 256 << 20,
@@ -421,7 +426,17 @@ impl Config {
 
     /// The models and their parameters.
     pub fn model_plan(&self) -> ModelPlan {
-        ModelPlan { ids: self.models.clone(), params: self.rule_params(), markov_order: self.markov_order }
+        ModelPlan {
+            ids: self.models.clone(),
+            params: self.rule_params(),
+            markov_order: self.markov_order,
+            max_channels: self.max_channels(),
+        }
+    }
+
+    /// The channel cap of the path statistics (`max_channels`, 0: none).
+    pub fn max_channels(&self) -> Option<usize> {
+        (self.max_channels > 0).then_some(self.max_channels)
     }
 
     /// True when a data-driven model is configured.

@@ -6,7 +6,8 @@
 //! are registered on an injected registry and updated per batch.
 
 use prometheus::{
-    Encoder, GaugeVec, Histogram, HistogramOpts, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry, TextEncoder,
+    Encoder, GaugeVec, Histogram, HistogramOpts, IntCounter, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry,
+    TextEncoder,
 };
 
 use apportion_contract::{ModelId, RejectReason};
@@ -45,6 +46,12 @@ pub struct Metrics {
     pub conversions: IntCounterVec,
     /// apportion_paths_closed_total{converted}.
     pub paths_closed: IntCounterVec,
+    /// apportion_path_stats_overflow_touches_total.
+    pub stats_overflow_touches: IntCounter,
+    /// apportion_path_stats_overflow_paths_total.
+    pub stats_overflow_paths: IntCounter,
+    /// apportion_path_stats_channels.
+    pub stats_channels: IntGauge,
     /// apportion_processing_latency_seconds.
     pub latency: Histogram,
     /// apportion_batch_duration_seconds.
@@ -93,6 +100,11 @@ impl Metrics {
             let g = IntGauge::new(name, help).expect("valid metric");
             r.register(Box::new(g.clone())).expect("registered once");
             g
+        };
+        let plain_counter = |name: &str, help: &str| {
+            let c = IntCounter::new(name, help).expect("valid metric");
+            r.register(Box::new(c.clone())).expect("registered once");
+            c
         };
         let fgauge_vec = |name: &str, help: &str, labels: &[&str]| {
             let g = GaugeVec::new(Opts::new(name, help), labels).expect("valid metric");
@@ -195,6 +207,18 @@ impl Metrics {
                 "apportion_paths_closed_total",
                 "Closed paths, converting or not.",
                 &["converted"],
+            ),
+            stats_overflow_touches: plain_counter(
+                "apportion_path_stats_overflow_touches_total",
+                "Touches of closed paths counted in the overflow bucket of the path statistics (max_channels).",
+            ),
+            stats_overflow_paths: plain_counter(
+                "apportion_path_stats_overflow_paths_total",
+                "Closed paths with at least one touch counted in the overflow bucket (max_channels).",
+            ),
+            stats_channels: gauge(
+                "apportion_path_stats_channels",
+                "Distinct channels (overflow bucket included) in the largest path statistics of an open partition.",
             ),
             latency,
             batch_duration,

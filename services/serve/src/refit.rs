@@ -100,6 +100,9 @@ impl Refit {
                 "the store names model snapshot {v} but does not hold its statistics; the data dir is damaged"
             )
         })?;
+        // The cap is not in the stored form; it decides how a channel
+        // never seen is credited (with the bucket or not), so it is put back.
+        let stats = stats.with_max_channels(self.plan.max_channels);
         let s = Arc::new(Snapshot::fit(&self.plan, &stats));
         self.loaded.insert(v.to_string(), s.clone());
         Ok(s)

@@ -357,7 +357,7 @@ pub fn apply_pass(
 
 /// The fit pass alone: the path statistics of every closed path.
 pub fn fit(idx: &Indexed, cfg: &Config, pseudo: &Pseudonymizer, store: &Store, show: bool) -> Result<PathStats> {
-    let mut stats = PathStats::new(cfg.markov_order);
+    let mut stats = cfg.model_plan().empty_stats();
     apply_pass(idx, cfg, pseudo, store, Pass::Fit, show, |e| {
         two_pass::add_closed_path(&mut stats, e);
         Ok(())

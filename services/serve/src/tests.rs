@@ -789,6 +789,94 @@ fn path_statistics_are_kept_only_for_data_driven_models() {
 }
 
 #[test]
+fn stored_statistics_are_deleted_when_no_data_driven_model_is_configured() {
+    // Issue 15, item 3 (derived by hand): statistics a markov configuration
+    // stored are deleted at the first commit of a rule-only configuration,
+    // even of another markov_order (they are not read, so not refused).
+    let dir = tempfile::tempdir().unwrap();
+    {
+        let cfg = Config { models: vec![ModelId::Markov], markov_order: 2, ..config() };
+        let mut p = pipeline(cfg, Store::open(dir.path()).unwrap());
+        p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+        let batch = vec![touch("a", "u", 100 * SEC, "email"), conversion("c", "u", 200 * SEC)];
+        p.process(&part(), &msgs(1, batch, Instant::now()), &mut OutputBatch::default()).unwrap();
+        p.flush().unwrap();
+    }
+    let store = Store::open(dir.path()).unwrap();
+    assert_eq!(store.partition("events/0", 0).unwrap().stats(2).unwrap().paths(), 1);
+    let mut p = pipeline(Config { models: vec![ModelId::Linear], ..config() }, store.clone());
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    p.commit().unwrap();
+    assert_eq!(store.partition("events/0", 0).unwrap().stats(2).unwrap().paths(), 0);
+    assert_eq!(store.partition("events/0", 0).unwrap().stats(1).unwrap().paths(), 0);
+}
+
+/// Serve keeps statistics per partition and merges them at a refit; replay
+/// counts every path in one pass in time order. With more channels than
+/// `max_channels`, arriving in different orders on two partitions, both keep
+/// the same channels (the smallest names) and fit the same snapshot, and
+/// the overflowed touches are counted (docs/contract.md, "Models", Channel
+/// cap; derived by hand: 8 channels, cap 3, so 5 go to the bucket).
+#[test]
+fn capped_statistics_of_two_partitions_equal_replay() {
+    let cfg = Config {
+        models: vec![ModelId::Shapley, ModelId::Markov],
+        max_channels: 3,
+        refit_interval: Period(0),
+        ..config()
+    };
+    let names = ["h8", "g7", "f6", "e5", "d4", "c3", "b2", "a1"];
+    // Partition 0 sees the channels from the largest name down, partition 1
+    // from the smallest up: first arrivals differ, the smallest names do not.
+    let mut per_part: [Vec<Vec<u8>>; 2] = [Vec::new(), Vec::new()];
+    let mut all = Vec::new();
+    for u in 0..16usize {
+        let p = u % 2;
+        let user = format!("u{u}");
+        let t = (u as i64 + 1) * 10 * SEC;
+        let k = if p == 0 { u / 2 } else { 7 - u / 2 };
+        let events = vec![
+            touch(&format!("t{u}a"), &user, t, names[k]),
+            touch(&format!("t{u}b"), &user, t + 1, names[(k + 3) % 8]),
+            conversion(&format!("c{u}"), &user, t + 2),
+        ];
+        // Every third user does not convert (it expires at the drain).
+        let events = if u % 3 == 0 { events[..2].to_vec() } else { events };
+        all.extend(events.iter().cloned());
+        per_part[p].extend(events);
+    }
+    let metrics = Metrics::new(prometheus::Registry::new());
+    let mut p =
+        Pipeline::new(cfg.clone(), Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
+    let mut out = OutputBatch::default();
+    for (i, events) in per_part.iter().enumerate() {
+        let id = PartId::new("events", i as i32);
+        p.open_partition(&id, Payload::Event(Format::Json)).unwrap();
+        p.process(&id, &msgs(1, events.clone(), Instant::now()), &mut out).unwrap();
+    }
+    p.drain(&mut out).unwrap();
+    p.commit().unwrap();
+    assert!(p.refit_now().unwrap());
+    let text: Vec<String> = all.iter().map(|l| String::from_utf8(l.clone()).unwrap()).collect();
+    let refs: Vec<&str> = text.iter().map(String::as_str).collect();
+    let want = replay_lines(&refs, cfg.rules(), &Pseudonymizer::new(KEY), &cfg.model_plan());
+    let replay_versions: std::collections::BTreeSet<&str> =
+        want.rows.iter().filter_map(|r| r.model_version.as_deref()).collect();
+    let serve_versions: std::collections::BTreeSet<&str> = p.models().iter().filter_map(|m| m.version()).collect();
+    assert_eq!(serve_versions.len(), 2);
+    assert_eq!(serve_versions, replay_versions);
+    let stats_json = p.models_json();
+    assert_eq!(stats_json["paths"], 16);
+    // Each of the 16 paths has 2 touches in 2 channels; a path is in the
+    // bucket unless both its channels are among a1, b2, c3.
+    let overflow_paths = metrics.stats_overflow_paths.get();
+    assert!(overflow_paths > 0 && overflow_paths <= 16, "{overflow_paths}");
+    assert!(metrics.stats_overflow_touches.get() >= overflow_paths);
+    p.commit().unwrap();
+    assert_eq!(metrics.stats_channels.get(), 4, "3 kept channels and the bucket");
+}
+
+#[test]
 fn an_applied_erase_writes_one_audit_record() {
     // Contract: Erasure records (derived by hand): the erase of u (two open
     // touches, one conversion waiting for the watermark with allowed

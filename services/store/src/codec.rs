@@ -6,7 +6,8 @@
 //! | --- | --- | --- |
 //! | journey | 1 | version, wake flag (1 byte), wake (8 bytes big endian), bincode of [`Journey`] |
 //! | clock | 1 | version, largest event time seen (8 bytes BE), watermark (8 bytes BE) |
-//! | path statistics | 1 | version, JSON of [`PathStats`] (the serde form documented there) |
+//! | path statistics (snapshots; partitions before counter keys) | 1 | version, JSON of [`PathStats`] (the serde form documented there) |
+//! | path-statistics counters (key `p` ...) | 2 | see `stats_keys.rs` |
 //! | input offset | none | 8 bytes big endian (a bare offset, unchanged since the first release) |
 //! | decision (key `d` + offset + kind) | none | `f`: a future-dated event rejected at that offset (empty value); `a`: a processing-time advance of the watermark after that offset (8 bytes BE) |
 //! | active snapshot (`m` `snapshot`) | none | the `model_version` the partition credits with (UTF-8) |
@@ -19,7 +20,8 @@ use crate::StoreError;
 
 /// Current format version of clock records.
 pub const CLOCK_FORMAT_VERSION: u8 = 1;
-/// Current format version of path-statistics records.
+/// Current format version of path-statistics records (the JSON form of
+/// snapshots; also the per-partition blob of earlier builds).
 pub const STATS_FORMAT_VERSION: u8 = 1;
 
 /// A partition's event-time clock: the largest event time seen and the

@@ -11,8 +11,29 @@
 //! | `j` | user key (32 bytes) | versioned journey record |
 //! | `s` | largest "as of" time (8 bytes, order-preserving) + sequence (8 bytes) | event-id digests remembered for duplicate detection, one record per commit (format in `seen.rs`) |
 //! | `o` | source name | input offset (8 bytes) |
-//! | `m` | `clock` / `stats` / `snapshot` / `source` | the partition's clock, path statistics, active model snapshot and source position (formats in `codec.rs`) |
+//! | `m` | `clock` / `snapshot` / `source` | the partition's clock, active model snapshot and source position (formats in `codec.rs`) |
 //! | `d` | offset + kind | decisions that depended on processing time (`codec::Decision`) |
+//! | `p` | `h` / `s` + channel set / `t` + transition | the partition's path statistics as keyed counters, format version 2 ([`STATS_COUNTERS_VERSION`]; layout below) |
+//!
+//! Path statistics (`p`), written per change: a commit writes only the
+//! counters its batch changed, each with its current value, plus the
+//! header, in the commit's batch.
+//!
+//! | key | value |
+//! | --- | --- |
+//! | `p` `h` | header: format version (1 byte, 2), Markov order (1 byte), paths (8 bytes BE), converting paths (8 bytes BE) |
+//! | `p` `s` + channel list | converting paths (8 bytes BE), non-converting paths (8 bytes BE) whose set of distinct channels is exactly the list |
+//! | `p` `t` + node + node | count of the Markov transition from the first node to the second (8 bytes BE) |
+//!
+//! A channel list is its length (4 bytes BE), then each name as its length
+//! (2 bytes BE) and UTF-8 bytes: a set's names sorted byte-wise, a state's
+//! in path order. A node is a tag byte: `0` START, `1` a state followed by
+//! its channel list, `2` CONVERSION, `3` NULL. Keys name channels (never
+//! interned ids), so loading does not depend on counting order. The
+//! channel-cap overflow bucket is the channel `"\0overflow"`. Format
+//! version 1 was one JSON record under `m` `stats`, rewritten whole at every
+//! commit; it is converted to counters the first time it is read (staged
+//! with the next commit, which deletes the record).
 //!
 //! Why a write-back cache: one sled write per event is far slower than the
 //! engine (it costs more than all the rest of the work an event needs). [`PartitionStore`] keeps recently
@@ -35,6 +56,7 @@ mod changes;
 mod codec;
 mod partition;
 mod seen;
+mod stats_keys;
 
 pub use changes::ChangeSet;
 pub use codec::{
@@ -42,6 +64,7 @@ pub use codec::{
     Decision, StoredJourney, JOURNEY_FORMAT_VERSION,
 };
 pub use partition::PartitionStore;
+pub use stats_keys::STATS_COUNTERS_VERSION;
 
 use std::path::{Path, PathBuf};
 

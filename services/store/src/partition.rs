@@ -9,10 +9,11 @@ use apportion_engine::datadriven::PathStats;
 
 use crate::changes::ChangeSet;
 use crate::codec::{
-    decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats,
-    from_ordered_i64, journey_header, ordered_i64, Clock, Decision,
+    decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, from_ordered_i64,
+    journey_header, ordered_i64, Clock, Decision,
 };
 use crate::seen::Seen;
+use crate::stats_keys;
 use crate::StoreError;
 
 pub(crate) const J: u8 = b'j';
@@ -27,6 +28,8 @@ const O: u8 = b'o';
 const M: u8 = b'm';
 const D: u8 = b'd';
 const META_CLOCK: &str = "clock";
+/// Path statistics as one record (format 1), as earlier builds kept them;
+/// converted to counters (`stats_keys`) when read.
 const META_STATS: &str = "stats";
 const META_SNAPSHOT: &str = "snapshot";
 const META_SOURCE: &str = "source";
@@ -164,6 +167,12 @@ pub struct PartitionStore {
 /// How often (in saves) a store in replay mode checks its budget.
 const AUTO_SPILL_EVERY: u64 = 1024;
 
+fn meta_key(name: &str) -> Vec<u8> {
+    let mut k = vec![M];
+    k.extend_from_slice(name.as_bytes());
+    k
+}
+
 fn jkey(k: &UserKey) -> Vec<u8> {
     let mut v = Vec::with_capacity(33);
     v.push(J);
@@ -296,15 +305,11 @@ impl PartitionStore {
     }
 
     fn stage_meta(&mut self, name: &str, value: Vec<u8>) {
-        let mut k = vec![M];
-        k.extend_from_slice(name.as_bytes());
-        self.staged.set(k, value);
+        self.staged.set(meta_key(name), value);
     }
 
     fn meta(&self, name: &str) -> Result<Option<sled::IVec>, StoreError> {
-        let mut k = vec![M];
-        k.extend_from_slice(name.as_bytes());
-        Ok(self.tree.get(k)?)
+        Ok(self.tree.get(meta_key(name))?)
     }
 
     /// The committed clock (the default, both `i64::MIN`, before any commit).
@@ -318,17 +323,39 @@ impl PartitionStore {
     }
 
     /// The committed path statistics (empty ones of `markov_order` before
-    /// any); an error when they were collected with another Markov order.
-    pub fn stats(&self, markov_order: usize) -> Result<PathStats, StoreError> {
-        match self.meta(META_STATS)? {
-            Some(b) => decode_stats(&b, markov_order),
-            None => Ok(PathStats::new(markov_order)),
+    /// any, without a channel cap); an error when they were collected with
+    /// another Markov order. Statistics an earlier build stored as one
+    /// record (`m` `stats`) are converted to counters: the counters and the
+    /// removal of the record are staged for the next commit.
+    pub fn stats(&mut self, markov_order: usize) -> Result<PathStats, StoreError> {
+        if let Some(b) = self.meta(META_STATS)? {
+            let mut stats = decode_stats(&b, markov_order)?;
+            let delta = stats.take_delta();
+            stats_keys::stage_delta(&self.tree, &stats, &delta, &mut self.staged)?;
+            self.staged.remove(meta_key(META_STATS));
+            return Ok(stats);
         }
+        Ok(stats_keys::load(&self.tree, markov_order)?.unwrap_or_else(|| PathStats::new(markov_order)))
     }
 
-    /// Stages path statistics to be committed with the next batch.
-    pub fn stage_stats(&mut self, stats: &PathStats) {
-        self.stage_meta(META_STATS, encode_stats(stats));
+    /// Stages the counters of `stats` changed since its last delta (see
+    /// [`PathStats::track_changes`]; untracked statistics are written
+    /// whole) to be committed with the next batch. Nothing when none changed.
+    pub fn stage_stats(&mut self, stats: &mut PathStats) -> Result<(), StoreError> {
+        let delta = stats.take_delta();
+        stats_keys::stage_delta(&self.tree, stats, &delta, &mut self.staged)
+    }
+
+    /// Stages the removal of the stored path statistics (counters, and the
+    /// record of earlier builds), e.g. when no model needs them any more.
+    /// Returns true when there were some.
+    pub fn stage_drop_stats(&mut self) -> Result<bool, StoreError> {
+        let mut n = stats_keys::stage_drop(&self.tree, &mut self.staged)?;
+        if self.meta(META_STATS)?.is_some() {
+            self.staged.remove(meta_key(META_STATS));
+            n += 1;
+        }
+        Ok(n > 0)
     }
 
     /// The model snapshot the partition credits with (its `model_version`),
@@ -700,6 +727,125 @@ mod tests {
         // Opening again finds nothing left to migrate and the same ids.
         let p = PartitionStore::new(tree.clone(), db, 1 << 20).unwrap();
         assert_eq!(p.remembered_ids(), 2);
+    }
+
+    /// The path statistics of a store written by an earlier build (one
+    /// JSON record under `m` `stats`, format 1) load, and the next commit
+    /// replaces the record by counters, in the same batch.
+    #[test]
+    fn a_statistics_record_of_earlier_builds_is_converted_to_counters() {
+        let db = sled::Config::new().temporary(true).open().unwrap();
+        let tree = db.open_tree("p/x").unwrap();
+        // The bytes an earlier build wrote (derived by hand from the serde
+        // form documented in the engine's stats.rs): version 1, then JSON
+        // of the paths [email, seo] (converted) and [seo] (not), order 1.
+        let old = br#"{"markov_order":1,"paths":2,"conversions":1,"channel_sets":[{"channels":["email","seo"],"conversions":1,"non_conversions":0},{"channels":["seo"],"conversions":0,"non_conversions":1}],"transitions":[{"from":"start","to":{"state":["email"]},"count":1},{"from":"start","to":{"state":["seo"]},"count":1},{"from":{"state":["email"]},"to":{"state":["seo"]},"count":1},{"from":{"state":["seo"]},"to":"conversion","count":1},{"from":{"state":["seo"]},"to":"null","count":1}]}"#;
+        let mut record = vec![1u8];
+        record.extend_from_slice(old);
+        tree.insert(meta_key(META_STATS), record).unwrap();
+        let mut want = PathStats::new(1);
+        want.add_path(&["email", "seo"], true);
+        want.add_path(&["seo"], false);
+
+        let mut p = PartitionStore::new(tree.clone(), db.clone(), 1 << 20).unwrap();
+        assert_eq!(p.stats(1).unwrap(), want);
+        assert!(tree.get(meta_key(META_STATS)).unwrap().is_some(), "converted at the commit, not before");
+        p.commit(true).unwrap();
+        assert!(tree.get(meta_key(META_STATS)).unwrap().is_none());
+        // 2 sets + 5 transitions + the header.
+        assert_eq!(tree.scan_prefix([stats_keys::P]).count(), 8);
+        let mut p = PartitionStore::new(tree.clone(), db.clone(), 1 << 20).unwrap();
+        assert_eq!(p.stats(1).unwrap(), want);
+        assert!(matches!(p.stats(2), Err(StoreError::MarkovOrder { stored: 1, configured: 2 })));
+        // Dropped (no data-driven model any more): nothing is left.
+        assert!(p.stage_drop_stats().unwrap());
+        p.commit(true).unwrap();
+        assert_eq!(tree.scan_prefix([stats_keys::P]).count(), 0);
+        assert_eq!(p.stats(1).unwrap(), PathStats::new(1));
+        assert!(!p.stage_drop_stats().unwrap());
+    }
+
+    /// A commit after a batch that changed one path's counters writes those
+    /// counters and the header only, not the whole statistics.
+    #[test]
+    fn a_commit_writes_only_the_changed_counters() {
+        let db = sled::Config::new().temporary(true).open().unwrap();
+        let tree = db.open_tree("p/x").unwrap();
+        let mut p = PartitionStore::new(tree, db, 1 << 20).unwrap();
+        let mut stats = PathStats::new(1);
+        stats.track_changes();
+        for c in ["a", "b", "c", "d", "e", "f"] {
+            stats.add_path(&[c], true);
+        }
+        p.stage_stats(&mut stats).unwrap();
+        // 6 sets + 12 transitions + header (derived by hand: START -> c and c -> CONV per path).
+        assert_eq!(p.commit(false).unwrap().len(), 19);
+        stats.add_path(&["a", "b"], false);
+        p.stage_stats(&mut stats).unwrap();
+        // Set {a, b}; START -> a, a -> b, b -> NULL; header.
+        assert_eq!(p.commit(false).unwrap().len(), 5);
+        p.stage_stats(&mut stats).unwrap();
+        assert!(p.commit(false).unwrap().is_empty());
+    }
+
+    fn arb_paths() -> impl proptest::strategy::Strategy<Value = Vec<(Vec<&'static str>, bool, u8)>> {
+        use proptest::prelude::*;
+        const NAMES: [&str; 8] = ["seo", "email", "social", "display", "direct", "affiliate", "video", "audio"];
+        proptest::collection::vec((proptest::collection::vec(0usize..8, 1..5), any::<bool>(), 0u8..4), 1..40).prop_map(
+            |v| v.into_iter().map(|(p, c, cut)| (p.into_iter().map(|i| NAMES[i]).collect(), c, cut)).collect(),
+        )
+    }
+
+    proptest::proptest! {
+        /// Statistics written as deltas over any commit boundaries (and
+        /// reopened from the store at some of them) load equal to the
+        /// statistics built in one pass, with or without a channel cap.
+        #[test]
+        fn statistics_loaded_from_deltas_equal_one_pass(
+            paths in arb_paths(),
+            order in 1usize..=3,
+            cap in proptest::option::of(1usize..6),
+        ) {
+            let db = sled::Config::new().temporary(true).open().unwrap();
+            let tree = db.open_tree("p/x").unwrap();
+            let open = || {
+                let mut p = PartitionStore::new(tree.clone(), db.clone(), 1 << 20).unwrap();
+                let mut s = p.stats(order).unwrap();
+                s.track_changes();
+                (p, s.with_max_channels(cap))
+            };
+            let (mut p, mut s) = open();
+            let mut one_pass = PathStats::new(order).with_max_channels(cap);
+            for (path, converted, cut) in &paths {
+                s.add_path(path, *converted);
+                one_pass.add_path(path, *converted);
+                // cut: 0 no commit, 1 commit, 2 commit and reopen, 3 reopen
+                // without a commit (the batch is lost, as after a crash).
+                match cut {
+                    0 => {}
+                    1 | 2 => {
+                        p.stage_stats(&mut s).unwrap();
+                        p.commit(false).unwrap();
+                    }
+                    _ => {}
+                }
+                if *cut >= 2 {
+                    let committed = open();
+                    p = committed.0;
+                    s = committed.1;
+                    // What was lost is counted again, as a redelivery does.
+                    if *cut == 3 {
+                        one_pass = PathStats::new(order).with_max_channels(cap);
+                        one_pass.merge(&s);
+                    }
+                }
+            }
+            p.stage_stats(&mut s).unwrap();
+            p.commit(false).unwrap();
+            let (_, loaded) = open();
+            proptest::prop_assert_eq!(&loaded, &one_pass);
+            proptest::prop_assert_eq!(loaded.fingerprint(), one_pass.fingerprint());
+        }
     }
 
     #[derive(Debug, Clone)]

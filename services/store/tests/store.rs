@@ -251,10 +251,10 @@ fn clock_stats_and_offsets_round_trip() {
     let mut stats = PathStats::new(2);
     stats.add_path(&["email", "seo"], true);
     p.stage_clock(&Clock { max_ts: 10, watermark: 5 });
-    p.stage_stats(&stats);
+    p.stage_stats(&mut stats).unwrap();
     p.commit(true).unwrap();
     drop(p);
-    let p = store.partition("events/0", 1 << 20).unwrap();
+    let mut p = store.partition("events/0", 1 << 20).unwrap();
     assert_eq!(p.clock().unwrap(), Clock { max_ts: 10, watermark: 5 });
     assert_eq!(p.stats(2).unwrap(), stats);
     let e = p.stats(1).unwrap_err();

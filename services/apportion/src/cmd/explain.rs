@@ -12,7 +12,7 @@
 use std::collections::BTreeMap;
 
 use anyhow::{bail, Result};
-use apportion_engine::datadriven::{MarkovExplanation, MarkovModel, PathStats, ShapleyExplanation, ShapleyModel};
+use apportion_engine::datadriven::{MarkovExplanation, MarkovModel, ShapleyExplanation, ShapleyModel};
 use apportion_engine::model::distinct_channels;
 use apportion_engine::replay::two_pass::{self, Pass};
 use apportion_engine::{Effect, Outcome, Pseudonymizer, Touch};
@@ -71,7 +71,7 @@ pub fn run(input: &str, conversion: Option<&str>, json: bool, cfg: &Config, pseu
     let mut summary = Summary::default();
     let mut rejected = Rejected::open(None)?;
     let idx = index(&io, cfg, &mut rejected, &mut summary)?;
-    let mut stats = PathStats::new(cfg.markov_order);
+    let mut stats = cfg.model_plan().empty_stats();
     let mut per_channel: BTreeMap<String, (u64, u64)> = BTreeMap::new();
     apply_pass(&idx, cfg, pseudo, &store, Pass::Fit, io.progress, |e| {
         two_pass::add_closed_path(&mut stats, e);

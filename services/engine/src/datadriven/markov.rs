@@ -45,12 +45,12 @@ use serde::{Deserialize, Serialize};
 
 use super::linalg::{absorb, Chain};
 pub use super::linalg::{SolveMethod, DENSE_MAX};
-use super::shapley::{credit_path, dedup_keep_first};
+use super::shapley::{bucket, credit_bucketed, dedup_keep_first};
 use super::stats::{PathStats, CONV, NULL, START};
 use crate::journey::Touch;
 use apportion_contract::ModelId;
 
-use crate::model::{distinct_channels, Model};
+use crate::model::Model;
 
 /// The fitted `markov` model.
 #[derive(Debug, Clone)]
@@ -62,6 +62,8 @@ pub struct MarkovModel {
     effects: Vec<(String, f64, f64)>,
     index: HashMap<String, usize>,
     report: SolveReport,
+    /// With the channel cap reached: the largest kept channel.
+    overflow_above: Option<String>,
 }
 
 /// How the chain was solved, for diagnostics.
@@ -180,7 +182,15 @@ impl MarkovModel {
             effects,
             index,
             report: SolveReport { method: a.method, transient_states: n, error_bound: a.error_bound },
+            overflow_above: stats.overflow_above().map(str::to_string),
         }
+    }
+
+    /// The channel a touch of `channel` is counted under: itself, or
+    /// [`super::OVERFLOW_CHANNEL`] when the statistics' cap sends it to
+    /// the bucket (docs/contract.md, "Models", Channel cap).
+    pub fn bucket<'a>(&self, channel: &'a str) -> &'a str {
+        bucket(self.index.contains_key(channel), self.overflow_above.as_deref(), channel)
     }
 
     /// Snapshot id, `markov-o<order>-<first 16 hex digits of the stats fingerprint>`.
@@ -226,7 +236,8 @@ impl MarkovModel {
     /// Explains the credit of a conversion whose path has these distinct
     /// channels (duplicates are dropped, first occurrence kept).
     pub fn explain_conversion(&self, channels_distinct: &[&str]) -> MarkovExplanation {
-        let distinct = dedup_keep_first(channels_distinct);
+        let mapped: Vec<&str> = channels_distinct.iter().map(|c| self.bucket(c)).collect();
+        let distinct = dedup_keep_first(&mapped);
         let (shares, fallback_linear) = self.shares(&distinct);
         let channels = distinct
             .iter()
@@ -258,9 +269,7 @@ impl Model for MarkovModel {
         Some(&self.version)
     }
     fn credit(&self, path: &[Touch], _conversion_ts: i64) -> Vec<f64> {
-        let distinct = distinct_channels(path);
-        let (shares, _) = self.shares(&distinct);
-        credit_path(path, &distinct, &shares)
+        credit_bucketed(path, |c| self.bucket(c), |distinct| self.shares(distinct).0)
     }
 }
 

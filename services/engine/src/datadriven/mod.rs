@@ -26,4 +26,7 @@ pub use shapley::{
     shapley_monte_carlo, shapley_values, shapley_values_table, Coalition, GlobalChannelValue, GlobalShapley,
     ShapleyChannel, ShapleyEstimate, ShapleyExplanation, ShapleyMethod, ShapleyModel,
 };
-pub use stats::{Outcomes, PathStats, StatsError, MAX_MARKOV_ORDER};
+pub use stats::{
+    Counter, Outcomes, PathStats, StatsDelta, StatsError, StatsNode, DEFAULT_MAX_CHANNELS, MAX_MARKOV_ORDER,
+    OVERFLOW_CHANNEL,
+};

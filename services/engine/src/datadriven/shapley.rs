@@ -47,11 +47,13 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use super::stats::PathStats;
+use super::stats::{PathStats, OVERFLOW_CHANNEL};
 use crate::journey::Touch;
 use apportion_contract::ModelId;
 
-use crate::model::{distinct_channels, split_by_channel, Model};
+#[cfg(doc)]
+use crate::model::split_by_channel;
+use crate::model::Model;
 
 /// Most distinct channels of one conversion computed by subset enumeration.
 pub const ENUMERATE_MAX: usize = 16;
@@ -293,6 +295,9 @@ pub struct ShapleyModel {
     sets: Vec<SeenSet>,
     set_index: HashMap<Box<[u32]>, usize>,
     max_set_len: usize,
+    /// With the channel cap reached: the largest kept channel (a channel
+    /// never seen that sorts after it is credited through the bucket).
+    overflow_above: Option<String>,
 }
 
 impl ShapleyModel {
@@ -321,7 +326,22 @@ impl ShapleyModel {
         let set_index = sets.iter().enumerate().map(|(i, s)| (s.ids.clone(), i)).collect();
         let max_set_len = sets.iter().map(|s| s.ids.len()).max().unwrap_or(0);
         let fp = stats.fingerprint();
-        ShapleyModel { version: format!("shapley-{}", &fp[..16]), channels, channel_ids, sets, set_index, max_set_len }
+        ShapleyModel {
+            version: format!("shapley-{}", &fp[..16]),
+            channels,
+            channel_ids,
+            sets,
+            set_index,
+            max_set_len,
+            overflow_above: stats.overflow_above().map(str::to_string),
+        }
+    }
+
+    /// The channel a touch of `channel` is counted under: itself, or
+    /// [`OVERFLOW_CHANNEL`] when the statistics' cap sends it to the bucket
+    /// (docs/contract.md, "Models", Channel cap).
+    pub fn bucket<'a>(&self, channel: &'a str) -> &'a str {
+        bucket(self.channel_ids.contains_key(channel), self.overflow_above.as_deref(), channel)
     }
 
     /// Snapshot id, `shapley-<first 16 hex digits of the stats fingerprint>`.
@@ -427,9 +447,11 @@ impl ShapleyModel {
     }
 
     /// Explains the credit of a conversion whose path has these distinct
-    /// channels (duplicates are dropped, first occurrence kept).
+    /// channels (duplicates are dropped, first occurrence kept; channels in
+    /// the overflow bucket are explained as the bucket, once).
     pub fn explain_conversion(&self, channels_distinct: &[&str]) -> ShapleyExplanation {
-        let distinct = dedup_keep_first(channels_distinct);
+        let mapped: Vec<&str> = channels_distinct.iter().map(|c| self.bucket(c)).collect();
+        let distinct = dedup_keep_first(&mapped);
         let (phi, shares, method, fallback_linear) = self.shares(&distinct);
         let channels = distinct
             .iter()
@@ -602,10 +624,36 @@ pub(crate) fn clamp_normalize(values: &[f64]) -> (Vec<f64>, bool) {
     }
 }
 
-/// Credits a path from per-distinct-channel shares.
-pub(crate) fn credit_path(path: &[Touch], distinct: &[&str], shares: &[f64]) -> Vec<f64> {
+/// The channel a touch is counted under: `channel` when the model knows
+/// it, [`OVERFLOW_CHANNEL`] when it is unknown and sorts after the largest
+/// kept channel of statistics at their cap (`overflow_above`), else itself
+/// (a channel never seen).
+pub(crate) fn bucket<'a>(known: bool, overflow_above: Option<&str>, channel: &'a str) -> &'a str {
+    if !known && overflow_above.is_some_and(|max| channel > max) {
+        OVERFLOW_CHANNEL
+    } else {
+        channel
+    }
+}
+
+/// Credits a path: every touch is counted under `bucket(channel)`; the
+/// distinct buckets in order of first appearance get `shares_of` them, and
+/// each bucket's share is split evenly over its touches. Without a bucket
+/// this is [`split_by_channel`] over the distinct channels.
+pub(crate) fn credit_bucketed<'a>(
+    path: &'a [Touch],
+    bucket: impl Fn(&'a str) -> &'a str,
+    shares_of: impl FnOnce(&[&'a str]) -> Vec<f64>,
+) -> Vec<f64> {
+    let mapped: Vec<&str> = path.iter().map(|t| bucket(t.channel.as_str())).collect();
+    let distinct = dedup_keep_first(&mapped);
+    let shares = shares_of(&distinct);
     let by_channel: HashMap<&str, f64> = distinct.iter().copied().zip(shares.iter().copied()).collect();
-    split_by_channel(path, |c| by_channel.get(c).copied().unwrap_or(0.0))
+    let mut counts: HashMap<&str, usize> = HashMap::with_capacity(distinct.len());
+    for m in &mapped {
+        *counts.entry(m).or_default() += 1;
+    }
+    mapped.iter().map(|m| by_channel[m] / counts[m] as f64).collect()
 }
 
 /// Drops repeated channels, keeping first occurrences in order.
@@ -622,9 +670,7 @@ impl Model for ShapleyModel {
         Some(&self.version)
     }
     fn credit(&self, path: &[Touch], _conversion_ts: i64) -> Vec<f64> {
-        let distinct = distinct_channels(path);
-        let (_, shares, _, _) = self.shares(&distinct);
-        credit_path(path, &distinct, &shares)
+        credit_bucketed(path, |c| self.bucket(c), |distinct| self.shares(distinct).1)
     }
 }
 

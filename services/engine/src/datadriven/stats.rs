@@ -21,6 +21,34 @@
 //! canonical form sorted by channel name, so equal counts are equal
 //! statistics whatever order the paths arrived in.
 //!
+//! ## Channel cap and the overflow bucket
+//!
+//! With a cap ([`PathStats::with_max_channels`]) at most that many channels
+//! are counted under their own names: the **smallest names** (byte-wise) of
+//! all channels seen. Every other channel is counted under one bucket,
+//! [`OVERFLOW_CHANNEL`] (a name the event contract rejects, so it never
+//! collides with a real channel). When a channel arrives whose name sorts
+//! before the largest kept one, that largest one leaves: everything counted
+//! under it moves into the bucket (its sets and states are rewritten as if
+//! its touches had been the bucket's all along). Why the smallest names and
+//! not the first arrivals: the kept set is then a function of the set of
+//! channels seen, not of the order paths closed in, so statistics built in
+//! one pass (`replay`), per partition and merged (`serve`), or across
+//! restarts are equal. Counting a path through the bucket is exactly
+//! counting the path with every bucketed channel renamed to the bucket, for
+//! channel sets (a set holding several bucketed channels holds the bucket
+//! once) and Markov states alike, so renaming later gives the same counts
+//! as renaming at once. The price: a producer sending names that sort
+//! first can push real channels into the bucket (watch the overflow
+//! metric). Raising the cap keeps what is in the bucket there; lowering it
+//! moves the largest names into it at once.
+//!
+//! ## Change tracking
+//!
+//! With [`PathStats::track_changes`], the counters changed since the last
+//! [`PathStats::take_delta`] are remembered, so a store can write only
+//! those (see apportion-store's key table).
+//!
 //! Serde form (JSON shown):
 //! ```json
 //! {"markov_order":1,"paths":2,"conversions":1,
@@ -28,13 +56,21 @@
 //!  "transitions":[{"from":"start","to":{"state":["email"]},"count":1}, ...]}
 //! ```
 
-use std::collections::HashMap;
+use std::collections::{BTreeSet, HashMap, HashSet};
 
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
 /// Highest supported Markov order.
 pub const MAX_MARKOV_ORDER: usize = 4;
+
+/// The channel name of the overflow bucket (module docs, "Channel cap"):
+/// starts with U+0000, which the event contract never accepts in a channel
+/// (docs/contract.md, "Input events"), so no real channel can be named so.
+pub const OVERFLOW_CHANNEL: &str = "\u{0}overflow";
+
+/// The default channel cap of `serve` and `replay` (`max_channels`).
+pub const DEFAULT_MAX_CHANNELS: usize = 200;
 
 /// Interned node id of START in the transition table.
 pub(crate) const START: u32 = u32::MAX;
@@ -104,6 +140,60 @@ pub struct PathStats {
     state_ids: HashMap<Box<[u32]>, u32>,
     /// (from, to) -> count; from is START or a state id, to a state id, CONV or NULL.
     transitions: HashMap<(u32, u32), u64>,
+    /// At most this many channels under their own names (None: no cap).
+    max_channels: Option<usize>,
+    /// With a cap: the channels counted under their own names.
+    kept: BTreeSet<String>,
+    /// Counters changed since the last [`PathStats::take_delta`], when tracked.
+    changes: Option<Changes>,
+}
+
+/// Counters changed since the last delta (interned form).
+#[derive(Debug, Clone, Default)]
+struct Changes {
+    /// Everything may have changed (a channel moved into the bucket, a merge).
+    all: bool,
+    sets: HashSet<Box<[u32]>>,
+    transitions: HashSet<(u32, u32)>,
+}
+
+/// One counter of [`PathStats`] in canonical (named) form.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Counter {
+    /// Paths whose distinct channels are exactly `channels` (sorted by name).
+    Set {
+        /// The channel set, sorted by name.
+        channels: Vec<String>,
+        /// Their outcomes.
+        outcomes: Outcomes,
+    },
+    /// A transition of the Markov chain.
+    Transition {
+        /// From START or a state.
+        from: StatsNode,
+        /// To a state, CONVERSION or NULL.
+        to: StatsNode,
+        /// How many times it was taken.
+        count: u64,
+    },
+}
+
+/// The counters changed since the previous delta ([`PathStats::take_delta`]).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct StatsDelta {
+    /// True: `counters` is every counter, and any other stored counter is
+    /// stale (to be deleted). False: only the listed counters changed
+    /// (each with its current value); none was removed.
+    pub full: bool,
+    /// The changed counters, current values.
+    pub counters: Vec<Counter>,
+}
+
+impl StatsDelta {
+    /// True when nothing changed.
+    pub fn is_empty(&self) -> bool {
+        !self.full && self.counters.is_empty()
+    }
 }
 
 impl Default for PathStats {
@@ -152,7 +242,201 @@ impl PathStats {
             states: Vec::new(),
             state_ids: HashMap::new(),
             transitions: HashMap::new(),
+            max_channels: None,
+            kept: BTreeSet::new(),
+            changes: None,
         })
+    }
+
+    /// The same statistics with a channel cap (module docs, "Channel cap"):
+    /// `Some(n)` keeps at most n channels under their own names (moving the
+    /// largest names into [`OVERFLOW_CHANNEL`] now when there are more),
+    /// `None` lifts the cap.
+    ///
+    /// # Panics
+    /// When the cap is `Some(0)` (at least one channel must be kept).
+    pub fn with_max_channels(mut self, max_channels: Option<usize>) -> Self {
+        assert!(max_channels != Some(0), "max_channels must keep at least one channel");
+        self.max_channels = max_channels;
+        self.kept = match max_channels {
+            Some(_) => self.channels.iter().filter(|c| *c != OVERFLOW_CHANNEL).cloned().collect(),
+            None => BTreeSet::new(),
+        };
+        if let Some(cap) = max_channels {
+            if self.kept.len() > cap {
+                let keep: BTreeSet<String> = self.kept.iter().take(cap).cloned().collect();
+                self = self.project(keep);
+            }
+        }
+        self
+    }
+
+    /// The channel cap, if any.
+    pub fn max_channels(&self) -> Option<usize> {
+        self.max_channels
+    }
+
+    /// Starts remembering which counters change (see [`PathStats::take_delta`]).
+    pub fn track_changes(&mut self) {
+        if self.changes.is_none() {
+            self.changes = Some(Changes::default());
+        }
+    }
+
+    /// The counters changed since the previous call (or since
+    /// [`PathStats::track_changes`]), with their current values, and starts
+    /// a new delta. Without tracking: every counter, as a full delta.
+    pub fn take_delta(&mut self) -> StatsDelta {
+        let Some(ch) = self.changes.as_mut() else {
+            return StatsDelta { full: true, counters: self.counters() };
+        };
+        let ch = std::mem::take(ch);
+        if ch.all {
+            return StatsDelta { full: true, counters: self.counters() };
+        }
+        let mut counters = Vec::with_capacity(ch.sets.len() + ch.transitions.len());
+        for ids in ch.sets {
+            let o = self.sets[&ids];
+            let mut channels: Vec<String> = ids.iter().map(|&i| self.channels[i as usize].clone()).collect();
+            channels.sort_unstable();
+            counters.push(Counter::Set { channels, outcomes: o });
+        }
+        for (a, b) in ch.transitions {
+            let count = self.transitions[&(a, b)];
+            counters.push(Counter::Transition { from: self.named_node(a), to: self.named_node(b), count });
+        }
+        StatsDelta { full: false, counters }
+    }
+
+    /// Every counter, in canonical order.
+    pub fn counters(&self) -> Vec<Counter> {
+        let rec = self.to_record();
+        let sets = rec.channel_sets.into_iter().map(|s| Counter::Set {
+            channels: s.channels,
+            outcomes: Outcomes { conversions: s.conversions, non_conversions: s.non_conversions },
+        });
+        let transitions =
+            rec.transitions.into_iter().map(|t| Counter::Transition { from: t.from, to: t.to, count: t.count });
+        sets.chain(transitions).collect()
+    }
+
+    /// Statistics from their counters (as [`PathStats::counters`] lists
+    /// them, in any order) and totals, checked for consistency as the serde
+    /// form is (counts that add up, states that can follow each other).
+    pub fn from_counters(
+        markov_order: usize,
+        paths: u64,
+        conversions: u64,
+        counters: impl IntoIterator<Item = Counter>,
+    ) -> Result<Self, StatsError> {
+        let mut rec =
+            StatsRecord { markov_order, paths, conversions, channel_sets: Vec::new(), transitions: Vec::new() };
+        for c in counters {
+            match c {
+                Counter::Set { channels, outcomes } => rec.channel_sets.push(SetRecord {
+                    channels,
+                    conversions: outcomes.conversions,
+                    non_conversions: outcomes.non_conversions,
+                }),
+                Counter::Transition { from, to, count } => rec.transitions.push(TransitionRecord { from, to, count }),
+            }
+        }
+        PathStats::from_record(rec)
+    }
+
+    fn named_node(&self, n: u32) -> StatsNode {
+        match n {
+            START => StatsNode::Start,
+            CONV => StatsNode::Conversion,
+            NULL => StatsNode::Null,
+            s => StatsNode::State(self.states[s as usize].iter().map(|&i| self.channels[i as usize].clone()).collect()),
+        }
+    }
+
+    /// Rebuilt with every channel outside `keep` counted as [`OVERFLOW_CHANNEL`]
+    /// (module docs, "Channel cap"); tracking marks everything changed.
+    fn project(&self, keep: BTreeSet<String>) -> PathStats {
+        let mut out = PathStats::new(self.order);
+        out.paths = self.paths;
+        out.conversions = self.conversions;
+        out.max_channels = self.max_channels;
+        let map: Vec<u32> = self
+            .channels
+            .iter()
+            .map(|c| if keep.contains(c) { out.intern(c) } else { out.intern(OVERFLOW_CHANNEL) })
+            .collect();
+        for (ids, o) in &self.sets {
+            let mut mine: Vec<u32> = ids.iter().map(|&i| map[i as usize]).collect();
+            mine.sort_unstable();
+            mine.dedup();
+            out.add_set(mine, *o);
+        }
+        let state_map: Vec<u32> = self
+            .states
+            .iter()
+            .map(|t| {
+                let mine: Vec<u32> = t.iter().map(|&i| map[i as usize]).collect();
+                out.intern_state(&mine)
+            })
+            .collect();
+        let node = |n: u32| if n >= NULL { n } else { state_map[n as usize] };
+        for (&(a, b), &c) in &self.transitions {
+            *out.transitions.entry((node(a), node(b))).or_insert(0) += c;
+        }
+        out.kept = keep;
+        out.changes = self.changes.as_ref().map(|_| Changes { all: true, ..Default::default() });
+        out
+    }
+
+    /// Under a cap: makes room for the new channels among `names` that sort
+    /// before the largest kept ones (moving those into the bucket) and keeps
+    /// them, so that afterwards the kept channels are the smallest names of
+    /// all seen. Without a cap: nothing.
+    fn admit<'a>(&mut self, names: impl Iterator<Item = &'a str>) {
+        let Some(cap) = self.max_channels else { return };
+        let new: BTreeSet<&str> =
+            names.filter(|c| *c != OVERFLOW_CHANNEL && !self.channel_ids.contains_key(*c)).collect();
+        let mut evicted = false;
+        for c in new {
+            if self.kept.contains(c) {
+                continue;
+            }
+            if self.kept.len() < cap {
+                self.kept.insert(c.to_string());
+            } else if self.kept.last().is_some_and(|max| c < max.as_str()) {
+                self.kept.pop_last();
+                self.kept.insert(c.to_string());
+                evicted = true;
+            }
+        }
+        if evicted {
+            // Kept channels that were never counted are not in `channels`:
+            // projecting keeps them out of the tables until their first touch.
+            let keep = std::mem::take(&mut self.kept);
+            *self = self.project(keep);
+        }
+    }
+
+    /// The interned id a channel is counted under (interning it), and
+    /// whether that is the bucket because of the cap.
+    fn id_for(&mut self, channel: &str) -> (u32, bool) {
+        if let Some(&id) = self.channel_ids.get(channel) {
+            return (id, false);
+        }
+        if self.max_channels.is_none() || self.kept.contains(channel) {
+            (self.intern(channel), false)
+        } else {
+            (self.intern(OVERFLOW_CHANNEL), true)
+        }
+    }
+
+    /// With a cap reached: the largest kept channel name. A channel never
+    /// seen whose name sorts after it would be counted in the bucket.
+    pub(crate) fn overflow_above(&self) -> Option<&str> {
+        match self.max_channels {
+            Some(cap) if self.kept.len() >= cap => self.kept.last().map(String::as_str),
+            _ => None,
+        }
     }
 
     /// The Markov order these statistics count transitions for.
@@ -241,11 +525,22 @@ impl PathStats {
 
     /// Counts one closed path (channels in time order). A path with no
     /// touch is not a path (docs/contract.md, "Journey rules") and is ignored.
-    pub fn add_path(&mut self, channels: &[&str], converted: bool) {
+    /// Returns how many of its touches were counted in the overflow bucket
+    /// because of the channel cap (module docs).
+    pub fn add_path(&mut self, channels: &[&str], converted: bool) -> usize {
         if channels.is_empty() {
-            return;
+            return 0;
         }
-        let ids: Vec<u32> = channels.iter().map(|c| self.intern(c)).collect();
+        self.admit(channels.iter().copied());
+        let mut overflowed = 0;
+        let ids: Vec<u32> = channels
+            .iter()
+            .map(|c| {
+                let (id, over) = self.id_for(c);
+                overflowed += usize::from(over);
+                id
+            })
+            .collect();
         self.paths += 1;
         if converted {
             self.conversions += 1;
@@ -258,17 +553,32 @@ impl PathStats {
         } else {
             Outcomes { conversions: 0, non_conversions: 1 }
         };
+        if let Some(ch) = self.changes.as_mut() {
+            if !ch.all && !ch.sets.contains(&set[..]) {
+                ch.sets.insert(set.clone().into_boxed_slice());
+            }
+        }
         self.add_set(set, o);
 
         let mut prev = START;
         for j in 0..ids.len() {
             let lo = (j + 1).saturating_sub(self.order);
             let s = self.intern_state(&ids[lo..=j]);
-            *self.transitions.entry((prev, s)).or_insert(0) += 1;
+            self.count_transition(prev, s);
             prev = s;
         }
         let end = if converted { CONV } else { NULL };
-        *self.transitions.entry((prev, end)).or_insert(0) += 1;
+        self.count_transition(prev, end);
+        overflowed
+    }
+
+    fn count_transition(&mut self, a: u32, b: u32) {
+        *self.transitions.entry((a, b)).or_insert(0) += 1;
+        if let Some(ch) = self.changes.as_mut() {
+            if !ch.all {
+                ch.transitions.insert((a, b));
+            }
+        }
     }
 
     /// Adds the counts of `other` (same Markov order).
@@ -282,17 +592,20 @@ impl PathStats {
     }
 
     /// Adds the counts of `other`, or fails (changing nothing) when the
-    /// Markov orders differ.
+    /// Markov orders differ. Under a cap (this value's), the result keeps
+    /// the smallest names of both (module docs, "Channel cap").
     pub fn try_merge(&mut self, other: &PathStats) -> Result<(), StatsError> {
         if self.order != other.order {
             return Err(StatsError::OrderMismatch { ours: self.order, theirs: other.order });
         }
-        let map: Vec<u32> = other.channels.iter().map(|c| self.intern(c)).collect();
+        self.admit(other.channels.iter().map(String::as_str));
+        let map: Vec<u32> = other.channels.iter().map(|c| self.id_for(c).0).collect();
         self.paths += other.paths;
         self.conversions += other.conversions;
         for (ids, o) in &other.sets {
             let mut mine: Vec<u32> = ids.iter().map(|&i| map[i as usize]).collect();
             mine.sort_unstable();
+            mine.dedup();
             self.add_set(mine, *o);
         }
         let state_map: Vec<u32> = other
@@ -306,6 +619,9 @@ impl PathStats {
         let node = |n: u32| if n >= NULL { n } else { state_map[n as usize] };
         for (&(a, b), &c) in &other.transitions {
             *self.transitions.entry((node(a), node(b))).or_insert(0) += c;
+        }
+        if let Some(ch) = self.changes.as_mut() {
+            ch.all = true;
         }
         Ok(())
     }
@@ -356,7 +672,9 @@ impl PathStats {
     /// transitions, then per transition in canonical order `from`, `to`
     /// (each a tag byte 0 START, 1 state followed by its channel list,
     /// 2 CONVERSION, 3 NULL) and the count. Canonical order is the serde
-    /// form's: by channel names, byte-wise.
+    /// form's: by channel names, byte-wise. Statistics at their channel cap
+    /// (module docs; a channel never seen would go to the bucket, so the
+    /// cap changes credit) append `"max_channels\0"` and the cap.
     pub fn fingerprint(&self) -> String {
         let c = self.canonical();
         let name = |r: u32| self.channels[c.by_name[r as usize] as usize].as_bytes();
@@ -389,6 +707,10 @@ impl PathStats {
             }
             h.update(count.to_le_bytes());
         }
+        if let (Some(cap), Some(_)) = (self.max_channels, self.overflow_above()) {
+            h.update(b"max_channels\0");
+            h.update((cap as u64).to_le_bytes());
+        }
         hex::encode(h.finish())
     }
 
@@ -420,10 +742,10 @@ impl PathStats {
             v.iter().map(|&r| self.channels[c.by_name[r as usize] as usize].clone()).collect()
         };
         let node = |(tag, v): &(u8, Vec<u32>)| match tag {
-            0 => Node::Start,
-            1 => Node::State(names(v)),
-            2 => Node::Conversion,
-            _ => Node::Null,
+            0 => StatsNode::Start,
+            1 => StatsNode::State(names(v)),
+            2 => StatsNode::Conversion,
+            _ => StatsNode::Null,
         };
         let channel_sets = c
             .sets
@@ -480,12 +802,12 @@ impl PathStats {
         }
         let (mut from_start, mut into_conv, mut into_null) = (0u64, 0u64, 0u64);
         for t in rec.transitions {
-            let node = |n: &Node, s: &mut PathStats| -> Result<u32, StatsError> {
+            let node = |n: &StatsNode, s: &mut PathStats| -> Result<u32, StatsError> {
                 Ok(match n {
-                    Node::Start => START,
-                    Node::Conversion => CONV,
-                    Node::Null => NULL,
-                    Node::State(v) => {
+                    StatsNode::Start => START,
+                    StatsNode::Conversion => CONV,
+                    StatsNode::Null => NULL,
+                    StatsNode::State(v) => {
                         if v.is_empty() || v.len() > s.order {
                             return Err(StatsError::Corrupt(format!(
                                 "state of {} channels at order {}",
@@ -503,10 +825,10 @@ impl PathStats {
             if a == CONV || a == NULL || b == START {
                 return bad("transition out of an absorbing state or into START".into());
             }
-            if let Node::State(to) = &t.to {
+            if let StatsNode::State(to) = &t.to {
                 let ok = match &t.from {
-                    Node::Start => to.len() == 1,
-                    Node::State(from) => {
+                    StatsNode::Start => to.len() == 1,
+                    StatsNode::State(from) => {
                         let mut next: Vec<&String> = from.iter().collect();
                         next.push(to.last().expect("non-empty"));
                         let lo = next.len().saturating_sub(s.order);
@@ -573,10 +895,14 @@ type CanonicalTransition = (CanonicalNode, CanonicalNode, u64);
 /// A node of the transition table in canonical (named) form.
 #[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
-enum Node {
+pub enum StatsNode {
+    /// START.
     Start,
+    /// A state: the last up to `markov_order` channels, oldest first.
     State(Vec<String>),
+    /// CONVERSION (absorbing).
     Conversion,
+    /// NULL, no conversion (absorbing).
     Null,
 }
 
@@ -589,8 +915,8 @@ struct SetRecord {
 
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 struct TransitionRecord {
-    from: Node,
-    to: Node,
+    from: StatsNode,
+    to: StatsNode,
     count: u64,
 }
 

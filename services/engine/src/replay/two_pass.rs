@@ -63,14 +63,16 @@ where
     Ok(applied)
 }
 
-/// The fit pass: the path statistics of every closed path.
-pub fn fit<S, E, P>(rules: Rules, markov_order: usize, store: S, events: P) -> Result<PathStats, E>
+/// The fit pass: the path statistics of every closed path, counted into
+/// `empty` (the plan's [`ModelPlan::empty_stats`]: its Markov order and
+/// channel cap).
+pub fn fit<S, E, P>(rules: Rules, empty: PathStats, store: S, events: P) -> Result<PathStats, E>
 where
     S: JourneyStore,
     E: From<S::Error>,
     P: FnOnce(&mut dyn FnMut(JourneyEvent) -> Result<(), E>) -> Result<(), E>,
 {
-    let mut stats = PathStats::new(markov_order);
+    let mut stats = empty;
     apply_pass(rules, store, events, |e| {
         add_closed_path(&mut stats, e);
         Ok(())
@@ -116,7 +118,7 @@ where
     F: FnMut(&Effect, &[Box<dyn Model>]) -> Result<(), E>,
 {
     let stats = if plan.data_driven() {
-        Some(fit(rules, plan.markov_order, store(Pass::Fit)?, |cb| events(Pass::Fit, cb))?)
+        Some(fit(rules, plan.empty_stats(), store(Pass::Fit)?, |cb| events(Pass::Fit, cb))?)
     } else {
         None
     };

@@ -16,7 +16,7 @@ use crate::source::PartId;
 /// Appends the rows of `effects` to `out`, adds closed paths to `stats`
 /// (when given: only data-driven models need them), and counts them.
 /// `arrivals` maps conversion ids to their arrival time (for the latency
-/// histogram). Returns true when a path was added to `stats`.
+/// histogram).
 pub fn emit(
     effects: &[Effect],
     models: &[Box<dyn Model>],
@@ -24,16 +24,18 @@ pub fn emit(
     arrivals: &mut HashMap<String, Instant>,
     metrics: &Metrics,
     out: &mut OutputBatch,
-) -> bool {
-    let mut stats_changed = false;
+) {
     for e in effects {
         match e {
             Effect::Journey { outcome, .. } => {
                 if let Some((converted, path)) = outcome.closed_path() {
                     if let Some(stats) = stats.as_deref_mut() {
                         let chans: Vec<&str> = path.iter().map(|t| t.channel.as_str()).collect();
-                        stats.add_path(&chans, converted);
-                        stats_changed = true;
+                        let overflowed = stats.add_path(&chans, converted);
+                        if overflowed > 0 {
+                            metrics.stats_overflow_touches.inc_by(overflowed as u64);
+                            metrics.stats_overflow_paths.inc();
+                        }
                     }
                     metrics.paths_closed.with_label_values(&[if converted { "true" } else { "false" }]).inc();
                 }
@@ -67,7 +69,6 @@ pub fn emit(
         out.credit.extend(rows);
         out.paths.extend(path);
     }
-    stats_changed
 }
 
 /// The audit record of an erase applied at `offset` of partition `id`, if

@@ -25,7 +25,6 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 use anyhow::{Context, Result};
 use apportion_contract::time::format_ms;
 use apportion_contract::{EventKind, RejectReason, Rejection};
-use apportion_engine::datadriven::PathStats;
 use apportion_engine::replay::dedupe_digest;
 use apportion_engine::{Effect, JourneyEvent, Model, Processor, Pseudonymizer};
 use apportion_sinks::OutputBatch;
@@ -99,9 +98,8 @@ impl Pipeline {
             return Ok(p.committed);
         }
         let (store, refit) = (&self.store, &mut self.refit);
-        let part = PartState::open(store, id, payload, self.cfg.cache_bytes, self.cfg.markov_order, |v| {
-            refit.snapshot_for(store, v)
-        })?;
+        let plan = self.cfg.model_plan();
+        let part = PartState::open(store, id, payload, self.cfg.cache_bytes, &plan, |v| refit.snapshot_for(store, v))?;
         let committed = part.committed;
         self.parts.insert(id.clone(), part);
         Ok(committed)
@@ -399,10 +397,8 @@ impl Pipeline {
     fn emit(&mut self, id: &PartId, effects: &[Effect], out: &mut OutputBatch) {
         let part = self.parts.get_mut(id).expect("open partition");
         let models = part.snapshot.models();
-        let stats = self.cfg.data_driven().then_some(&mut part.stats);
-        if emit::emit(effects, models, stats, &mut part.arrivals, &self.metrics, out) {
-            part.stats_dirty = true;
-        }
+        let stats = part.keep_stats.then_some(&mut part.stats);
+        emit::emit(effects, models, stats, &mut part.arrivals, &self.metrics, out);
     }
 
     /// Makes every decision recorded in this batch durable. Call before the
@@ -427,7 +423,7 @@ impl Pipeline {
 
     /// Refits now (see [`Pipeline::maybe_refit`]).
     pub fn refit_now(&mut self) -> Result<bool> {
-        let mut all = PathStats::new(self.cfg.markov_order);
+        let mut all = self.cfg.model_plan().empty_stats();
         for p in self.parts.values() {
             all.try_merge(&p.stats).expect("partition statistics share the configured markov_order");
         }
@@ -500,6 +496,8 @@ impl Pipeline {
         self.metrics.journeys_open.set(open as i64);
         let ids: usize = self.parts.values().map(|p| p.store.remembered_ids()).sum();
         self.metrics.dedupe_ids.set(ids as i64);
+        let channels = self.parts.values().filter(|p| p.keep_stats).map(|p| p.stats.channel_count()).max();
+        self.metrics.stats_channels.set(channels.unwrap_or(0) as i64);
         self.metrics.store_size.set(self.store.size_on_disk() as i64);
         let now = now_ms();
         for (id, p) in &self.parts {

@@ -8,6 +8,7 @@ use std::time::Instant;
 
 use anyhow::{Context, Result};
 use apportion_engine::datadriven::PathStats;
+use apportion_engine::registry::ModelPlan;
 use apportion_store::{Clock, Decision, PartitionStore, Store};
 
 use crate::kafka::repartition::SourceClocks;
@@ -82,10 +83,12 @@ pub struct PartState {
     pub payload: Payload,
     /// Largest event time applied and the watermark.
     pub clock: Clock,
-    /// Path statistics of the partition's closed paths.
+    /// Path statistics of the partition's closed paths (kept and committed
+    /// only with a data-driven model; changes are tracked, so a commit
+    /// writes only the counters they touched).
     pub stats: PathStats,
-    /// Statistics changed since the last commit.
-    pub stats_dirty: bool,
+    /// Whether `stats` are kept (a data-driven model is configured).
+    pub keep_stats: bool,
     /// The committed input offset.
     pub committed: Option<i64>,
     /// Offset of the last message applied in the open batch.
@@ -112,21 +115,39 @@ pub struct PartState {
 
 impl PartState {
     /// Opens the partition's committed state; `snapshot` is the snapshot it
-    /// committed with (or the current one for a new partition).
+    /// committed with (or the current one for a new partition). With a
+    /// data-driven model (`plan`), the path statistics are read with the
+    /// plan's channel cap; without one, stored statistics (of an earlier
+    /// configuration) are deleted at the next commit.
     pub fn open(
         store: &Store,
         id: &PartId,
         payload: Payload,
         cache_bytes: usize,
-        markov_order: usize,
+        plan: &ModelPlan,
         snapshot: impl FnOnce(Option<&str>) -> Result<Arc<Snapshot>>,
     ) -> Result<Self> {
         let name = id.store_name();
-        let part = store.partition(&name, cache_bytes)?;
+        let mut part = store.partition(&name, cache_bytes)?;
         let committed = part.offset(&name).with_context(|| format!("reading the offset of partition {name}"))?;
         let clock = part.clock().with_context(|| format!("reading the clock of partition {name}"))?;
-        let stats =
-            part.stats(markov_order).with_context(|| format!("reading the path statistics of partition {name}"))?;
+        let keep_stats = plan.data_driven();
+        let stats = if keep_stats {
+            let mut s = part
+                .stats(plan.markov_order)
+                .with_context(|| format!("reading the path statistics of partition {name}"))?;
+            // Tracked before the cap applies: a lowered cap rewrites them.
+            s.track_changes();
+            s.with_max_channels(plan.max_channels)
+        } else {
+            if part.stage_drop_stats()? {
+                tracing::info!(
+                    partition = %name,
+                    "no data-driven model is configured: the stored path statistics are deleted at the next commit"
+                );
+            }
+            plan.empty_stats()
+        };
         let decisions =
             Decisions::load(part.decisions().with_context(|| format!("reading the decisions of partition {name}"))?);
         let active = part.active_snapshot().with_context(|| format!("reading the snapshot of partition {name}"))?;
@@ -144,7 +165,7 @@ impl PartState {
             payload,
             clock,
             stats,
-            stats_dirty: false,
+            keep_stats,
             committed,
             pending_offset: None,
             batches: 0,
@@ -189,9 +210,9 @@ impl PartState {
             self.decisions.future = self.decisions.future.split_off(&(c.saturating_add(1)));
         }
         self.store.stage_clock(&self.clock);
-        if self.stats_dirty {
-            self.store.stage_stats(&self.stats);
-            self.stats_dirty = false;
+        if self.keep_stats {
+            // Only the counters this batch changed (nothing when none did).
+            self.store.stage_stats(&mut self.stats)?;
         }
         if let Some(s) = self.adopt.take() {
             self.snapshot = s;
