@@ -158,7 +158,13 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
         let addr = l.local_addr()?;
         let authenticated = token.is_some();
         let router = crate::embedded::http::count_refusals(
-            crate::embedded::http::ingest_router(tx, Pseudonymizer::new(&key), cfg.embedded.max_body_bytes, token),
+            crate::embedded::http::ingest_router(
+                tx,
+                Pseudonymizer::new(&key),
+                cfg.embedded.max_body_bytes,
+                cfg.embedded.queue_requests,
+                token,
+            ),
             metrics.clone(),
         );
         let n = http_stop.clone();

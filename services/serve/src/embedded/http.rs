@@ -119,6 +119,29 @@ impl IngestReply {
 struct IngestState {
     tx: SyncSender<IngestRequest>,
     pseudo: apportion_engine::Pseudonymizer,
+    /// Bodies that may be read at once.
+    slots: std::sync::Arc<tokio::sync::Semaphore>,
+}
+
+/// A slot for reading one request body, taken before the body is read
+/// (extractors of the request head run first) and given back by the
+/// handler once the body is in memory; none free: `429`.
+struct UploadSlot(#[allow(dead_code)] tokio::sync::OwnedSemaphorePermit);
+
+impl axum::extract::FromRequestParts<IngestState> for UploadSlot {
+    type Rejection = Response;
+
+    async fn from_request_parts(
+        _parts: &mut axum::http::request::Parts,
+        state: &IngestState,
+    ) -> Result<Self, Self::Rejection> {
+        state
+            .slots
+            .clone()
+            .try_acquire_owned()
+            .map(UploadSlot)
+            .map_err(|_| too_many("too many ingest bodies are being read at once"))
+    }
 }
 
 /// The ingest router: `POST /v1/events` with NDJSON lines. 202 when every
@@ -128,17 +151,23 @@ struct IngestState {
 /// harmless because ids are deduplicated); 413 when the body is longer
 /// than `max_body`; 429 with `Retry-After` when `tx` is full; 401 without
 /// the right bearer token when `token` is set.
+///
+/// At most `uploads` request bodies are read at once: one more gets `429`
+/// before its body is read, so ingest holds at most `uploads` bodies being
+/// read plus the queue's.
 pub fn ingest_router(
     tx: SyncSender<IngestRequest>,
     pseudo: apportion_engine::Pseudonymizer,
     max_body: usize,
+    uploads: usize,
     token: Option<BearerToken>,
 ) -> Router {
+    let slots = std::sync::Arc::new(tokio::sync::Semaphore::new(uploads));
     let router = Router::new()
-        .route("/v1/events", post(ingest))
+        .route("/v1/events", post(ingest_handler))
         .route("/v1/erase", post(erase))
         .layer(DefaultBodyLimit::max(max_body))
-        .with_state(IngestState { tx, pseudo });
+        .with_state(IngestState { tx, pseudo, slots });
     match token {
         Some(t) => crate::auth::protect(router, t),
         None => router,
@@ -177,7 +206,8 @@ pub fn split_lines(body: &[u8]) -> Vec<(usize, &[u8])> {
 /// for the user (by key), timed now, through the same queue and pipeline as
 /// ingested events (so it is applied in order, deduplicated and audited
 /// like one; contract: HTTP ingest).
-async fn erase(State(s): State<IngestState>, body: Bytes) -> Response {
+async fn erase(State(s): State<IngestState>, slot: UploadSlot, body: Bytes) -> Response {
+    drop(slot);
     let req = match crate::erase_request::EraseRequest::parse(&body, &s.pseudo) {
         Ok(r) => r,
         Err(e) => return (StatusCode::BAD_REQUEST, format!("{e}\n")).into_response(),
@@ -185,6 +215,22 @@ async fn erase(State(s): State<IngestState>, body: Bytes) -> Response {
     let mut line = req.event_line(crate::pipeline::now_ms());
     line.push(b'\n');
     ingest(State(s), Bytes::from(line)).await
+}
+
+/// `POST /v1/events`: the body is read under an upload slot.
+async fn ingest_handler(State(s): State<IngestState>, slot: UploadSlot, body: Bytes) -> Response {
+    drop(slot);
+    ingest(State(s), body).await
+}
+
+/// `429` with `Retry-After`: nothing of the request was applied.
+fn too_many(why: &str) -> Response {
+    (
+        StatusCode::TOO_MANY_REQUESTS,
+        [(header::RETRY_AFTER, RETRY_AFTER_SECONDS.to_string())],
+        format!("{why}; nothing of this one was applied, retry after the Retry-After seconds\n"),
+    )
+        .into_response()
 }
 
 async fn ingest(State(s): State<IngestState>, body: Bytes) -> Response {
@@ -195,14 +241,7 @@ async fn ingest(State(s): State<IngestState>, body: Bytes) -> Response {
     let (reply, rx) = tokio::sync::oneshot::channel();
     match s.tx.try_send(IngestRequest { body, reply }) {
         Ok(()) => {}
-        Err(TrySendError::Full(_)) => {
-            return (
-                StatusCode::TOO_MANY_REQUESTS,
-                [(header::RETRY_AFTER, RETRY_AFTER_SECONDS.to_string())],
-                "too many ingest requests are waiting; nothing of this one was applied, retry after the Retry-After seconds\n",
-            )
-                .into_response()
-        }
+        Err(TrySendError::Full(_)) => return too_many("too many ingest requests are waiting"),
         Err(TrySendError::Disconnected(_)) => {
             return (StatusCode::SERVICE_UNAVAILABLE, "the service is shutting down\n").into_response()
         }
@@ -267,7 +306,7 @@ mod tests {
     async fn body_over_the_limit_is_413() {
         let (tx, rx) = std::sync::mpsc::sync_channel(4);
         answer_all(rx);
-        let addr = serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 64, None)).await;
+        let addr = serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 64, 16, None)).await;
         let (status, _, _) = post(addr, "", &[b'x'; 65]).await;
         // RFC 9110 section 15.5.14: 413 Content Too Large.
         assert_eq!(status, 413);
@@ -283,6 +322,7 @@ mod tests {
             tx,
             apportion_engine::Pseudonymizer::new(b"http-test-key"),
             1 << 20,
+            16,
             Some(BearerToken::new("mF_9.B5f-4.1JqM")),
         ))
         .await;
@@ -310,7 +350,7 @@ mod tests {
         let (held, _held_rx) = tokio::sync::oneshot::channel();
         tx.try_send(IngestRequest { body: Bytes::from_static(b"{}"), reply: held }).unwrap();
         let addr =
-            serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 1 << 20, None)).await;
+            serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 1 << 20, 16, None)).await;
         let (status, head, _) = post(addr, "", b"{}\n").await;
         assert_eq!(status, 429);
         // RFC 9110 section 10.2.3: Retry-After as delay-seconds.
@@ -323,11 +363,35 @@ mod tests {
     }
 
     #[tokio::test]
+    async fn uploads_beyond_the_limit_are_429_before_their_body_is_read() {
+        // One request in flight at most: an upload whose body is still
+        // arriving holds the slot, so a second request is refused at once
+        // (RFC 9110 section 15.5.30) without reading its body; once the
+        // first is answered the slot is free again.
+        let (tx, rx) = std::sync::mpsc::sync_channel(16);
+        answer_all(rx);
+        let addr =
+            serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 1 << 20, 1, None)).await;
+        let mut slow = tokio::net::TcpStream::connect(addr).await.unwrap();
+        slow.write_all(b"POST /v1/events HTTP/1.0\r\nHost: localhost\r\nContent-Length: 3\r\n\r\n{}").await.unwrap();
+        tokio::time::sleep(std::time::Duration::from_millis(200)).await;
+        let (status, head, _) = post(addr, "", b"{}\n").await;
+        assert_eq!(status, 429);
+        assert!(head.contains(&format!("retry-after: {RETRY_AFTER_SECONDS}")), "{head}");
+        slow.write_all(b"\n").await.unwrap();
+        let mut buf = Vec::new();
+        slow.read_to_end(&mut buf).await.unwrap();
+        assert!(String::from_utf8_lossy(&buf).starts_with("HTTP/1.0 202"), "{}", String::from_utf8_lossy(&buf));
+        let (status, _, body) = post(addr, "", b"{}\n").await;
+        assert_eq!(status, 202, "{body}");
+    }
+
+    #[tokio::test]
     async fn an_empty_body_is_answered() {
         // Nobody reads the queue: an empty body must not wait for it.
         let (tx, _rx) = std::sync::mpsc::sync_channel(1);
         let addr =
-            serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 1 << 20, None)).await;
+            serve(ingest_router(tx, apportion_engine::Pseudonymizer::new(b"http-test-key"), 1 << 20, 16, None)).await;
         for body in [&b""[..], b"\n\r\n  \n"] {
             let (status, _, reply) =
                 tokio::time::timeout(std::time::Duration::from_secs(10), post(addr, "", body)).await.expect("answered");
