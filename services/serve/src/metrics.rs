@@ -68,6 +68,8 @@ pub struct Metrics {
     pub store_size: IntGauge,
     /// apportion_state_oldest_event_age_seconds.
     pub state_oldest_age: IntGauge,
+    /// apportion_processing_last_turn_timestamp_seconds.
+    pub loop_turn: IntGauge,
     /// apportion_store_disk_available_bytes.
     pub disk_available: IntGauge,
     /// apportion_model_last_refit_timestamp_seconds{model}.
@@ -229,6 +231,10 @@ impl Metrics {
             watermark_lag,
             consumer_lag,
             store_size: gauge("apportion_store_size_bytes", "Size of the sled store on disk."),
+            loop_turn: gauge(
+                "apportion_processing_last_turn_timestamp_seconds",
+                "Unix time at which the processing loop last started a turn (it turns at least every few seconds while it works).",
+            ),
             state_oldest_age: gauge(
                 "apportion_state_oldest_event_age_seconds",
                 "Wall-clock age, at the last state scan, of the oldest event held in a stored journey (0: none).",

@@ -126,6 +126,8 @@ pub fn write_sinks(
                         if stop.load(Ordering::SeqCst) {
                             return shutdown();
                         }
+                        // Alive, waiting for the sink (not stuck).
+                        metrics.loop_turn.set(crate::pipeline::now_ms() / 1000);
                         std::thread::sleep(SLICE.min(until.saturating_duration_since(Instant::now())));
                     }
                     backoff = (backoff * 2).min(MAX_BACKOFF);
@@ -189,6 +191,9 @@ pub fn run_loop(
     publish_models(&pipeline, &shared);
     let result = (|| -> Result<()> {
         while !stop.load(Ordering::SeqCst) {
+            // A loop that stops turning (a call that never returns) shows
+            // here and in the ApportionProcessingStalled alert.
+            metrics.loop_turn.set(crate::pipeline::now_ms() / 1000);
             let batch = source.poll(&mut pipeline, limit.get(), Duration::from_millis(200))?;
             let started = Instant::now();
             let had_input = !batch.is_empty();

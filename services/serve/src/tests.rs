@@ -204,10 +204,14 @@ fn run_loop_over_a_finite_source_equals_replay() {
         Box::new(source),
         vec![Box::new(sink.clone())],
         Arc::new(AtomicBool::new(false)),
-        metrics,
+        metrics.clone(),
         Arc::new(Mutex::new(Shared::default())),
     )
     .unwrap();
+    // The loop showed it was alive, just now (docs/telemetry.md,
+    // apportion_processing_last_turn_timestamp_seconds).
+    let turned = metrics.loop_turn.get();
+    assert!((crate::pipeline::now_ms() / 1000 - turned).abs() <= 60, "last turn at {turned}");
     let text: Vec<String> = lines.iter().map(|l| String::from_utf8(l.clone()).unwrap()).collect();
     let refs: Vec<&str> = text.iter().map(String::as_str).collect();
     let want = replay_lines(&refs, cfg.rules(), &Pseudonymizer::new(KEY), &ModelPlan::rules());
