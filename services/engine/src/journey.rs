@@ -164,7 +164,8 @@ impl Journey {
     /// Adds a touch in (ts, seq) order under the limits of `rules`: in the
     /// touch's run (see [`Rules::max_touches`]), touches more than
     /// `max_age_ms` older than the run's newest are dropped, then the oldest
-    /// while the run holds more than `max_touches`. The new touch itself may
+    /// while the run holds more than `max_touches` (more than one when the
+    /// new touch joined two runs into one). The new touch itself may
     /// be the one dropped (it arrived late and is the oldest).
     pub fn add_touch_capped(&mut self, t: Touch, rules: &Rules) -> Dropped {
         let at = self.touches.partition_point(|x| (x.ts, x.seq) <= (t.ts, t.seq));
@@ -188,9 +189,12 @@ impl Journey {
             end -= old;
             dropped.age = old;
         }
+        // Usually one over; more when a late touch bridged the gap between
+        // two runs and they became one.
         if rules.max_touches > 0 && end - start > rules.max_touches {
-            self.touches.remove(start);
-            dropped.cap = 1;
+            let over = end - start - rules.max_touches;
+            self.touches.drain(start..start + over);
+            dropped.cap = over;
         }
         dropped
     }

@@ -326,3 +326,30 @@ fn touches_older_than_the_age_limit_leave_their_run() {
     let r = run(&refs(&with_conv), Rules { max_age_ms: 0, ..rules });
     assert_eq!(touches_of(&r, "c"), vec![Some("t3".into())]);
 }
+
+#[test]
+fn a_late_touch_joining_two_runs_keeps_the_cap() {
+    // max_touches 3, expiry 10 days (contract: Journey rules, Touch limits;
+    // derived by hand): days 0, 1 and days 20, 21 are two runs (a 19-day
+    // gap). A late touch on day 10 closes the gap (9 and 10 days, neither
+    // longer than expiry): one run of five, so the two oldest go at once.
+    // Found by the engine fuzz target (fuzz/regressions/engine).
+    use apportion_engine::journey::{Journey, Touch};
+    let rules = Rules { max_touches: 3, expiry_ms: 10 * DAY, ..Rules::default() };
+    let t = |d: i64, seq: u64| Touch {
+        event_id: format!("d{d}"),
+        ts: d * DAY,
+        seq,
+        channel: "email".into(),
+        campaign: None,
+        interaction: apportion_engine::contract::Interaction::Click,
+    };
+    let mut j = Journey::default();
+    for (seq, d) in [0, 1, 20, 21].into_iter().enumerate() {
+        assert_eq!(j.add_touch_capped(t(d, seq as u64), &rules).cap, 0);
+    }
+    let dropped = j.add_touch_capped(t(10, 9), &rules);
+    assert_eq!(dropped.cap, 2);
+    let kept: Vec<&str> = j.touches.iter().map(|x| x.event_id.as_str()).collect();
+    assert_eq!(kept, ["d10", "d20", "d21"]);
+}
