@@ -279,8 +279,11 @@ const PUBLISHED_V1: &[(&str, &[(&str, i32)])] = &[
             ("goal", 9),
             ("value", 10),
             ("currency", 11),
+            ("user_key", 12),
+            ("consent", 13),
         ],
     ),
+    ("Consent", &[("measurement", 1)]),
     (
         "CreditRow",
         &[
