@@ -21,7 +21,8 @@
 //!
 //! A failed produce, flush or offset commit does not stop the service: the
 //! stage waits (exponential backoff up to 30 s), rewinds its consumer to the
-//! last committed input offsets and reads the same messages again. Offsets
+//! last committed input offsets and reads the same messages again, with a
+//! new producer (one that failed to deliver may stay stuck). Offsets
 //! are committed asynchronously: no call of the stage waits without a time
 //! limit, so a broker restart during a rebalance cannot stall it. Messages
 //! produced twice are the same records; stage 2 drops the second copy of an
@@ -131,6 +132,7 @@ impl SourceClocks {
 pub struct Repartitioner {
     consumer: BaseConsumer,
     producer: BaseProducer<DeliveryCounter>,
+    kafka: crate::config::KafkaConfig,
     topic: String,
     partitions_out: i32,
     dead_topic: String,
@@ -176,6 +178,7 @@ impl Repartitioner {
         Ok(Repartitioner {
             consumer,
             producer: producer(k)?,
+            kafka: k.clone(),
             topic: k.repartition_topic.clone(),
             partitions_out,
             dead_topic: k.dead_letter_topic.clone(),
@@ -212,6 +215,7 @@ impl Repartitioner {
                 self.retry_at = Some(Instant::now() + self.backoff);
                 self.backoff = (self.backoff * 2).min(MAX_BACKOFF);
                 self.rewind();
+                super::sink::renew(&mut self.producer, &self.kafka, "repartition");
             }
         }
         Ok(())

@@ -44,6 +44,20 @@ pub fn producer(k: &KafkaConfig) -> Result<BaseProducer<DeliveryCounter>> {
     c.create_with_context(DeliveryCounter::default()).context("creating the Kafka producer")
 }
 
+/// Replaces `p` with a new producer after it failed to deliver (its
+/// messages not yet delivered are purged: the caller sends them again). An
+/// idempotent producer whose broker restarted can stay unable to deliver;
+/// a new one starts from new connections and a new producer id.
+pub(crate) fn renew(p: &mut BaseProducer<DeliveryCounter>, k: &KafkaConfig, what: &str) {
+    match producer(k) {
+        Ok(fresh) => {
+            tracing::info!(producer = what, "replacing the Kafka producer after a failed delivery");
+            *p = fresh;
+        }
+        Err(e) => tracing::warn!(producer = what, error = %format!("{e:#}"), "cannot create a new Kafka producer; keeping the old one"),
+    }
+}
+
 pub(crate) fn send(
     p: &BaseProducer<DeliveryCounter>,
     topic: &str,
@@ -98,6 +112,7 @@ pub(crate) fn flush_checked(
 /// Credit rows, paths and dead letters to their topics, keyed by user key.
 pub struct KafkaSink {
     producer: BaseProducer<DeliveryCounter>,
+    kafka: KafkaConfig,
     credit_topic: String,
     paths_topic: String,
     dead_topic: String,
@@ -111,6 +126,7 @@ impl KafkaSink {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
         Ok(KafkaSink {
             producer: producer(k)?,
+            kafka: k.clone(),
             credit_topic: k.credit_topic.clone(),
             paths_topic: k.paths_topic.clone(),
             dead_topic: k.dead_letter_topic.clone(),
@@ -126,6 +142,21 @@ impl Sink for KafkaSink {
     }
 
     fn write(&mut self, batch: &OutputBatch) -> Result<(), SinkError> {
+        let r = self.send_batch(batch);
+        if r.is_err() {
+            // The run loop retries the same batch: with a new producer.
+            renew(&mut self.producer, &self.kafka, "output");
+        }
+        r
+    }
+
+    fn close(&mut self) -> Result<(), SinkError> {
+        self.producer.flush(Duration::from_secs(30)).map_err(|e| SinkError::fatal("kafka", e.to_string()))
+    }
+}
+
+impl KafkaSink {
+    fn send_batch(&mut self, batch: &OutputBatch) -> Result<(), SinkError> {
         let before = self.producer.context().failed.load(Ordering::SeqCst);
         let err = |e: KafkaError| SinkError::retry("kafka", e.to_string());
         for r in &batch.credit {
@@ -145,9 +176,5 @@ impl Sink for KafkaSink {
             send(&self.producer, &self.erasure_topic, Some(&e.user_key.to_hex()), &bytes).map_err(err)?;
         }
         flush_checked(&self.producer, before, "kafka")
-    }
-
-    fn close(&mut self) -> Result<(), SinkError> {
-        self.producer.flush(Duration::from_secs(30)).map_err(|e| SinkError::fatal("kafka", e.to_string()))
     }
 }
