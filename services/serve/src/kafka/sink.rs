@@ -54,7 +54,9 @@ pub(crate) fn renew(p: &mut BaseProducer<DeliveryCounter>, k: &KafkaConfig, what
             tracing::info!(producer = what, "replacing the Kafka producer after a failed delivery");
             *p = fresh;
         }
-        Err(e) => tracing::warn!(producer = what, error = %format!("{e:#}"), "cannot create a new Kafka producer; keeping the old one"),
+        Err(e) => {
+            tracing::warn!(producer = what, error = %format!("{e:#}"), "cannot create a new Kafka producer; keeping the old one")
+        }
     }
 }
 
