@@ -91,6 +91,9 @@ mod tests {
 
     #[test]
     fn a_raw_id_and_its_key_name_the_same_user() {
+        // Contract: HTTP ingest, Erase (derived by hand): a raw id and its
+        // key (HMAC-SHA256, RFC 2104; the engine's own test pins the HMAC
+        // against RFC 4231) make the same request.
         let p = Pseudonymizer::new(KEY);
         let by_id = EraseRequest::parse(br#"{"user_id":"u-1","request_id":"r1"}"#, &p).unwrap();
         assert_eq!(by_id.user_key, p.key_for("u-1"));
@@ -104,6 +107,8 @@ mod tests {
 
     #[test]
     fn bad_bodies_say_what_is_wrong() {
+        // The 400 reasons of docs/contract.md (HTTP ingest, Erase), derived
+        // by hand; the id limits are those of "Input events".
         let p = Pseudonymizer::new(KEY);
         let k = "ab".repeat(32);
         for (body, want) in [

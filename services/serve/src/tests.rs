@@ -44,6 +44,14 @@ fn pipeline(cfg: Config, store: Store) -> Pipeline {
     Pipeline::new(cfg, Pseudonymizer::new(KEY), store, Metrics::new(prometheus::Registry::new())).unwrap()
 }
 
+/// A pipeline over a temporary store with `part()` open, and its metrics.
+fn metered(cfg: Config) -> (Pipeline, Metrics) {
+    let metrics = Metrics::new(prometheus::Registry::new());
+    let mut p = Pipeline::new(cfg, Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    (p, metrics)
+}
+
 fn msgs(first_offset: i64, payloads: Vec<Vec<u8>>, arrived: Instant) -> Vec<InMsg> {
     payloads
         .into_iter()
@@ -710,9 +718,7 @@ fn an_event_without_consent_is_counted_not_stored() {
     // consent is credited. The later touch of u at 300s did not move the
     // watermark either: with allowed lateness 0, v's conversion at 200s is
     // still on time.
-    let metrics = Metrics::new(prometheus::Registry::new());
-    let mut p = Pipeline::new(config(), Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
-    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let (mut p, metrics) = metered(config());
     let no = |id: &str, user: &str, ts: i64| {
         format!(r#"{{"type":"touch","event_id":"{id}","user_id":"{user}","timestamp":{ts},"channel":"email","consent":{{"measurement":false}}}}"#)
             .into_bytes()
@@ -756,10 +762,7 @@ fn touches_over_the_cap_are_dropped_and_counted() {
     // max_touches_per_journey 2 (contract: Journey rules, Touch limits;
     // derived by hand): three touches in one run drop the oldest, the
     // conversion credits the two newest, the counter says 1.
-    let metrics = Metrics::new(prometheus::Registry::new());
-    let cfg = Config { max_touches_per_journey: 2, ..config() };
-    let mut p = Pipeline::new(cfg, Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
-    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let (mut p, metrics) = metered(Config { max_touches_per_journey: 2, ..config() });
     let mut out = OutputBatch::default();
     let batch = vec![
         touch("a", "u", 100 * SEC, "email"),
@@ -963,12 +966,9 @@ fn the_state_scan_reports_the_oldest_stored_event() {
     // the oldest event held is u's touch three days before now, so the
     // gauge reads 3 x 86 400 s (plus the seconds the test takes); the
     // newer touches of u and v do not lower it.
-    let metrics = Metrics::new(prometheus::Registry::new());
     let now = crate::pipeline::now_ms();
     let day = 86_400 * SEC;
-    let cfg = Config { state_scan_interval: Period(3_600 * SEC), ..config() };
-    let mut p = Pipeline::new(cfg, Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
-    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let (mut p, metrics) = metered(Config { state_scan_interval: Period(3_600 * SEC), ..config() });
     let mut out = OutputBatch::default();
     let batch = vec![
         touch("b", "u", now - 3 * day, "seo"),
