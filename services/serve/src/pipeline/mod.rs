@@ -109,6 +109,7 @@ impl Pipeline {
     pub fn close_partition(&mut self, id: &PartId) -> Result<()> {
         if let Some(p) = self.parts.get_mut(id) {
             p.commit(id, self.cfg.dedupe_horizon.ms())?;
+            self.store.flush()?;
         }
         self.parts.remove(id);
         self.metrics.watermark_lag.remove_label_values(&[&id.source, &id.partition.to_string()]).ok();
@@ -446,6 +447,9 @@ impl Pipeline {
         for (id, p) in self.parts.iter_mut() {
             p.commit(id, horizon)?;
         }
+        // Durable before anything that depends on it (the group commit of
+        // the offsets, an HTTP answer): one flush for all partitions.
+        self.store.flush()?;
         let in_use: Vec<&str> = self.parts.values().filter_map(|p| p.snapshot.version()).collect();
         let in_use: Vec<String> = in_use.into_iter().map(str::to_string).collect();
         let refs: Vec<&str> = in_use.iter().map(String::as_str).collect();

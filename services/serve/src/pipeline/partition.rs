@@ -198,7 +198,8 @@ impl PartState {
     /// in one atomic batch, forgetting decisions the committed state already
     /// reflects, and the removal of remembered event ids older than
     /// `dedupe_horizon_ms` before the watermark (the store prunes once
-    /// enough have accumulated).
+    /// enough have accumulated). The batch is applied, not yet durable: the
+    /// caller flushes the store.
     pub fn commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<()> {
         self.persist_decisions()?;
         if let Some(o) = self.pending_offset.take() {
@@ -226,7 +227,9 @@ impl PartState {
         if self.clock.watermark != i64::MIN {
             self.store.prune_seen(self.clock.watermark.saturating_sub(dedupe_horizon_ms))?;
         }
-        self.store.commit(true)?;
+        // Not flushed here: the caller flushes the store once for every
+        // partition it commits (one sled flush per batch, not per partition).
+        self.store.commit(false)?;
         self.batches += 1;
         Ok(())
     }
