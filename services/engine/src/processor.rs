@@ -11,7 +11,9 @@
 //! [`MemStore`] is the in-memory store used by tests and small runs, and the
 //! sled-backed store lives in the `apportion-store` crate.
 
-use std::collections::{BTreeMap, BTreeSet, HashMap};
+use std::collections::{BTreeMap, BTreeSet};
+
+use foldhash::HashMap;
 
 use crate::journey::{Conversion, Dropped, Journey, Outcome, Rules, Touch};
 use apportion_contract::{Event, EventKind, UserKey};

@@ -1,7 +1,11 @@
 //! One partition's state: journeys with a write-back cache, the wake index
 //! (in memory), duplicate detection, offsets and metadata, committed in one sled batch.
 
-use std::collections::{BTreeSet, HashMap};
+use std::collections::BTreeSet;
+
+// User keys are HMACs under a secret key; hashed with a per-process random
+// seed (foldhash), much cheaper than SipHash on 32 bytes.
+use foldhash::{HashMap, HashMapExt};
 
 use apportion_engine::{Journey, JourneyStore, UserKey};
 

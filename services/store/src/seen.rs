@@ -20,7 +20,8 @@
 //! (between 28 and 56 with the table's load), up to 1.5 times the live ids
 //! between prunes (a prune runs once the map has grown by half).
 
-use std::collections::HashMap;
+// Digests of event ids, hashed with a per-process random seed (foldhash).
+use foldhash::HashMap;
 
 use crate::changes::ChangeSet;
 use crate::codec::{from_ordered_i64, ordered_i64};

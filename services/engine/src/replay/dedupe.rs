@@ -4,7 +4,10 @@
 //! in-memory [`super::replay_lines`], the load tools) decides duplicates here,
 //! while reading its input in input order, before sorting by time.
 
-use std::collections::HashSet;
+// Digests are SHA-256 of attacker-chosen ids, so the set hashes them with
+// a per-process random seed (foldhash), not by their own bits; SipHash
+// (the standard hasher) cost 7 % of a replay (load/RESULTS.md section 7).
+use foldhash::{HashSet, HashSetExt};
 
 use apportion_contract::{Event, EventKind};
 use sha2::{Digest, Sha256};
@@ -47,6 +50,12 @@ pub fn dedupe_digest(kind: EventKind, event_id: &str, user: &[u8], timestamp_ms:
     }
 }
 
+/// [`dedupe_digest`] of a parsed event (before pseudonymization: its raw
+/// user id).
+pub fn event_digest(ev: &Event) -> u128 {
+    dedupe_digest(ev.kind, &ev.event_id, ev.user_id.as_bytes(), ev.timestamp_ms)
+}
+
 /// Remembers the event ids seen so far, in input order.
 #[derive(Debug, Default)]
 pub struct FirstSeen {
@@ -78,6 +87,12 @@ impl FirstSeen {
     /// it): its id, or for an erase without one its user and time
     /// ([`dedupe_digest`]).
     pub fn first(&mut self, ev: &Event) -> bool {
-        self.seen.insert(dedupe_digest(ev.kind, &ev.event_id, ev.user_id.as_bytes(), ev.timestamp_ms))
+        self.first_digest(event_digest(ev))
+    }
+
+    /// [`FirstSeen::first`] for an identity already computed with
+    /// [`event_digest`] (e.g. on another thread).
+    pub fn first_digest(&mut self, digest: u128) -> bool {
+        self.seen.insert(digest)
     }
 }

@@ -21,7 +21,7 @@ use crate::processor::{Effect, JourneyEvent, JourneyStore, MemStore, Processor};
 use crate::pseudonym::Pseudonymizer;
 use crate::registry::ModelPlan;
 
-pub use dedupe::{dedupe_digest, erase_digest, event_id_digest, FirstSeen};
+pub use dedupe::{dedupe_digest, erase_digest, event_digest, event_id_digest, FirstSeen};
 pub use two_pass::{Pass, Replayed};
 
 /// The replay loop over events in path order (already deduplicated).
