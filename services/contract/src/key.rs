@@ -11,16 +11,23 @@ pub struct UserKey(pub [u8; 32]);
 impl UserKey {
     /// Lower-case hex, 64 characters (the `user_key` output field).
     pub fn to_hex(&self) -> String {
-        hex::encode(self.0)
+        self.hex().as_str().to_owned()
+    }
+
+    /// The 64 hex digits, without allocating (e.g. a message key per row).
+    pub fn hex(&self) -> Hex {
+        const DIGITS: &[u8; 16] = b"0123456789abcdef";
+        let mut out = [0u8; 64];
+        for (i, b) in self.0.iter().enumerate() {
+            out[2 * i] = DIGITS[(b >> 4) as usize];
+            out[2 * i + 1] = DIGITS[(b & 15) as usize];
+        }
+        Hex(out)
     }
 
     /// Writes the 64 hex digits to `out`.
     pub fn write_hex(&self, out: &mut Vec<u8>) {
-        const DIGITS: &[u8; 16] = b"0123456789abcdef";
-        for b in self.0 {
-            out.push(DIGITS[(b >> 4) as usize]);
-            out.push(DIGITS[(b & 15) as usize]);
-        }
+        out.extend_from_slice(&self.hex().0);
     }
 
     /// Parses 64 hex digits (either case).
@@ -30,17 +37,26 @@ impl UserKey {
     }
 }
 
+/// A user key's 64 lower-case hex digits, on the stack.
+#[derive(Clone, Copy)]
+pub struct Hex([u8; 64]);
+
+impl Hex {
+    /// The digits as a string.
+    pub fn as_str(&self) -> &str {
+        std::str::from_utf8(&self.0).expect("hex digits are ASCII")
+    }
+}
+
 impl fmt::Display for UserKey {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        let mut buf = Vec::with_capacity(64);
-        self.write_hex(&mut buf);
-        f.write_str(std::str::from_utf8(&buf).expect("hex is ASCII"))
+        f.write_str(self.hex().as_str())
     }
 }
 
 impl serde::Serialize for UserKey {
     fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
-        s.collect_str(self)
+        s.serialize_str(self.hex().as_str())
     }
 }
 
@@ -58,6 +74,9 @@ mod tests {
     #[test]
     fn hex_forms_agree() {
         let k = UserKey(std::array::from_fn(|i| (i * 37) as u8));
+        // Reference: the `hex` crate's lower-case encoding.
+        assert_eq!(k.to_hex(), hex::encode(k.0));
+        assert_eq!(k.hex().as_str(), hex::encode(k.0));
         assert_eq!(k.to_string(), k.to_hex());
         assert_eq!(UserKey::from_hex(&k.to_hex()), Some(k));
         assert_eq!(UserKey::from_hex(&k.to_hex().to_uppercase()), Some(k));

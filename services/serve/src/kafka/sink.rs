@@ -161,13 +161,15 @@ impl KafkaSink {
     fn send_batch(&mut self, batch: &OutputBatch) -> Result<(), SinkError> {
         let before = self.producer.context().failed.load(Ordering::SeqCst);
         let err = |e: KafkaError| SinkError::retry("kafka", e.to_string());
+        // One buffer for every row of the batch (the producer copies each).
+        let mut bytes = Vec::with_capacity(1024);
         for r in &batch.credit {
-            let bytes = encode::credit(self.format, r);
-            send(&self.producer, &self.credit_topic, Some(&r.user_key.to_hex()), &bytes).map_err(err)?;
+            encode::credit_into(self.format, r, &mut bytes);
+            send(&self.producer, &self.credit_topic, Some(r.user_key.hex().as_str()), &bytes).map_err(err)?;
         }
         for p in &batch.paths {
-            let bytes = encode::path(self.format, p);
-            send(&self.producer, &self.paths_topic, Some(&p.user_key.to_hex()), &bytes).map_err(err)?;
+            encode::path_into(self.format, p, &mut bytes);
+            send(&self.producer, &self.paths_topic, Some(p.user_key.hex().as_str()), &bytes).map_err(err)?;
         }
         for d in &batch.dead_letters {
             let bytes = encode::dead_letter(self.format, d);
