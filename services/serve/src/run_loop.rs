@@ -1,9 +1,14 @@
 //! The processing loop: poll a batch from the source, apply it through the
 //! [`Pipeline`], write the output to every sink (retrying with backoff; a
 //! batch is never dropped), then commit state and offsets, then acknowledge
-//! to the source. It runs on one thread; the service around it
-//! ([`crate::service`]) serves HTTP and turns signals into the stop flag.
-//! Stopping finishes the current batch, flushes the store and commits.
+//! to the source. It runs on one thread, and the sinks write on a second:
+//! under a backlog (a batch came back full) the next batch is polled and
+//! applied while the sinks write the previous one, whose commit was
+//! prepared before (see [`Pipeline::prepare_commit`]); light input is
+//! written and committed before the next poll, so latency stays as low.
+//! The service around it ([`crate::service`]) serves HTTP and turns
+//! signals into the stop flag. Stopping finishes the batches in hand,
+//! flushes the store and commits.
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
@@ -174,6 +179,15 @@ impl BatchLimit {
     }
 }
 
+/// A batch whose output the sink thread is writing: what is left to do
+/// once it has.
+struct InFlight {
+    prepared: crate::pipeline::PreparedBatch,
+    statuses: Vec<(crate::source::PartId, Vec<crate::source::MsgStatus>)>,
+    started: Instant,
+    refitted: bool,
+}
+
 /// The processing loop. Returns when `stop` is set (after finishing the
 /// current batch), when a finite source is exhausted (after closing every
 /// journey), or on a permanent error.
@@ -189,81 +203,135 @@ pub fn run_loop(
     let max_ready_lag = pipeline.config().admin.max_ready_lag;
     let mut last_lag = Instant::now() - Duration::from_secs(60);
     publish_models(&pipeline, &shared);
-    let result = (|| -> Result<()> {
-        while !stop.load(Ordering::SeqCst) {
-            // A loop that stops turning (a call that never returns) shows
-            // here and in the ApportionProcessingStalled alert.
-            metrics.loop_turn.set(crate::pipeline::now_ms() / 1000);
-            let batch = source.poll(&mut pipeline, limit.get(), Duration::from_millis(200))?;
-            let started = Instant::now();
-            let had_input = !batch.is_empty();
-            let events: usize = batch.iter().map(|(_, m)| m.len()).sum();
-            limit.after(events);
-            metrics.batch_limit.set(limit.get() as i64);
-            let mut out = OutputBatch::default();
-            let mut statuses = Vec::with_capacity(batch.len());
-            for (id, msgs) in &batch {
-                statuses.push((id.clone(), pipeline.process(id, msgs, &mut out)?));
-            }
-            let finished = !had_input && source.exhausted();
-            let now = Instant::now();
-            for id in pipeline.open_partitions() {
-                pipeline.set_caught_up(&id, source.caught_up(&id), now);
-            }
-            if finished {
-                pipeline.drain(&mut out)?;
-            } else {
-                pipeline.tick(now, &mut out)?;
-            }
-            if had_input || !out.is_empty() {
-                // Decisions that depended on processing time are durable
-                // before any output that depends on them is written.
-                pipeline.persist_decisions()?;
-                match write_sinks(&mut sinks, &out, &stop, &metrics, &shared) {
-                    Ok(Written::Done { stalled }) => {
-                        if stalled {
-                            pipeline.restart_idle_clocks(Instant::now());
-                        }
-                    }
-                    Ok(Written::Abandoned) => {
-                        // Nothing of this batch is committed: it is re-delivered.
-                        pipeline.rollback()?;
-                        break;
-                    }
-                    Err(e) => {
-                        pipeline.rollback()?;
-                        return Err(e);
+    // The sinks write on a thread of their own, so that under a backlog
+    // the next batch is read and applied while the sinks write this one.
+    // The order per batch stays: its output at every sink, then its state
+    // and offsets (prepared before the next batch is applied, written after
+    // the sinks have the output), then the acknowledgement to the source.
+    let sinks_ref = &mut sinks;
+    let result = std::thread::scope(|scope| -> Result<()> {
+        let (job_tx, job_rx) = std::sync::mpsc::sync_channel::<OutputBatch>(1);
+        let (done_tx, done_rx) = std::sync::mpsc::sync_channel::<(OutputBatch, Result<Written>)>(1);
+        {
+            let (stop, metrics, shared) = (stop.clone(), metrics.clone(), shared.clone());
+            std::thread::Builder::new().name("apportion-sinks".into()).spawn_scoped(scope, move || {
+                for out in job_rx {
+                    let written = write_sinks(sinks_ref, &out, &stop, &metrics, &shared);
+                    let go_on = matches!(written, Ok(Written::Done { .. }));
+                    // At most one batch is in flight, so this never waits.
+                    if done_tx.send((out, written)).is_err() || !go_on {
+                        return;
                     }
                 }
-                // A refit takes effect at this commit: the snapshot each
-                // partition credits with is committed with its offsets.
-                let refitted = pipeline.maybe_refit()?;
-                pipeline.commit()?;
-                if refitted {
-                    publish_models(&pipeline, &shared);
-                }
-                feed_comparison(&shared, &out);
-                source.committed(&pipeline, statuses)?;
-                metrics.batch_duration.observe(started.elapsed().as_secs_f64());
-            }
-            if finished {
-                break;
-            }
-            if last_lag.elapsed() >= Duration::from_secs(5) {
-                source.update_lag(&metrics);
-                pipeline.update_gauges();
-                update_disk(&pipeline, &metrics);
-                last_lag = Instant::now();
-            }
-            let lag = source.lag();
-            let ready = source.ready() && (max_ready_lag == 0 || lag.is_none_or(|l| l <= max_ready_lag));
-            metrics.ready.set(ready as i64);
-            let mut s = shared.lock().expect("shared state");
-            s.ready = ready;
-            s.lag = lag;
+            })?;
         }
-        Ok(())
-    })();
+        // The batch whose output the sinks are writing.
+        let mut in_flight: Option<InFlight> = None;
+        // Waits for the sinks to have the batch in flight, then commits it
+        // and acknowledges it. False: shutdown came while a sink held it.
+        let finish = |pipeline: &mut Pipeline, source: &mut Box<dyn Source>, f: InFlight| -> Result<bool> {
+            let (out, written) =
+                done_rx.recv().map_err(|_| anyhow::anyhow!("the sink thread stopped without an answer"))?;
+            match written {
+                Ok(Written::Done { stalled }) => {
+                    if stalled {
+                        pipeline.restart_idle_clocks(Instant::now());
+                    }
+                }
+                Ok(Written::Abandoned) => {
+                    // Nothing of this batch is committed: it is re-delivered.
+                    pipeline.rollback()?;
+                    return Ok(false);
+                }
+                Err(e) => {
+                    pipeline.rollback()?;
+                    return Err(e);
+                }
+            }
+            pipeline.apply_commit(f.prepared)?;
+            if f.refitted {
+                publish_models(pipeline, &shared);
+            }
+            feed_comparison(&shared, &out);
+            source.committed(pipeline, f.statuses)?;
+            metrics.batch_duration.observe(f.started.elapsed().as_secs_f64());
+            Ok(true)
+        };
+        let looped = (|| -> Result<()> {
+            while !stop.load(Ordering::SeqCst) {
+                // A loop that stops turning (a call that never returns) shows
+                // here and in the ApportionProcessingStalled alert.
+                metrics.loop_turn.set(crate::pipeline::now_ms() / 1000);
+                let asked = limit.get();
+                let batch = source.poll(&mut pipeline, asked, Duration::from_millis(200))?;
+                let started = Instant::now();
+                let had_input = !batch.is_empty();
+                let events: usize = batch.iter().map(|(_, m)| m.len()).sum();
+                limit.after(events);
+                metrics.batch_limit.set(limit.get() as i64);
+                let mut out = OutputBatch::default();
+                let mut statuses = Vec::with_capacity(batch.len());
+                for (id, msgs) in &batch {
+                    statuses.push((id.clone(), pipeline.process(id, msgs, &mut out)?));
+                }
+                let finished = !had_input && source.exhausted();
+                let now = Instant::now();
+                for id in pipeline.open_partitions() {
+                    pipeline.set_caught_up(&id, source.caught_up(&id), now);
+                }
+                if finished {
+                    pipeline.drain(&mut out)?;
+                } else {
+                    pipeline.tick(now, &mut out)?;
+                }
+                // The previous batch first: its state is written before this one's.
+                if let Some(f) = in_flight.take() {
+                    if !finish(&mut pipeline, &mut source, f)? {
+                        return Ok(());
+                    }
+                }
+                if had_input || !out.is_empty() {
+                    // Decisions that depended on processing time are durable
+                    // before any output that depends on them is written.
+                    pipeline.persist_decisions()?;
+                    // A refit takes effect at this commit: the snapshot each
+                    // partition credits with is committed with its offsets.
+                    let refitted = pipeline.maybe_refit()?;
+                    let prepared = pipeline.prepare_commit()?;
+                    job_tx.send(out).map_err(|_| anyhow::anyhow!("the sink thread stopped"))?;
+                    let f = InFlight { prepared, statuses, started, refitted };
+                    if events >= asked && !finished {
+                        // A backlog: the next batch is applied while the sinks write.
+                        in_flight = Some(f);
+                    } else if !finish(&mut pipeline, &mut source, f)? {
+                        return Ok(());
+                    }
+                }
+                if finished {
+                    break;
+                }
+                if last_lag.elapsed() >= Duration::from_secs(5) {
+                    source.update_lag(&metrics);
+                    pipeline.update_gauges();
+                    update_disk(&pipeline, &metrics);
+                    last_lag = Instant::now();
+                }
+                let lag = source.lag();
+                let ready = source.ready() && (max_ready_lag == 0 || lag.is_none_or(|l| l <= max_ready_lag));
+                metrics.ready.set(ready as i64);
+                let mut s = shared.lock().expect("shared state");
+                s.ready = ready;
+                s.lag = lag;
+            }
+            // Stopping: the batch in flight is finished (or given up).
+            if let Some(f) = in_flight.take() {
+                finish(&mut pipeline, &mut source, f)?;
+            }
+            Ok(())
+        })();
+        drop(job_tx);
+        looped
+    });
     metrics.ready.set(0);
     shared.lock().expect("shared state").ready = false;
     if let Err(e) = &result {

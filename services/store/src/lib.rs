@@ -63,7 +63,7 @@ pub use codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats, Clock,
     Decision, StoredJourney, JOURNEY_FORMAT_VERSION,
 };
-pub use partition::PartitionStore;
+pub use partition::{PartitionStore, Prepared};
 pub use stats_keys::STATS_COUNTERS_VERSION;
 
 use std::path::{Path, PathBuf};

@@ -5,7 +5,7 @@ use std::collections::BTreeSet;
 
 // User keys are HMACs under a secret key; hashed with a per-process random
 // seed (foldhash), much cheaper than SipHash on 32 bytes.
-use foldhash::{HashMap, HashMapExt};
+use foldhash::{HashMap, HashMapExt, HashSet, HashSetExt};
 
 use apportion_engine::{Journey, JourneyStore, UserKey};
 
@@ -71,6 +71,16 @@ impl Held {
             Held::Encoded(b) => Ok(decode_journey(&b)?.journey),
         }
     }
+}
+
+/// A commit collected by [`PartitionStore::prepare`], not yet written.
+#[derive(Debug)]
+pub struct Prepared {
+    changes: ChangeSet,
+    /// The journeys it writes.
+    written: Vec<UserKey>,
+    /// The change in persisted journeys once written.
+    delta: i64,
 }
 
 /// One cached user.
@@ -155,6 +165,9 @@ pub struct PartitionStore {
     wakes: BTreeSet<(i64, UserKey)>,
     seen: Seen,
     staged: ChangeSet,
+    /// Journeys of a prepared commit not yet applied (their entries stay
+    /// in the cache until it is).
+    unapplied: HashSet<UserKey>,
     bytes: usize,
     budget: usize,
     /// Journeys persisted in sled (committed state).
@@ -210,6 +223,7 @@ impl PartitionStore {
             wakes,
             seen,
             staged: ChangeSet::default(),
+            unapplied: HashSet::new(),
             bytes: 0,
             budget,
             open_journeys,
@@ -470,6 +484,17 @@ impl PartitionStore {
     /// (decisions, which `record_decisions` writes before a commit, and the
     /// overflow `spill_if_over_budget` writes in replay mode are not in it).
     pub fn commit(&mut self, durable: bool) -> Result<ChangeSet, StoreError> {
+        let prepared = self.prepare();
+        self.apply(prepared, durable)
+    }
+
+    /// The first half of [`PartitionStore::commit`]: collects every change
+    /// since the last commit (encoding the changed journeys) and marks the
+    /// cache clean, without writing anything. Until [`PartitionStore::apply`]
+    /// writes it, every journey it holds stays in the cache (reads never ask
+    /// sled for them), so events may be applied meanwhile; their changes go
+    /// to the next commit. Apply prepared commits in the order prepared.
+    pub fn prepare(&mut self) -> Prepared {
         let mut changes = ChangeSet::default();
         let mut dirty: Vec<UserKey> = self.cache.iter().filter(|(_, c)| c.dirty).map(|(k, _)| *k).collect();
         // In key order: the same changes give the same set.
@@ -480,19 +505,32 @@ impl PartitionStore {
         }
         self.seen.persist_into(&mut changes);
         changes.extend(std::mem::take(&mut self.staged));
+        self.unapplied.extend(dirty.iter().copied());
+        Prepared { changes, written: dirty, delta }
+    }
+
+    /// The second half of [`PartitionStore::commit`]: writes a prepared
+    /// commit in one atomic batch (with `durable`, also waits until sled
+    /// has it on disk), then lets the cache drop what is now in sled:
+    /// closed journeys it wrote that nothing changed since, and the least
+    /// recently used clean entries when over budget.
+    pub fn apply(&mut self, prepared: Prepared, durable: bool) -> Result<ChangeSet, StoreError> {
+        let Prepared { changes, written, delta } = prepared;
         changes.apply(&self.tree)?;
         if durable {
             self.db.flush()?;
         }
         self.open_journeys = (self.open_journeys as i64 + delta).max(0) as u64;
-        for key in &dirty {
-            if self.cache.get(key).is_some_and(|c| c.journey.is_none()) {
+        self.unapplied.clear();
+        for key in &written {
+            if self.cache.get(key).is_some_and(|c| c.journey.is_none() && !c.dirty) {
                 self.remove_entry(key);
             }
         }
         if self.bytes > self.budget {
-            // Everything is clean now: evicting only drops memory.
-            self.evict_lru(usize::MAX)?;
+            // Only clean entries (their state is in sled now): evicting
+            // them only drops memory. Changes made since the prepare stay.
+            self.evict_lru(usize::MAX, true)?;
         }
         Ok(changes)
     }
@@ -502,7 +540,7 @@ impl PartitionStore {
     /// enough, evicts least recently used entries, writing those with
     /// uncommitted changes to sled first (in batches of `chunk` entries; not
     /// atomic as a whole).
-    fn evict_lru(&mut self, chunk: usize) -> Result<(), StoreError> {
+    fn evict_lru(&mut self, chunk: usize, clean_only: bool) -> Result<(), StoreError> {
         let target = self.budget - self.budget / 4;
         let mut order: Vec<(u64, UserKey)> = self.cache.iter().map(|(k, c)| (c.last_used, *k)).collect();
         order.sort_unstable();
@@ -530,6 +568,9 @@ impl PartitionStore {
         for (_, key) in order {
             if left <= target {
                 break;
+            }
+            if clean_only && self.cache[&key].dirty {
+                continue;
             }
             left -= self.cache[&key].bytes();
             victims.push(key);
@@ -565,7 +606,7 @@ impl PartitionStore {
     pub fn spill_if_over_budget(&mut self) -> Result<bool, StoreError> {
         if self.bytes > self.budget {
             // Smaller sled batches keep sled's own memory small.
-            self.evict_lru(10_000)?;
+            self.evict_lru(10_000, false)?;
             return Ok(true);
         }
         Ok(false)
@@ -647,6 +688,18 @@ impl JourneyStore for PartitionStore {
             self.wakes.remove(&(w, *key));
         }
         if journey.is_empty() && !persisted_exists {
+            if self.unapplied.contains(key) {
+                // A prepared commit not yet applied deletes the record
+                // sled still holds: the entry stays (empty, nothing more to
+                // write) so that no read finds that record meanwhile.
+                let c = self.cache.get_mut(key).expect("entry loaded");
+                self.bytes -= c.size;
+                c.journey = None;
+                c.size = 0;
+                c.wake = None;
+                c.dirty = false;
+                return Ok(());
+            }
             // Nothing in sled to delete: forget the user right away.
             self.remove_entry(key);
             return Ok(());
@@ -934,5 +987,98 @@ mod tests {
                 proptest::prop_assert_eq!(restored.due(w).unwrap(), p.due(w).unwrap());
             }
         }
+    }
+
+    proptest::proptest! {
+        /// A commit prepared, then applied after more operations (as the
+        /// service does while the sinks write a batch), gives the same
+        /// reads at every step, the same change sets in the same order and
+        /// the same stored state as committing at the prepare point: a
+        /// journey closed or changed in a prepared commit is never read
+        /// back stale from sled, and changes made after the prepare are
+        /// neither evicted nor written before the next commit.
+        #[test]
+        fn a_commit_applied_later_equals_one_applied_at_once(
+            steps in proptest::collection::vec(step(), 1..150),
+            small_budget in proptest::bool::ANY,
+        ) {
+            let db = sled::Config::new().temporary(true).open().unwrap();
+            let budget = if small_budget { 1_500 } else { 1 << 20 };
+            let mut at_once = PartitionStore::new(db.open_tree("p/a").unwrap(), db.clone(), budget).unwrap();
+            let mut later = PartitionStore::new(db.open_tree("p/b").unwrap(), db.clone(), budget).unwrap();
+            let (mut sets_at_once, mut sets_later) = (Vec::new(), Vec::new());
+            let mut pending: Option<Prepared> = None;
+            for step in steps {
+                match step {
+                    Step::Save { user, touches, wake } => {
+                        let key = UserKey([user; 32]);
+                        proptest::prop_assert_eq!(later.load(&key).unwrap(), at_once.load(&key).unwrap());
+                        at_once.save(&key, journey(user, touches), wake).unwrap();
+                        later.save(&key, journey(user, touches), wake).unwrap();
+                    }
+                    Step::Close { user } => {
+                        // As the engine closes one: taken, saved back empty.
+                        let key = UserKey([user; 32]);
+                        proptest::prop_assert_eq!(later.take(&key).unwrap(), at_once.take(&key).unwrap());
+                        at_once.save(&key, Journey::default(), None).unwrap();
+                        later.save(&key, Journey::default(), None).unwrap();
+                    }
+                    Step::ApplyEarly => {
+                        if let Some(p) = pending.take() {
+                            sets_later.push(later.apply(p, false).unwrap());
+                        }
+                    }
+                    Step::Offset(o) => {
+                        at_once.stage_offset("events/0", o);
+                        later.stage_offset("events/0", o);
+                    }
+                    Step::Commit => {
+                        sets_at_once.push(at_once.commit(false).unwrap());
+                        if let Some(p) = pending.take() {
+                            sets_later.push(later.apply(p, false).unwrap());
+                        }
+                        pending = Some(later.prepare());
+                    }
+                }
+            }
+            if let Some(p) = pending.take() {
+                sets_later.push(later.apply(p, false).unwrap());
+            }
+            sets_at_once.push(at_once.commit(false).unwrap());
+            sets_later.push(later.commit(false).unwrap());
+            proptest::prop_assert_eq!(sets_later, sets_at_once);
+            proptest::prop_assert_eq!(contents(&db.open_tree("p/b").unwrap()), contents(&db.open_tree("p/a").unwrap()));
+            proptest::prop_assert_eq!(later.open_journeys(), at_once.open_journeys());
+        }
+    }
+
+    #[derive(Debug, Clone)]
+    enum Step {
+        Save {
+            user: u8,
+            touches: u8,
+            wake: Option<i64>,
+        },
+        /// Close the user's journey.
+        Close {
+            user: u8,
+        },
+        /// Apply the prepared commit before the next prepare.
+        ApplyEarly,
+        Offset(i64),
+        /// Commit `at_once`; apply `later`'s prepared commit and prepare the next.
+        Commit,
+    }
+
+    fn step() -> impl proptest::strategy::Strategy<Value = Step> {
+        use proptest::prelude::*;
+        prop_oneof![
+            5 => (0u8..12, 1u8..4, proptest::option::of(0i64..50))
+                .prop_map(|(user, touches, wake)| Step::Save { user, touches, wake }),
+            2 => (0u8..12).prop_map(|user| Step::Close { user }),
+            1 => Just(Step::ApplyEarly),
+            1 => (0i64..1000).prop_map(Step::Offset),
+            2 => Just(Step::Commit),
+        ]
     }
 }

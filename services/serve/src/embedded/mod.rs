@@ -25,6 +25,8 @@ use http::{IngestReply, IngestRequest, LineError};
 struct Waiting {
     reply: Option<tokio::sync::oneshot::Sender<IngestReply>>,
     lines: Vec<usize>,
+    /// The poll that took these lines.
+    poll: u64,
 }
 
 /// A request whose lines are partly taken: those from `at` on remain.
@@ -39,6 +41,12 @@ pub struct EmbeddedSource {
     rx: Receiver<IngestRequest>,
     next_seq: i64,
     waiting: Vec<Waiting>,
+    /// Polls counted so far.
+    polls: u64,
+    /// Polls that returned HTTP lines and are not committed yet, oldest
+    /// first: the loop acknowledges batches in the order polled, and may
+    /// poll the next one before acknowledging this one.
+    unacknowledged: std::collections::VecDeque<u64>,
     /// The request being taken, when it did not fit into one batch.
     current: Option<Current>,
     /// The reply of the oldest request not yet answered, counted over the
@@ -69,6 +77,8 @@ impl EmbeddedSource {
             rx,
             next_seq: committed.map_or(0, |c| c + 1),
             waiting: Vec::new(),
+            polls: 0,
+            unacknowledged: std::collections::VecDeque::new(),
             current: None,
             partial: IngestReply::default(),
             file,
@@ -92,6 +102,8 @@ impl Source for EmbeddedSource {
         let now = Instant::now();
         let wall = crate::pipeline::now_ms();
         let mut first = true;
+        self.polls += 1;
+        let poll = self.polls;
         while http.len() < max {
             let mut cur = match self.current.take() {
                 Some(c) => c,
@@ -133,15 +145,16 @@ impl Source for EmbeddedSource {
                 done = true;
             }
             if done {
-                self.waiting.push(Waiting { reply: Some(cur.reply), lines });
+                self.waiting.push(Waiting { reply: Some(cur.reply), lines, poll });
             } else {
-                self.waiting.push(Waiting { reply: None, lines });
+                self.waiting.push(Waiting { reply: None, lines, poll });
                 self.current = Some(cur);
             }
         }
         self.http_backlog = http.len() >= max || self.current.is_some();
         let mut out = Vec::new();
         if !http.is_empty() {
+            self.unacknowledged.push_back(poll);
             out.push((self.http.clone(), http));
         }
         if !file.is_empty() {
@@ -152,8 +165,12 @@ impl Source for EmbeddedSource {
 
     fn committed(&mut self, _pipeline: &Pipeline, statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()> {
         let Some((_, st)) = statuses.into_iter().find(|(id, _)| *id == self.http) else { return Ok(()) };
+        // The oldest unacknowledged poll with HTTP lines is this batch: its
+        // requests, and those of earlier polls without lines (empty bodies).
+        let upto = self.unacknowledged.pop_front().unwrap_or(u64::MAX);
+        let taken = self.waiting.iter().take_while(|w| w.poll <= upto).count();
         let mut it = st.into_iter();
-        for w in self.waiting.drain(..) {
+        for w in self.waiting.drain(..taken) {
             let reply = &mut self.partial;
             for line in w.lines {
                 match it.next() {

@@ -54,6 +54,17 @@ pub struct Pipeline {
     refit: Refit,
     metrics: Metrics,
     state_scan: crate::state_scan::StateScan,
+    /// A commit is prepared and not yet applied (its output is being
+    /// written): partitions revoked meanwhile close once it is applied.
+    prepared: bool,
+    /// Partitions revoked while a commit was prepared.
+    closing: Vec<PartId>,
+}
+
+/// Every open partition's commit, collected by [`Pipeline::prepare_commit`]
+/// and written by [`Pipeline::apply_commit`].
+pub struct PreparedBatch {
+    parts: Vec<(PartId, partition::PreparedPart)>,
 }
 
 impl Pipeline {
@@ -71,6 +82,8 @@ impl Pipeline {
             parts: BTreeMap::new(),
             refit,
             metrics,
+            prepared: false,
+            closing: Vec::new(),
         })
     }
 
@@ -95,6 +108,8 @@ impl Pipeline {
     /// Opens a partition's state (on assignment); returns its committed offset.
     pub fn open_partition(&mut self, id: &PartId, payload: Payload) -> Result<Option<i64>> {
         if let Some(p) = self.parts.get(id) {
+            // Revoked and assigned again before its close took effect.
+            self.closing.retain(|c| c != id);
             return Ok(p.committed);
         }
         let (store, refit) = (&self.store, &mut self.refit);
@@ -107,13 +122,24 @@ impl Pipeline {
 
     /// Commits and closes a partition's state (on revocation).
     pub fn close_partition(&mut self, id: &PartId) -> Result<()> {
+        if self.prepared && self.parts.contains_key(id) {
+            // Its prepared commit is written first (apply_commit closes it).
+            if !self.closing.contains(id) {
+                self.closing.push(id.clone());
+            }
+            return Ok(());
+        }
         if let Some(p) = self.parts.get_mut(id) {
             p.commit(id, self.cfg.dedupe_horizon.ms())?;
             self.store.flush()?;
         }
+        self.forget_partition(id);
+        Ok(())
+    }
+
+    fn forget_partition(&mut self, id: &PartId) {
         self.parts.remove(id);
         self.metrics.watermark_lag.remove_label_values(&[&id.source, &id.partition.to_string()]).ok();
-        Ok(())
     }
 
     /// Conversions of an open partition read and not yet credited or
@@ -443,13 +469,42 @@ impl Pipeline {
     /// snapshot, each partition in one atomic batch. Call after the sinks
     /// have the batch's output.
     pub fn commit(&mut self) -> Result<()> {
+        let prepared = self.prepare_commit()?;
+        self.apply_commit(prepared)
+    }
+
+    /// The first half of [`Pipeline::commit`]: every open partition's
+    /// commit, collected (journeys encoded, offsets and clocks staged) and
+    /// not written. Events processed before [`Pipeline::apply_commit`] go
+    /// to the next commit; apply prepared batches in the order prepared.
+    pub fn prepare_commit(&mut self) -> Result<PreparedBatch> {
         let horizon = self.cfg.dedupe_horizon.ms();
+        let mut parts = Vec::with_capacity(self.parts.len());
         for (id, p) in self.parts.iter_mut() {
-            p.commit(id, horizon)?;
+            parts.push((id.clone(), p.prepare_commit(id, horizon)?));
+        }
+        self.prepared = true;
+        Ok(PreparedBatch { parts })
+    }
+
+    /// The second half of [`Pipeline::commit`]: writes a prepared batch and
+    /// makes it durable, then closes the partitions revoked meanwhile.
+    pub fn apply_commit(&mut self, batch: PreparedBatch) -> Result<()> {
+        self.prepared = false;
+        for (id, prepared) in batch.parts {
+            if let Some(p) = self.parts.get_mut(&id) {
+                p.apply_commit(prepared)?;
+            }
         }
         // Durable before anything that depends on it (the group commit of
         // the offsets, an HTTP answer): one flush for all partitions.
         self.store.flush()?;
+        // Revoked while the batch was written: closed as of that batch.
+        // Anything processed for them since is dropped uncommitted (its new
+        // owner reads it again from the committed offset).
+        for id in std::mem::take(&mut self.closing) {
+            self.forget_partition(&id);
+        }
         let in_use: Vec<&str> = self.parts.values().filter_map(|p| p.snapshot.version()).collect();
         let in_use: Vec<String> = in_use.into_iter().map(str::to_string).collect();
         let refs: Vec<&str> = in_use.iter().map(String::as_str).collect();
@@ -458,11 +513,14 @@ impl Pipeline {
         Ok(())
     }
 
-    /// Drops uncommitted changes of every partition (a batch whose output
+    /// Drops uncommitted changes (a prepared commit too) of every partition (a batch whose output
     /// could not be written) by reopening them from the store; the source
     /// must re-deliver from the committed offsets.
     pub fn rollback(&mut self) -> Result<()> {
-        let ids: Vec<(PartId, Payload)> = self.parts.iter().map(|(k, v)| (k.clone(), v.payload)).collect();
+        self.prepared = false;
+        let closing = std::mem::take(&mut self.closing);
+        let ids: Vec<(PartId, Payload)> =
+            self.parts.iter().filter(|(k, _)| !closing.contains(k)).map(|(k, v)| (k.clone(), v.payload)).collect();
         self.parts.clear();
         for (id, payload) in ids {
             self.open_partition(&id, payload)?;

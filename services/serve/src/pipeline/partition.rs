@@ -201,12 +201,20 @@ impl PartState {
     /// enough have accumulated). The batch is applied, not yet durable: the
     /// caller flushes the store.
     pub fn commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<()> {
+        let prepared = self.prepare_commit(id, dedupe_horizon_ms)?;
+        self.apply_commit(prepared)
+    }
+
+    /// The first half of [`PartState::commit`]: stages and collects the
+    /// commit without writing it (see [`PartitionStore::prepare`]); events
+    /// applied before [`PartState::apply_commit`] belong to the next one.
+    pub fn prepare_commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<PreparedPart> {
         self.persist_decisions()?;
-        if let Some(o) = self.pending_offset.take() {
+        let offset = self.pending_offset.take();
+        if let Some(o) = offset {
             self.store.stage_offset(&id.store_name(), o);
-            self.committed = Some(o);
         }
-        if let Some(c) = self.committed {
+        if let Some(c) = offset.or(self.committed) {
             self.store.stage_forget_decisions(c)?;
             self.decisions.future = self.decisions.future.split_off(&(c.saturating_add(1)));
         }
@@ -227,10 +235,24 @@ impl PartState {
         if self.clock.watermark != i64::MIN {
             self.store.prune_seen(self.clock.watermark.saturating_sub(dedupe_horizon_ms))?;
         }
-        // Not flushed here: the caller flushes the store once for every
-        // partition it commits (one sled flush per batch, not per partition).
-        self.store.commit(false)?;
+        Ok(PreparedPart { store: self.store.prepare(), offset })
+    }
+
+    /// The second half of [`PartState::commit`]: writes a prepared commit
+    /// (not flushed here: the caller flushes the store once for every
+    /// partition it commits) and moves the committed offset.
+    pub fn apply_commit(&mut self, prepared: PreparedPart) -> Result<()> {
+        self.store.apply(prepared.store, false)?;
+        if let Some(o) = prepared.offset {
+            self.committed = Some(o);
+        }
         self.batches += 1;
         Ok(())
     }
+}
+
+/// A partition's commit, collected and not yet written.
+pub struct PreparedPart {
+    store: apportion_store::Prepared,
+    offset: Option<i64>,
 }
