@@ -986,3 +986,31 @@ fn the_state_scan_reports_the_oldest_stored_event() {
     let age = metrics.state_oldest_age.get();
     assert!((3 * 86_400..3 * 86_400 + 60).contains(&age), "oldest event age {age} s");
 }
+
+/// The run loop prepares a batch's commit, applies the next batch while the
+/// sinks write, then writes the commit. A partition revoked meanwhile closes
+/// as of the prepared commit: what was applied after it is dropped (the new
+/// owner reads it again from the committed offset), never committed ahead
+/// of its output. Derived by hand from the run loop's order (run_loop.rs).
+#[test]
+fn a_partition_revoked_while_its_commit_is_in_flight_closes_as_of_that_commit() {
+    let mut p = pipeline(config(), Store::temporary().unwrap());
+    p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
+    let now = Instant::now();
+    let mut out = OutputBatch::default();
+    p.process(&part(), &msgs(1, vec![touch("a", "u", 100 * SEC, "email")], now), &mut out).unwrap();
+    let prepared = p.prepare_commit().unwrap();
+    // Applied after the prepare: belongs to the next commit.
+    p.process(&part(), &msgs(2, vec![touch("b", "u", 150 * SEC, "seo")], now), &mut out).unwrap();
+    p.close_partition(&part()).unwrap();
+    assert_eq!(p.open_partitions(), vec![part()], "closed before its prepared commit was written");
+    p.apply_commit(prepared).unwrap();
+    assert!(p.open_partitions().is_empty());
+    // Assigned again: the committed offset is the prepared one (1), and the
+    // journey holds touch a only, so linear gives email all the credit.
+    assert_eq!(p.open_partition(&part(), Payload::Event(Format::Json)).unwrap(), Some(1));
+    let mut out = OutputBatch::default();
+    p.process(&part(), &msgs(3, vec![conversion("c", "u", 200 * SEC)], now), &mut out).unwrap();
+    let rows: Vec<(&str, f64)> = out.credit.iter().map(|r| (r.channel.as_str(), r.credit)).collect();
+    assert_eq!(rows, vec![("email", 1.0)]);
+}
