@@ -1,11 +1,12 @@
 //! The processing loop: poll a batch from the source, apply it through the
 //! [`Pipeline`], write the output to every sink (retrying with backoff; a
 //! batch is never dropped), then commit state and offsets, then acknowledge
-//! to the source. It runs on one thread, and the sinks write on a second:
-//! under a backlog (a batch came back full) the next batch is polled and
-//! applied while the sinks write the previous one, whose commit was
-//! prepared before (see [`Pipeline::prepare_commit`]); light input is
-//! written and committed before the next poll, so latency stays as low.
+//! to the source. It runs on one thread, and the sinks write on a second,
+//! which then writes the batch's commit to the store (prepared on the
+//! first before the next batch is applied, see [`Pipeline::prepare_commit`])
+//! and flushes it: under a backlog (a batch came back full) the next batch
+//! is polled and applied meanwhile; light input is written and committed
+//! before the next poll, so latency stays as low.
 //! The service around it ([`crate::service`]) serves HTTP and turns
 //! signals into the stop flag. Stopping finishes the batches in hand,
 //! flushes the store and commits.
@@ -18,7 +19,7 @@ use anyhow::{bail, Result};
 use apportion_sinks::{OutputBatch, Sink};
 
 use crate::metrics::Metrics;
-use crate::pipeline::Pipeline;
+use crate::pipeline::{Pipeline, PreparedBatch};
 use crate::source::Source;
 
 /// State shared with the admin endpoints.
@@ -182,7 +183,6 @@ impl BatchLimit {
 /// A batch whose output the sink thread is writing: what is left to do
 /// once it has.
 struct InFlight {
-    prepared: crate::pipeline::PreparedBatch,
     statuses: Vec<(crate::source::PartId, Vec<crate::source::MsgStatus>)>,
     started: Instant,
     refitted: bool,
@@ -210,16 +210,24 @@ pub fn run_loop(
     // the sinks have the output), then the acknowledgement to the source.
     let sinks_ref = &mut sinks;
     let result = std::thread::scope(|scope| -> Result<()> {
-        let (job_tx, job_rx) = std::sync::mpsc::sync_channel::<OutputBatch>(1);
-        let (done_tx, done_rx) = std::sync::mpsc::sync_channel::<(OutputBatch, Result<Written>)>(1);
+        let (job_tx, job_rx) = std::sync::mpsc::sync_channel::<(OutputBatch, PreparedBatch)>(1);
+        let (done_tx, done_rx) = std::sync::mpsc::sync_channel::<(OutputBatch, PreparedBatch, Result<Written>)>(1);
         {
             let (stop, metrics, shared) = (stop.clone(), metrics.clone(), shared.clone());
             std::thread::Builder::new().name("apportion-sinks".into()).spawn_scoped(scope, move || {
-                for out in job_rx {
-                    let written = write_sinks(sinks_ref, &out, &stop, &metrics, &shared);
+                for (out, mut prepared) in job_rx {
+                    let mut written = write_sinks(sinks_ref, &out, &stop, &metrics, &shared);
+                    if matches!(written, Ok(Written::Done { .. })) {
+                        // The sinks have the output: now the batch's state
+                        // and offsets, durable (the processing thread only
+                        // finishes the bookkeeping).
+                        if let Err(e) = prepared.write() {
+                            written = Err(e);
+                        }
+                    }
                     let go_on = matches!(written, Ok(Written::Done { .. }));
                     // At most one batch is in flight, so this never waits.
-                    if done_tx.send((out, written)).is_err() || !go_on {
+                    if done_tx.send((out, prepared, written)).is_err() || !go_on {
                         return;
                     }
                 }
@@ -230,7 +238,7 @@ pub fn run_loop(
         // Waits for the sinks to have the batch in flight, then commits it
         // and acknowledges it. False: shutdown came while a sink held it.
         let finish = |pipeline: &mut Pipeline, source: &mut Box<dyn Source>, f: InFlight| -> Result<bool> {
-            let (out, written) =
+            let (out, prepared, written) =
                 done_rx.recv().map_err(|_| anyhow::anyhow!("the sink thread stopped without an answer"))?;
             match written {
                 Ok(Written::Done { stalled }) => {
@@ -248,7 +256,7 @@ pub fn run_loop(
                     return Err(e);
                 }
             }
-            pipeline.apply_commit(f.prepared)?;
+            pipeline.apply_commit(prepared)?;
             if f.refitted {
                 publish_models(pipeline, &shared);
             }
@@ -298,8 +306,8 @@ pub fn run_loop(
                     // partition credits with is committed with its offsets.
                     let refitted = pipeline.maybe_refit()?;
                     let prepared = pipeline.prepare_commit()?;
-                    job_tx.send(out).map_err(|_| anyhow::anyhow!("the sink thread stopped"))?;
-                    let f = InFlight { prepared, statuses, started, refitted };
+                    job_tx.send((out, prepared)).map_err(|_| anyhow::anyhow!("the sink thread stopped"))?;
+                    let f = InFlight { statuses, started, refitted };
                     if events >= asked && !finished {
                         // A backlog: the next batch is applied while the sinks write.
                         in_flight = Some(f);

@@ -75,6 +75,10 @@ pub enum StoreError {
     /// sled failed.
     #[error("state store: {0}")]
     Sled(#[from] sled::Error),
+    /// A prepared commit was finished before it was written (a bug in the
+    /// caller; nothing is changed).
+    #[error("state store: a prepared commit was finished before it was written")]
+    Unwritten,
     /// A stored record could not be decoded.
     #[error("state store: corrupt record under key prefix {prefix:?}: {detail}")]
     Corrupt {

@@ -74,6 +74,9 @@ impl Held {
 }
 
 /// A commit collected by [`PartitionStore::prepare`], not yet written.
+/// [`Prepared::write`] may run on another thread (the store's owner goes
+/// on applying events meanwhile); [`PartitionStore::applied`] then finishes
+/// it on the owner's.
 #[derive(Debug)]
 pub struct Prepared {
     changes: ChangeSet,
@@ -81,6 +84,20 @@ pub struct Prepared {
     written: Vec<UserKey>,
     /// The change in persisted journeys once written.
     delta: i64,
+    tree: sled::Tree,
+    done: bool,
+}
+
+impl Prepared {
+    /// Writes the commit to sled in one atomic batch (not flushed: see
+    /// [`crate::Store::flush`]). Writing it twice writes the same.
+    pub fn write(&mut self) -> Result<(), StoreError> {
+        if !self.done {
+            self.changes.apply(&self.tree)?;
+            self.done = true;
+        }
+        Ok(())
+    }
 }
 
 /// One cached user.
@@ -506,7 +523,7 @@ impl PartitionStore {
         self.seen.persist_into(&mut changes);
         changes.extend(std::mem::take(&mut self.staged));
         self.unapplied.extend(dirty.iter().copied());
-        Prepared { changes, written: dirty, delta }
+        Prepared { changes, written: dirty, delta, tree: self.tree.clone(), done: false }
     }
 
     /// The second half of [`PartitionStore::commit`]: writes a prepared
@@ -514,11 +531,21 @@ impl PartitionStore {
     /// has it on disk), then lets the cache drop what is now in sled:
     /// closed journeys it wrote that nothing changed since, and the least
     /// recently used clean entries when over budget.
-    pub fn apply(&mut self, prepared: Prepared, durable: bool) -> Result<ChangeSet, StoreError> {
-        let Prepared { changes, written, delta } = prepared;
-        changes.apply(&self.tree)?;
+    pub fn apply(&mut self, mut prepared: Prepared, durable: bool) -> Result<ChangeSet, StoreError> {
+        prepared.write()?;
         if durable {
             self.db.flush()?;
+        }
+        self.applied(prepared)
+    }
+
+    /// The bookkeeping of [`PartitionStore::apply`] once the prepared commit
+    /// is written ([`Prepared::write`], e.g. on another thread, and flushed
+    /// if it must be durable). An error if it was not written.
+    pub fn applied(&mut self, prepared: Prepared) -> Result<ChangeSet, StoreError> {
+        let Prepared { changes, written, delta, done, .. } = prepared;
+        if !done {
+            return Err(StoreError::Unwritten);
         }
         self.open_journeys = (self.open_journeys as i64 + delta).max(0) as u64;
         self.unapplied.clear();

@@ -65,6 +65,23 @@ pub struct Pipeline {
 /// and written by [`Pipeline::apply_commit`].
 pub struct PreparedBatch {
     parts: Vec<(PartId, partition::PreparedPart)>,
+    store: Store,
+    durable: bool,
+}
+
+impl PreparedBatch {
+    /// Writes every partition's commit to sled and flushes it: the state
+    /// and offsets durable. Any thread (the sink thread does it right after
+    /// the sinks have the batch's output); [`Pipeline::apply_commit`]
+    /// finishes it on the pipeline's.
+    pub fn write(&mut self) -> Result<()> {
+        for (_, p) in self.parts.iter_mut() {
+            p.write()?;
+        }
+        self.store.flush()?;
+        self.durable = true;
+        Ok(())
+    }
 }
 
 impl Pipeline {
@@ -484,7 +501,7 @@ impl Pipeline {
             parts.push((id.clone(), p.prepare_commit(id, horizon)?));
         }
         self.prepared = true;
-        Ok(PreparedBatch { parts })
+        Ok(PreparedBatch { parts, store: self.store.clone(), durable: false })
     }
 
     /// The second half of [`Pipeline::commit`]: writes a prepared batch and
@@ -496,9 +513,11 @@ impl Pipeline {
                 p.apply_commit(prepared)?;
             }
         }
-        // Durable before anything that depends on it (the group commit of
-        // the offsets, an HTTP answer): one flush for all partitions.
-        self.store.flush()?;
+        if !batch.durable {
+            // Durable before anything that depends on it (the group commit
+            // of the offsets, an HTTP answer): one flush for all partitions.
+            self.store.flush()?;
+        }
         // Revoked while the batch was written: closed as of that batch.
         // Anything processed for them since is dropped uncommitted (its new
         // owner reads it again from the committed offset).

@@ -241,8 +241,10 @@ impl PartState {
     /// The second half of [`PartState::commit`]: writes a prepared commit
     /// (not flushed here: the caller flushes the store once for every
     /// partition it commits) and moves the committed offset.
-    pub fn apply_commit(&mut self, prepared: PreparedPart) -> Result<()> {
-        self.store.apply(prepared.store, false)?;
+    pub fn apply_commit(&mut self, mut prepared: PreparedPart) -> Result<()> {
+        // Written already when the sink thread wrote the batch.
+        prepared.store.write()?;
+        self.store.applied(prepared.store)?;
         if let Some(o) = prepared.offset {
             self.committed = Some(o);
         }
@@ -255,4 +257,11 @@ impl PartState {
 pub struct PreparedPart {
     store: apportion_store::Prepared,
     offset: Option<i64>,
+}
+
+impl PreparedPart {
+    /// Writes the partition's commit to sled (not flushed); any thread.
+    pub fn write(&mut self) -> Result<()> {
+        Ok(self.store.write()?)
+    }
 }
