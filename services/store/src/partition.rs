@@ -714,20 +714,12 @@ impl JourneyStore for PartitionStore {
         if let Some(w) = old_wake {
             self.wakes.remove(&(w, *key));
         }
-        if journey.is_empty() && !persisted_exists {
-            if self.unapplied.contains(key) {
-                // A prepared commit not yet applied deletes the record
-                // sled still holds: the entry stays (empty, nothing more to
-                // write) so that no read finds that record meanwhile.
-                let c = self.cache.get_mut(key).expect("entry loaded");
-                self.bytes -= c.size;
-                c.journey = None;
-                c.size = 0;
-                c.wake = None;
-                c.dirty = false;
-                return Ok(());
-            }
-            // Nothing in sled to delete: forget the user right away.
+        // Nothing to write: no journey, and none committed to delete.
+        let nothing_to_write = journey.is_empty() && !persisted_exists;
+        // While a prepared commit that deletes the user's record is not yet
+        // applied, sled still holds that record: the (empty) entry stays so
+        // that no read finds it. Otherwise the user is forgotten right away.
+        if nothing_to_write && !self.unapplied.contains(key) {
             self.remove_entry(key);
             return Ok(());
         }
@@ -743,7 +735,7 @@ impl JourneyStore for PartitionStore {
         c.journey = held;
         c.size = size;
         c.wake = wake;
-        c.dirty = true;
+        c.dirty = !nothing_to_write;
         let new_bytes = c.bytes();
         self.bytes = self.bytes + new_bytes - old_bytes;
         self.saves += 1;

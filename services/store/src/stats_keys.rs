@@ -214,9 +214,7 @@ pub(crate) fn stage_delta(
         return Ok(());
     }
     if delta.full {
-        for item in tree.scan_prefix([P]) {
-            out.remove(item?.0);
-        }
+        stage_drop(tree, out)?;
     }
     let mut writes: Vec<(Vec<u8>, Vec<u8>)> = delta.counters.iter().map(encode_counter).collect();
     // In key order: the same changes give the same change set.

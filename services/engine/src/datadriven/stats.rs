@@ -365,27 +365,34 @@ impl PathStats {
             .iter()
             .map(|c| if keep.contains(c) { out.intern(c) } else { out.intern(OVERFLOW_CHANNEL) })
             .collect();
-        for (ids, o) in &self.sets {
+        out.add_mapped(self, &map);
+        out.kept = keep;
+        out.changes = self.changes.as_ref().map(|_| Changes { all: true, ..Default::default() });
+        out
+    }
+
+    /// Adds the channel sets, states and transitions of `other` with its
+    /// channel id `i` counted as `map[i]` of this value (a set holding two
+    /// channels mapped to one id holds it once). Totals are the caller's.
+    fn add_mapped(&mut self, other: &PathStats, map: &[u32]) {
+        for (ids, o) in &other.sets {
             let mut mine: Vec<u32> = ids.iter().map(|&i| map[i as usize]).collect();
             mine.sort_unstable();
             mine.dedup();
-            out.add_set(mine, *o);
+            self.add_set(mine, *o);
         }
-        let state_map: Vec<u32> = self
+        let state_map: Vec<u32> = other
             .states
             .iter()
             .map(|t| {
                 let mine: Vec<u32> = t.iter().map(|&i| map[i as usize]).collect();
-                out.intern_state(&mine)
+                self.intern_state(&mine)
             })
             .collect();
         let node = |n: u32| if n >= NULL { n } else { state_map[n as usize] };
-        for (&(a, b), &c) in &self.transitions {
-            *out.transitions.entry((node(a), node(b))).or_insert(0) += c;
+        for (&(a, b), &c) in &other.transitions {
+            *self.transitions.entry((node(a), node(b))).or_insert(0) += c;
         }
-        out.kept = keep;
-        out.changes = self.changes.as_ref().map(|_| Changes { all: true, ..Default::default() });
-        out
     }
 
     /// Under a cap: makes room for the new channels among `names` that sort
@@ -602,24 +609,7 @@ impl PathStats {
         let map: Vec<u32> = other.channels.iter().map(|c| self.id_for(c).0).collect();
         self.paths += other.paths;
         self.conversions += other.conversions;
-        for (ids, o) in &other.sets {
-            let mut mine: Vec<u32> = ids.iter().map(|&i| map[i as usize]).collect();
-            mine.sort_unstable();
-            mine.dedup();
-            self.add_set(mine, *o);
-        }
-        let state_map: Vec<u32> = other
-            .states
-            .iter()
-            .map(|t| {
-                let mine: Vec<u32> = t.iter().map(|&i| map[i as usize]).collect();
-                self.intern_state(&mine)
-            })
-            .collect();
-        let node = |n: u32| if n >= NULL { n } else { state_map[n as usize] };
-        for (&(a, b), &c) in &other.transitions {
-            *self.transitions.entry((node(a), node(b))).or_insert(0) += c;
-        }
+        self.add_mapped(other, &map);
         if let Some(ch) = self.changes.as_mut() {
             ch.all = true;
         }
