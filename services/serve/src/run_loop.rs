@@ -110,6 +110,8 @@ pub fn write_sinks(
                     break;
                 }
                 Err(e) => {
+                    // The next attempt starts afresh (Sink::reset).
+                    sink.reset();
                     metrics.sink_errors.with_label_values(&[sink.name()]).inc();
                     if !e.retryable {
                         bail!("{e}");
@@ -180,6 +182,24 @@ impl BatchLimit {
     }
 }
 
+/// The sink thread's part of a batch: its output to every sink, then (once
+/// they all have it) its prepared state and offsets to the store, durable.
+/// The processing thread only finishes the bookkeeping.
+fn write_batch(
+    sinks: &mut [Box<dyn Sink>],
+    out: &OutputBatch,
+    prepared: &mut PreparedBatch,
+    stop: &AtomicBool,
+    metrics: &Metrics,
+    shared: &Mutex<Shared>,
+) -> Result<Written> {
+    let written = write_sinks(sinks, out, stop, metrics, shared)?;
+    if let Written::Done { .. } = written {
+        prepared.write()?;
+    }
+    Ok(written)
+}
+
 /// A batch whose output the sink thread is writing: what is left to do
 /// once it has.
 struct InFlight {
@@ -216,15 +236,7 @@ pub fn run_loop(
             let (stop, metrics, shared) = (stop.clone(), metrics.clone(), shared.clone());
             std::thread::Builder::new().name("apportion-sinks".into()).spawn_scoped(scope, move || {
                 for (out, mut prepared) in job_rx {
-                    let mut written = write_sinks(sinks_ref, &out, &stop, &metrics, &shared);
-                    if matches!(written, Ok(Written::Done { .. })) {
-                        // The sinks have the output: now the batch's state
-                        // and offsets, durable (the processing thread only
-                        // finishes the bookkeeping).
-                        if let Err(e) = prepared.write() {
-                            written = Err(e);
-                        }
-                    }
+                    let written = write_batch(sinks_ref, &out, &mut prepared, &stop, &metrics, &shared);
                     let go_on = matches!(written, Ok(Written::Done { .. }));
                     // At most one batch is in flight, so this never waits.
                     if done_tx.send((out, prepared, written)).is_err() || !go_on {

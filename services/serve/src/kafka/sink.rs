@@ -144,16 +144,16 @@ impl Sink for KafkaSink {
     }
 
     fn write(&mut self, batch: &OutputBatch) -> Result<(), SinkError> {
-        let r = self.send_batch(batch);
-        if r.is_err() {
-            // The run loop retries the same batch: with a new producer.
-            renew(&mut self.producer, &self.kafka, "output");
-        }
-        r
+        self.send_batch(batch)
     }
 
     fn close(&mut self) -> Result<(), SinkError> {
         self.producer.flush(Duration::from_secs(30)).map_err(|e| SinkError::fatal("kafka", e.to_string()))
+    }
+
+    /// After a failed write the same batch is sent again: with a new producer.
+    fn reset(&mut self) {
+        renew(&mut self.producer, &self.kafka, "output");
     }
 }
 
