@@ -25,11 +25,6 @@ impl UserKey {
         Hex(out)
     }
 
-    /// Writes the 64 hex digits to `out`.
-    pub fn write_hex(&self, out: &mut Vec<u8>) {
-        out.extend_from_slice(&self.hex().0);
-    }
-
     /// Parses 64 hex digits (either case).
     pub fn from_hex(s: &str) -> Option<UserKey> {
         let v = hex::decode(s).ok()?;

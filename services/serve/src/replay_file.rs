@@ -27,7 +27,7 @@ use apportion_contract::time::format_ms;
 use apportion_contract::{RejectReason, Rejection, UserKey};
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::replay::two_pass::{self, Pass};
-use apportion_engine::replay::{effect_rows, event_digest as dedupe_digest_of, FirstSeen};
+use apportion_engine::replay::{effect_rows, event_digest, FirstSeen};
 use apportion_engine::{Effect, Journey, JourneyEvent, JourneyStore, Outcome, Pseudonymizer};
 use apportion_sinks::ndjson::push_line;
 use apportion_store::{PartitionStore, Store, StoreError};
@@ -168,7 +168,7 @@ impl Block {
                     Ok(ev) if ev.timestamp_ms > newest_plausible => Scanned::Future { ts: ev.timestamp_ms },
                     // parse_event_limited bounds the length by max_event_bytes (< 4 GiB).
                     Ok(ev) => match u32::try_from(body.len()) {
-                        Ok(len) => Scanned::Valid { ts: ev.timestamp_ms, digest: dedupe_digest_of(&ev), len },
+                        Ok(len) => Scanned::Valid { ts: ev.timestamp_ms, digest: event_digest(&ev), len },
                         Err(_) => Scanned::Invalid(Rejection::new(RejectReason::TooLarge, "event longer than 4 GiB")),
                     },
                     Err(r) => Scanned::Invalid(r),
