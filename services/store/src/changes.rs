@@ -45,6 +45,11 @@ impl ChangeSet {
 
     /// Applies every write to `tree` in one atomic batch.
     pub(crate) fn apply(&self, tree: &sled::Tree) -> Result<(), sled::Error> {
+        tree.apply_batch(self.batch())
+    }
+
+    /// Every write as one sled batch.
+    pub(crate) fn batch(&self) -> sled::Batch {
         let mut batch = sled::Batch::default();
         for (k, v) in &self.writes {
             // Cloning an IVec shares its bytes (no copy for large values).
@@ -53,6 +58,6 @@ impl ChangeSet {
                 None => batch.remove(k.clone()),
             }
         }
-        tree.apply_batch(batch)
+        batch
     }
 }

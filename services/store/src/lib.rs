@@ -52,12 +52,14 @@
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
 
+mod changelog;
 mod changes;
 mod codec;
 mod partition;
 mod seen;
 mod stats_keys;
 
+pub use changelog::{Restore, COMMIT_MARKER};
 pub use changes::ChangeSet;
 pub use codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats, Clock,
@@ -265,6 +267,44 @@ impl Store {
                 t.remove(k)?;
             }
         }
+        Ok(())
+    }
+
+    /// True when the store holds state for partition `name`.
+    pub fn has_partition(&self, name: &str) -> bool {
+        self.db.tree_names().iter().any(|n| n.as_ref() == format!("p/{name}").as_bytes())
+    }
+
+    /// The changelog offset the local state of partition `name` reflects
+    /// (the offset of the last changelog record it has), if recorded.
+    pub fn changelog_offset(&self, name: &str) -> Result<Option<i64>, StoreError> {
+        if !self.has_partition(name) {
+            return Ok(None);
+        }
+        changelog::changelog_offset(&self.db.open_tree(format!("p/{name}"))?)
+    }
+
+    /// Starts rebuilding partition `name` from its changelog: its local
+    /// state is dropped at once (see [`Restore`]).
+    pub fn restore(&self, name: &str) -> Result<Restore, StoreError> {
+        self.db.drop_tree(format!("p/{name}"))?;
+        let tree = self.db.open_tree(format!("p/{name}"))?;
+        Ok(Restore { tree, db: self.db.clone(), pending: ChangeSet::default(), applied: 0 })
+    }
+
+    /// Every record of partition `name`'s local state as its changelog
+    /// carries them, in key order (to publish a local state that no
+    /// changelog holds yet).
+    pub fn partition_records(&self, name: &str) -> Result<Vec<(sled::IVec, sled::IVec)>, StoreError> {
+        let tree = self.db.open_tree(format!("p/{name}"))?;
+        changelog::records(&tree).collect()
+    }
+
+    /// Records that the local state of partition `name` reflects its
+    /// changelog up to `offset` (durable with the next flush).
+    pub fn set_changelog_offset(&self, name: &str, offset: i64) -> Result<(), StoreError> {
+        let tree = self.db.open_tree(format!("p/{name}"))?;
+        tree.insert(changelog::CHANGELOG_OFFSET_KEY, &offset.to_be_bytes()[..])?;
         Ok(())
     }
 

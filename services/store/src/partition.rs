@@ -86,6 +86,8 @@ pub struct Prepared {
     delta: i64,
     tree: sled::Tree,
     done: bool,
+    /// The changelog offset the commit is published at, recorded with it.
+    changelog_offset: Option<i64>,
 }
 
 impl Prepared {
@@ -93,10 +95,25 @@ impl Prepared {
     /// [`crate::Store::flush`]). Writing it twice writes the same.
     pub fn write(&mut self) -> Result<(), StoreError> {
         if !self.done {
-            self.changes.apply(&self.tree)?;
+            let mut batch = self.changes.batch();
+            if let Some(o) = self.changelog_offset {
+                batch.insert(crate::changelog::CHANGELOG_OFFSET_KEY, &o.to_be_bytes()[..]);
+            }
+            self.tree.apply_batch(batch)?;
             self.done = true;
         }
         Ok(())
+    }
+
+    /// The commit's writes (what a changelog publishes).
+    pub fn changes(&self) -> &ChangeSet {
+        &self.changes
+    }
+
+    /// Records, with the commit, that the local state then reflects the
+    /// changelog up to `offset` (the commit's own publication).
+    pub fn set_changelog_offset(&mut self, offset: i64) {
+        self.changelog_offset = Some(offset);
     }
 }
 
@@ -431,18 +448,18 @@ impl PartitionStore {
     }
 
     /// Records decisions durably at once (before the output that depends on
-    /// them is written anywhere).
-    pub fn record_decisions(&mut self, decisions: &[Decision]) -> Result<(), StoreError> {
+    /// them is written anywhere); returns the writes (for a changelog).
+    pub fn record_decisions(&mut self, decisions: &[Decision]) -> Result<ChangeSet, StoreError> {
+        let mut changes = ChangeSet::default();
         if decisions.is_empty() {
-            return Ok(());
+            return Ok(changes);
         }
-        let mut batch = sled::Batch::default();
         for d in decisions {
-            batch.insert(d.key(), d.value());
+            changes.set(d.key(), d.value());
         }
-        self.tree.apply_batch(batch)?;
+        changes.apply(&self.tree)?;
         self.db.flush()?;
-        Ok(())
+        Ok(changes)
     }
 
     /// Stages the removal of decisions at or before `offset` (their effect
@@ -523,7 +540,7 @@ impl PartitionStore {
         self.seen.persist_into(&mut changes);
         changes.extend(std::mem::take(&mut self.staged));
         self.unapplied.extend(dirty.iter().copied());
-        Prepared { changes, written: dirty, delta, tree: self.tree.clone(), done: false }
+        Prepared { changes, written: dirty, delta, tree: self.tree.clone(), done: false, changelog_offset: None }
     }
 
     /// The second half of [`PartitionStore::commit`]: writes a prepared
