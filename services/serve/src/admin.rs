@@ -50,7 +50,9 @@ async fn healthz(State(s): State<AdminState>) -> Response {
 
 async fn readyz(State(s): State<AdminState>) -> Response {
     let sh = s.shared.lock().expect("shared");
-    if sh.ready {
+    if s.metrics.changelog_restoring.get() > 0 {
+        (StatusCode::SERVICE_UNAVAILABLE, "not ready: restoring partitions from their changelog\n").into_response()
+    } else if sh.ready {
         (StatusCode::OK, "ready\n").into_response()
     } else {
         (StatusCode::SERVICE_UNAVAILABLE, "not ready: store opening, partitions not assigned, or lag above the limit\n")

@@ -207,6 +207,14 @@ pub struct KafkaConfig {
     pub input_keyed_by_user: bool,
     /// Internal topic keyed by user key (used when `input_keyed_by_user = false`).
     pub repartition_topic: String,
+    /// Publish every commit of a partition's state to a compacted changelog
+    /// topic (`<group_id>-<topic>-changelog`) and restore a partition from
+    /// it when its local state is missing or older: state follows a
+    /// partition to whichever instance of the group owns it.
+    pub changelog: bool,
+    /// Replication factor of the changelog topics the service creates; -1:
+    /// the broker's default.
+    pub changelog_replication_factor: i32,
     /// Extra librdkafka properties (TLS, SASL, tuning), passed through as is.
     pub properties: std::collections::BTreeMap<String, String>,
 }
@@ -280,6 +288,29 @@ impl Default for EmbeddedConfig {
     }
 }
 
+impl KafkaConfig {
+    /// The changelog topic of input (or repartition) topic `topic`.
+    pub fn changelog_topic(&self, topic: &str) -> String {
+        format!("{}-{topic}-changelog", self.group_id)
+    }
+}
+
+/// Why `name` cannot be a Kafka topic name, if it cannot (Kafka's rule:
+/// 1 to 249 characters of ASCII letters, digits, `.`, `_` and `-`, and not
+/// `.` or `..`).
+fn topic_name_problem(name: &str) -> Option<&'static str> {
+    if name.is_empty() || name.len() > 249 {
+        return Some("is not 1 to 249 characters long");
+    }
+    if name == "." || name == ".." {
+        return Some("is reserved");
+    }
+    if !name.bytes().all(|b| b.is_ascii_alphanumeric() || matches!(b, b'.' | b'_' | b'-')) {
+        return Some("has characters other than ASCII letters, digits, '.', '_' and '-'");
+    }
+    None
+}
+
 impl Default for KafkaConfig {
     fn default() -> Self {
         KafkaConfig {
@@ -294,6 +325,8 @@ impl Default for KafkaConfig {
             output_format: Format::Json,
             input_keyed_by_user: true,
             repartition_topic: "apportion-repartition".into(),
+            changelog: true,
+            changelog_replication_factor: -1,
             properties: Default::default(),
         }
     }
@@ -390,6 +423,19 @@ impl Config {
             for key in k.properties.keys() {
                 if let Some(why) = managed_kafka_property(key) {
                     bail!("kafka.properties.\"{key}\" cannot be set: {why}");
+                }
+            }
+            if k.changelog {
+                let sources =
+                    if k.input_keyed_by_user { k.input_topics.clone() } else { vec![k.repartition_topic.clone()] };
+                for t in &sources {
+                    let name = k.changelog_topic(t);
+                    if let Some(why) = topic_name_problem(&name) {
+                        bail!("the changelog topic of {t} would be {name:?}, which {why}; change kafka.group_id or set kafka.changelog = false");
+                    }
+                }
+                if k.changelog_replication_factor == 0 || k.changelog_replication_factor < -1 {
+                    bail!("kafka.changelog_replication_factor must be -1 (the broker's default) or at least 1");
                 }
             }
         }

@@ -62,6 +62,12 @@ pub struct Metrics {
     pub watermark_lag: GaugeVec,
     /// apportion_consumer_lag_messages{topic,partition}.
     pub consumer_lag: IntGaugeVec,
+    /// apportion_changelog_records_total{direction}.
+    pub changelog_records: IntCounterVec,
+    /// apportion_changelog_publish_failures_total.
+    pub changelog_failures: IntCounter,
+    /// apportion_changelog_restoring_partitions.
+    pub changelog_restoring: IntGauge,
     /// apportion_events_without_consent_total{type}.
     pub events_without_consent: IntCounterVec,
     /// apportion_store_size_bytes.
@@ -257,6 +263,20 @@ impl Metrics {
             sink_rows: counter(r, "apportion_sink_rows_total", "Rows written, by sink and kind.", &["sink", "kind"]),
             sink_errors: counter(r, "apportion_sink_errors_total", "Sink and producer errors.", &["sink"]),
             sink_retries: counter(r, "apportion_sink_retries_total", "Batches retried at a sink.", &["sink"]),
+            changelog_records: counter(
+                r,
+                "apportion_changelog_records_total",
+                "State records published to the changelog topics, or read from them to restore a partition.",
+                &["direction"],
+            ),
+            changelog_failures: plain_counter(
+                "apportion_changelog_publish_failures_total",
+                "Commits the changelog did not take (retried with backoff).",
+            ),
+            changelog_restoring: gauge(
+                "apportion_changelog_restoring_partitions",
+                "Partitions being restored from their changelog (the service is not ready meanwhile).",
+            ),
             _build: build,
             registry,
         };
@@ -270,6 +290,9 @@ impl Metrics {
         }
         for t in ["touch", "conversion"] {
             m.events_without_consent.with_label_values(&[t]);
+        }
+        for d in ["published", "restored"] {
+            m.changelog_records.with_label_values(&[d]);
         }
         for a in ["dropped", "applied"] {
             m.events_late.with_label_values(&[a]);

@@ -95,11 +95,16 @@ impl Refit {
         if let Some(s) = self.loaded.get(v) {
             return Ok(s.clone());
         }
-        let stats = store.snapshot(v, self.plan.markov_order)?.ok_or_else(|| {
-            anyhow::anyhow!(
-                "the store names model snapshot {v} but does not hold its statistics; the data dir is damaged"
-            )
-        })?;
+        let Some(stats) = store.snapshot(v, self.plan.markov_order)? else {
+            // A partition restored from its changelog names the snapshot
+            // of the instance that owned it before; the snapshots are local.
+            tracing::warn!(
+                snapshot = v,
+                current = ?self.current.version(),
+                "a partition names a model snapshot this store does not hold (restored from a changelog written by another instance, or a damaged data dir); it credits with the current snapshot from now on"
+            );
+            return Ok(self.current.clone());
+        };
         // The cap is not in the stored form; it decides how a channel
         // never seen is credited (with the bucket or not), so it is put back.
         let stats = stats.with_max_channels(self.plan.max_channels);

@@ -90,8 +90,6 @@ pub fn write_sinks(
     shared: &Mutex<Shared>,
 ) -> Result<Written> {
     let mut stalled = false;
-    const MAX_BACKOFF: Duration = Duration::from_secs(30);
-    const SLICE: Duration = Duration::from_millis(50);
     for sink in sinks.iter_mut() {
         let mut backoff = Duration::from_millis(100);
         loop {
@@ -129,14 +127,8 @@ pub fn write_sinks(
                     // Not ready while a sink holds the batch (backpressure).
                     metrics.ready.set(0);
                     shared.lock().expect("shared state").ready = false;
-                    let until = Instant::now() + backoff;
-                    while Instant::now() < until {
-                        if stop.load(Ordering::SeqCst) {
-                            return shutdown();
-                        }
-                        // Alive, waiting for the sink (not stuck).
-                        metrics.loop_turn.set(crate::pipeline::now_ms() / 1000);
-                        std::thread::sleep(SLICE.min(until.saturating_duration_since(Instant::now())));
+                    if !sleep_unless_stopped(backoff, stop, metrics) {
+                        return shutdown();
                     }
                     backoff = (backoff * 2).min(MAX_BACKOFF);
                 }
@@ -144,6 +136,24 @@ pub fn write_sinks(
         }
     }
     Ok(Written::Done { stalled })
+}
+
+/// The longest wait between two attempts of a failed write.
+const MAX_BACKOFF: Duration = Duration::from_secs(30);
+
+/// Sleeps `d`, waking up at once for shutdown (false then); the loop's
+/// liveness gauge keeps turning meanwhile (waiting, not stuck).
+fn sleep_unless_stopped(d: Duration, stop: &AtomicBool, metrics: &Metrics) -> bool {
+    const SLICE: Duration = Duration::from_millis(50);
+    let until = Instant::now() + d;
+    while Instant::now() < until {
+        if stop.load(Ordering::SeqCst) {
+            return false;
+        }
+        metrics.loop_turn.set(crate::pipeline::now_ms() / 1000);
+        std::thread::sleep(SLICE.min(until.saturating_duration_since(Instant::now())));
+    }
+    !stop.load(Ordering::SeqCst)
 }
 
 /// The number of events asked of the source for the next batch: it starts
@@ -193,11 +203,38 @@ fn write_batch(
     metrics: &Metrics,
     shared: &Mutex<Shared>,
 ) -> Result<Written> {
-    let written = write_sinks(sinks, out, stop, metrics, shared)?;
-    if let Written::Done { .. } = written {
-        prepared.write()?;
+    let mut written = write_sinks(sinks, out, stop, metrics, shared);
+    if let Ok(Written::Done { .. }) = written {
+        written =
+            write_commit(prepared, stop, metrics)
+                .map(|done| if done { written.expect("ok") } else { Written::Abandoned });
     }
-    Ok(written)
+    // Done with it either way: a revocation need not wait any longer.
+    prepared.release();
+    written
+}
+
+/// Writes a batch's prepared commit: published to the changelog (if any),
+/// retried with backoff while the changelog cannot be reached, then
+/// written to the store. False: shutdown came before it was published (the
+/// batch is given up uncommitted, as when a sink holds it).
+fn write_commit(prepared: &mut PreparedBatch, stop: &AtomicBool, metrics: &Metrics) -> Result<bool> {
+    let mut backoff = Duration::from_millis(100);
+    loop {
+        match prepared.write() {
+            Ok(()) => return Ok(true),
+            Err(e) if e.is::<crate::pipeline::changelog::PublishError>() => {
+                metrics.changelog_failures.inc();
+                tracing::warn!(error = %format!("{e:#}"), retry_in_ms = backoff.as_millis() as u64, "the changelog did not take the batch's commit; retrying");
+                if !sleep_unless_stopped(backoff, stop, metrics) {
+                    tracing::warn!("shutdown while the changelog was unreachable: the batch is not committed and is delivered again after the restart");
+                    return Ok(false);
+                }
+                backoff = (backoff * 2).min(MAX_BACKOFF);
+            }
+            Err(e) => return Err(e),
+        }
+    }
 }
 
 /// A batch whose output the sink thread is writing: what is left to do

@@ -107,6 +107,9 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
     let (source, mut sinks, ingest): (Box<dyn Source>, Vec<Box<dyn Sink>>, Option<_>) = match &cfg.kafka {
         Some(_) => {
             let source = crate::kafka::KafkaSource::new(&cfg, &metrics)?;
+            if let Some((log, gate)) = source.changelog() {
+                pipeline.set_changelog(log, gate);
+            }
             let sink = crate::kafka::KafkaSink::new(&cfg)?;
             metrics.register_sink("kafka");
             (Box::new(source), vec![Box::new(sink) as Box<dyn Sink>], None)

@@ -88,6 +88,14 @@ pub trait Source: Send {
     fn committed(&mut self, pipeline: &Pipeline, statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()>;
     /// Refreshes lag gauges.
     fn update_lag(&mut self, _metrics: &Metrics) {}
+    /// The changelog the pipeline publishes commits to, and the gate the
+    /// source's revocations wait on (Kafka with `kafka.changelog`).
+    fn changelog(
+        &self,
+    ) -> Option<(std::sync::Arc<dyn crate::pipeline::changelog::Changelog>, crate::pipeline::changelog::CommitGate)>
+    {
+        None
+    }
     /// Total consumer lag, if known.
     fn lag(&self) -> Option<u64> {
         None

@@ -11,9 +11,12 @@
 //!   when the input is not keyed by user).
 //! - [`sink`]: [`KafkaSink`], credit rows, paths and dead letters to topics.
 //! - [`repartition`]: stage 1 for input not keyed by user.
+//! - [`changelog`]: [`changelog::KafkaChangelog`], each partition's state
+//!   published to a compacted topic and restored from it on another instance.
 //! - [`encode`]: JSON or protobuf payloads of the output topics.
 //! - [`erase`]: `POST /v1/erase` in Kafka mode, an erase to every input partition.
 
+pub mod changelog;
 pub mod encode;
 pub mod erase;
 pub mod repartition;

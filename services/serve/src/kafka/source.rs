@@ -1,25 +1,56 @@
 //! The consumer: stage 2 of the repartitioned input, or the only stage.
 
 use std::collections::{BTreeMap, BTreeSet};
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result};
-use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer};
+use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer, ConsumerContext, Rebalance};
 use rdkafka::message::Message;
-use rdkafka::{Offset, TopicPartitionList};
+use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
+use super::changelog::KafkaChangelog;
 use super::consumer_config;
 use super::repartition::Repartitioner;
 use crate::config::{Config, Format};
 use crate::metrics::Metrics;
+use crate::pipeline::changelog::{Changelog, CommitGate};
 use crate::pipeline::{now_ms, Pipeline};
 use crate::source::ErrorLog;
 use crate::source::{InMsg, MsgStatus, PartId, Payload, Source};
 
+/// How long a revocation waits for the commit being written (within the
+/// default `max.poll.interval.ms` of 5 minutes, so the instance stays in
+/// the group).
+const REVOKE_WAIT: Duration = Duration::from_secs(120);
+
+/// The consumer's rebalance hook: a revocation waits until the commit the
+/// sink thread is writing is in the changelog, so the partitions' next
+/// owners restore every commit this instance made.
+pub struct RevokeGate {
+    gate: Option<CommitGate>,
+}
+
+impl ClientContext for RevokeGate {}
+
+impl ConsumerContext for RevokeGate {
+    fn pre_rebalance(&self, _consumer: &BaseConsumer<Self>, rebalance: &Rebalance<'_>) {
+        if let (Rebalance::Revoke(_), Some(gate)) = (rebalance, &self.gate) {
+            if !gate.wait_idle(REVOKE_WAIT) {
+                tracing::warn!(
+                    waited_s = REVOKE_WAIT.as_secs(),
+                    "partitions revoked while a commit is still being written (a sink or the changelog is stalled); their next owner restores the commit before it"
+                );
+            }
+        }
+    }
+}
+
 /// The consumer side: stage 2 (or the only stage), plus stage 1 when the
 /// input is not keyed by user.
 pub struct KafkaSource {
-    consumer: BaseConsumer,
+    consumer: BaseConsumer<RevokeGate>,
+    changelog: Option<(Arc<KafkaChangelog>, CommitGate)>,
     payloads: BTreeMap<String, Payload>,
     assigned: BTreeSet<PartId>,
     repartition: Option<Repartitioner>,
@@ -36,7 +67,13 @@ impl KafkaSource {
     /// Connects and subscribes.
     pub fn new(cfg: &Config, metrics: &Metrics) -> Result<KafkaSource> {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
-        let consumer: BaseConsumer = consumer_config(k, &k.group_id).create().context("creating the Kafka consumer")?;
+        let changelog = match k.changelog {
+            true => Some((Arc::new(KafkaChangelog::new(k, metrics)?), CommitGate::default())),
+            false => None,
+        };
+        let context = RevokeGate { gate: changelog.as_ref().map(|(_, g)| g.clone()) };
+        let consumer: BaseConsumer<RevokeGate> =
+            consumer_config(k, &k.group_id).create_with_context(context).context("creating the Kafka consumer")?;
         let mut payloads = BTreeMap::new();
         let repartition = if k.input_keyed_by_user {
             for t in &k.input_topics {
@@ -52,6 +89,7 @@ impl KafkaSource {
         };
         Ok(KafkaSource {
             consumer,
+            changelog,
             payloads,
             assigned: BTreeSet::new(),
             repartition,
@@ -73,6 +111,10 @@ impl KafkaSource {
         }
         for new in now.difference(&self.assigned).cloned().collect::<Vec<_>>() {
             let payload = *self.payloads.get(&new.source).unwrap_or(&Payload::Event(Format::Json));
+            if let (Some((log, _)), false) = (&self.changelog, pipeline.is_open(&new)) {
+                log.prepare_partition(pipeline.store(), &new)
+                    .with_context(|| format!("preparing partition {} from its changelog", new.store_name()))?;
+            }
             let committed = pipeline.open_partition(&new, payload)?;
             tracing::info!(topic = %new.source, partition = new.partition, store_offset = ?committed, "partition assigned");
         }
@@ -185,6 +227,10 @@ impl Source for KafkaSource {
 
     fn lag(&self) -> Option<u64> {
         self.lag
+    }
+
+    fn changelog(&self) -> Option<(Arc<dyn Changelog>, CommitGate)> {
+        self.changelog.as_ref().map(|(log, gate)| (log.clone() as Arc<dyn Changelog>, gate.clone()))
     }
 
     fn ready(&self) -> bool {

@@ -14,12 +14,14 @@
 //! - [`emit`]: effects to rows, statistics and counters.
 //! - [`partition`]: one partition's state, opened from and committed to the store.
 
+pub mod changelog;
 pub mod decode;
 pub mod emit;
 pub mod partition;
 pub mod policy;
 
 use std::collections::BTreeMap;
+use std::sync::Arc;
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use anyhow::{Context, Result};
@@ -36,6 +38,7 @@ use crate::metrics::Metrics;
 use crate::refit::Refit;
 use crate::source::{InMsg, MsgStatus, PartId, Payload};
 use apportion_store::Decision;
+use changelog::{Changelog, CommitGate, GateTicket};
 use partition::{Idle, PartState};
 use policy::Lateness;
 
@@ -59,6 +62,9 @@ pub struct Pipeline {
     prepared: bool,
     /// Partitions revoked while a commit was prepared.
     closing: Vec<PartId>,
+    /// Where commits are published before the store writes them, and the
+    /// gate that counts the commits being written.
+    changelog: Option<(Arc<dyn Changelog>, CommitGate)>,
 }
 
 /// Every open partition's commit, collected by [`Pipeline::prepare_commit`]
@@ -67,6 +73,10 @@ pub struct PreparedBatch {
     parts: Vec<(PartId, partition::PreparedPart)>,
     store: Store,
     durable: bool,
+    changelog: Option<Arc<dyn Changelog>>,
+    published: bool,
+    /// Counted as being written until dropped.
+    ticket: Option<GateTicket>,
 }
 
 impl PreparedBatch {
@@ -74,13 +84,32 @@ impl PreparedBatch {
     /// and offsets durable. Any thread (the sink thread does it right after
     /// the sinks have the batch's output); [`Pipeline::apply_commit`]
     /// finishes it on the pipeline's.
+    /// With a changelog, every partition's commit is published there first
+    /// (a [`changelog::PublishError`] when that fails: nothing is written
+    /// to the store, and writing again publishes again).
     pub fn write(&mut self) -> Result<()> {
+        if let (Some(log), false) = (&self.changelog, self.published) {
+            let sets: Vec<(&PartId, Vec<&apportion_store::ChangeSet>)> =
+                self.parts.iter().map(|(id, p)| (id, p.changes())).collect();
+            let offsets = log.publish(&sets)?;
+            for ((_, p), o) in self.parts.iter_mut().zip(offsets) {
+                p.set_changelog_offset(o);
+            }
+            self.published = true;
+        }
         for (_, p) in self.parts.iter_mut() {
             p.write()?;
         }
         self.store.flush()?;
         self.durable = true;
+        self.release();
         Ok(())
+    }
+
+    /// No longer counted as being written (the sink thread is done with
+    /// it, written or not: a revocation need not wait for it).
+    pub fn release(&mut self) {
+        self.ticket = None;
     }
 }
 
@@ -101,7 +130,27 @@ impl Pipeline {
             metrics,
             prepared: false,
             closing: Vec::new(),
+            changelog: None,
         })
+    }
+
+    /// Publishes every commit to `changelog` before the store writes it;
+    /// `gate` counts the commits being written (a revocation waits for
+    /// them). A revoked partition's changes since its last commit are then
+    /// dropped, not committed: its new owner restores the last commit from
+    /// the changelog and reads the rest again.
+    pub fn set_changelog(&mut self, changelog: Arc<dyn Changelog>, gate: CommitGate) {
+        self.changelog = Some((changelog, gate));
+    }
+
+    /// True when partition `id` is open.
+    pub fn is_open(&self, id: &PartId) -> bool {
+        self.parts.contains_key(id)
+    }
+
+    /// The store.
+    pub fn store(&self) -> &Store {
+        &self.store
     }
 
     /// The configuration.
@@ -146,7 +195,12 @@ impl Pipeline {
             }
             return Ok(());
         }
-        if let Some(p) = self.parts.get_mut(id) {
+        if self.changelog.is_some() {
+            // Its next owner (maybe another instance, maybe already
+            // restoring) has the last commit from the changelog; a later one
+            // published now could land after that owner's own.
+            tracing::info!(partition = %id.store_name(), "partition closed as of its last commit");
+        } else if let Some(p) = self.parts.get_mut(id) {
             p.commit(id, self.cfg.dedupe_horizon.ms())?;
             self.store.flush()?;
         }
@@ -486,7 +540,8 @@ impl Pipeline {
     /// snapshot, each partition in one atomic batch. Call after the sinks
     /// have the batch's output.
     pub fn commit(&mut self) -> Result<()> {
-        let prepared = self.prepare_commit()?;
+        let mut prepared = self.prepare_commit()?;
+        prepared.write()?;
         self.apply_commit(prepared)
     }
 
@@ -501,7 +556,11 @@ impl Pipeline {
             parts.push((id.clone(), p.prepare_commit(id, horizon)?));
         }
         self.prepared = true;
-        Ok(PreparedBatch { parts, store: self.store.clone(), durable: false })
+        let (changelog, ticket) = match &self.changelog {
+            Some((log, gate)) => (Some(log.clone()), Some(gate.enter())),
+            None => (None, None),
+        };
+        Ok(PreparedBatch { parts, store: self.store.clone(), durable: false, changelog, published: false, ticket })
     }
 
     /// The second half of [`Pipeline::commit`]: writes a prepared batch and

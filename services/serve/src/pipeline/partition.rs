@@ -9,7 +9,7 @@ use std::time::Instant;
 use anyhow::{Context, Result};
 use apportion_engine::datadriven::PathStats;
 use apportion_engine::registry::ModelPlan;
-use apportion_store::{Clock, Decision, PartitionStore, Store};
+use apportion_store::{ChangeSet, Clock, Decision, PartitionStore, Store};
 
 use crate::kafka::repartition::SourceClocks;
 use crate::refit::Snapshot;
@@ -111,6 +111,9 @@ pub struct PartState {
     /// latency histogram); an entry leaves when the conversion is credited
     /// or erased, or with the partition.
     pub arrivals: HashMap<String, Instant>,
+    /// Decisions written to the store and not yet in a commit (a changelog
+    /// publishes them with the next one).
+    pub unpublished: ChangeSet,
 }
 
 impl PartState {
@@ -176,6 +179,7 @@ impl PartState {
             source_position: None,
             sources,
             arrivals: HashMap::new(),
+            unpublished: ChangeSet::default(),
         })
     }
 
@@ -188,7 +192,8 @@ impl PartState {
     /// Makes the recorded decisions durable.
     pub fn persist_decisions(&mut self) -> Result<()> {
         if !self.decisions.unsaved.is_empty() {
-            self.store.record_decisions(&self.decisions.unsaved)?;
+            let written = self.store.record_decisions(&self.decisions.unsaved)?;
+            self.unpublished.extend(written);
             self.decisions.unsaved.clear();
         }
         Ok(())
@@ -235,7 +240,8 @@ impl PartState {
         if self.clock.watermark != i64::MIN {
             self.store.prune_seen(self.clock.watermark.saturating_sub(dedupe_horizon_ms))?;
         }
-        Ok(PreparedPart { store: self.store.prepare(), offset })
+        let decisions = std::mem::take(&mut self.unpublished);
+        Ok(PreparedPart { store: self.store.prepare(), offset, decisions })
     }
 
     /// The second half of [`PartState::commit`]: writes a prepared commit
@@ -257,9 +263,22 @@ impl PartState {
 pub struct PreparedPart {
     store: apportion_store::Prepared,
     offset: Option<i64>,
+    /// Decisions recorded since the last commit (already in the store).
+    decisions: ChangeSet,
 }
 
 impl PreparedPart {
+    /// What its changelog publishes, in order: the decisions recorded since
+    /// the last commit, then the commit's writes.
+    pub fn changes(&self) -> Vec<&ChangeSet> {
+        vec![&self.decisions, self.store.changes()]
+    }
+
+    /// Records, with the commit, the changelog offset it was published at.
+    pub fn set_changelog_offset(&mut self, offset: i64) {
+        self.store.set_changelog_offset(offset);
+    }
+
     /// Writes the partition's commit to sled (not flushed); any thread.
     pub fn write(&mut self) -> Result<()> {
         Ok(self.store.write()?)
