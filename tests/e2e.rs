@@ -11,4 +11,5 @@ mod metrics_lint;
 mod no_raw_ids;
 mod output_pin;
 mod report_browser;
+mod scale_out;
 mod warehouse;

@@ -93,7 +93,8 @@ pub fn create_topics(brokers: &str, names: &[&str], partitions: i32, configs: &[
 }
 
 /// Minimal executor for the admin client's futures (no async runtime needed).
-fn futures_block_on<F: std::future::Future>(f: F) -> F::Output {
+/// Drives a future to completion on this thread (the admin client's futures need no runtime).
+pub fn futures_block_on<F: std::future::Future>(f: F) -> F::Output {
     use std::sync::{Arc, Condvar, Mutex};
     use std::task::{Context, Poll, Wake, Waker};
     struct Signal(Mutex<bool>, Condvar);
@@ -529,4 +530,48 @@ impl Drop for PrivateBroker {
             .env("APPORTION_DEV_RUN_DIR", self.run_dir.path())
             .output();
     }
+}
+
+/// Waits until `s` has accepted at least `n` events (its metrics).
+pub fn wait_accepted(s: &Serve, n: u64, timeout: Duration) {
+    let start = std::time::Instant::now();
+    let mut seen = 0;
+    while start.elapsed() < timeout {
+        if let Some((200, m)) = s.get("/metrics") {
+            seen = m
+                .lines()
+                .filter(|l| l.starts_with("apportion_events_consumed_total{") && l.contains("outcome=\"accepted\""))
+                .filter_map(|l| l.rsplit(' ').next()?.parse::<f64>().ok())
+                .sum::<f64>() as u64;
+            if seen >= n {
+                return;
+            }
+        }
+        std::thread::sleep(Duration::from_millis(300));
+    }
+    let metrics = s.get("/metrics").map(|m| m.1).unwrap_or_default();
+    let consumed: Vec<&str> =
+        metrics.lines().filter(|l| l.starts_with("apportion_events_consumed_total{") && !l.ends_with(" 0")).collect();
+    panic!("only {seen} of {n} events accepted ({consumed:?}): {}", std::fs::read_to_string(&s.log).unwrap());
+}
+
+/// At-least-once delivery of `want`: every credit row of `want` in `got`,
+/// nothing else, and a row seen twice is the same row both times (rows
+/// carry deterministic ids). Returns the number of repeated rows.
+pub fn assert_same_credit_at_least_once(got: &[Value], want: &[Value], log: &Path) -> usize {
+    let mut by_id: std::collections::HashMap<String, Value> = std::collections::HashMap::new();
+    for r in got {
+        let id = r["credit_id"].as_str().unwrap().to_string();
+        if let Some(prev) = by_id.get(&id) {
+            assert_eq!(prev, r, "credit_id {id} seen with two different values");
+        }
+        by_id.insert(id, r.clone());
+    }
+    let want_ids: std::collections::HashSet<String> =
+        want.iter().map(|r| r["credit_id"].as_str().unwrap().to_string()).collect();
+    let got_ids: std::collections::HashSet<String> = by_id.keys().cloned().collect();
+    assert_eq!(got_ids, want_ids, "log: {}", std::fs::read_to_string(log).unwrap_or_default());
+    let unique_rows: Vec<Value> = by_id.into_values().collect();
+    assert_eq!(canonical(&unique_rows), canonical(want));
+    got.len() - unique_rows.len()
 }

@@ -1,0 +1,163 @@
+//! State that follows a partition from one instance to another through its
+//! changelog topic (docs/contract.md, "State across instances"): a moved
+//! partition keeps its journeys, a killed instance's partitions are
+//! restored elsewhere, instances join and leave mid-stream.
+//! Check values: the rows of `apportion replay` on the same events (the
+//! contract, "Determinism": a partition's output is a function of its
+//! messages and configuration), and the changelog topic's settings (Kafka's
+//! documented `cleanup.policy=compact` for keyed state).
+
+use std::time::Duration;
+
+use apportion_e2e::*;
+use serde_json::Value;
+
+const START: i64 = 1_780_000_000_000; // 2026-05-28, invented scenario time
+const MODELS: &str = "last_touch,first_touch,linear,time_decay,u_shaped";
+
+fn messages(events: &[GenEvent]) -> Vec<(Option<String>, Vec<u8>, Option<i32>)> {
+    events.iter().map(|e| (Some(e.user.clone()), e.line.as_bytes().to_vec(), None)).collect()
+}
+
+fn expected(dir: &std::path::Path, events: &[GenEvent]) -> Vec<Value> {
+    let p = dir.join("events.ndjson");
+    std::fs::write(&p, events.iter().map(|e| format!("{}\n", e.line)).collect::<String>()).unwrap();
+    replay(&p, &["--models", MODELS])
+}
+
+/// One instance of the group: its own data dir and admin port; `batch`
+/// events per batch; a killed member leaves the group after 6 s.
+fn instance(dir: &std::path::Path, brokers: &str, prefix: &str, batch: usize) -> Serve {
+    let admin = free_port();
+    let cfg = kafka_config(dir, brokers, admin, prefix, true, "");
+    let text = std::fs::read_to_string(&cfg).unwrap().replace("batch_size = 500", &format!("batch_size = {batch}"));
+    std::fs::write(&cfg, format!("{text}[kafka.properties]\n\"session.timeout.ms\" = \"6000\"\n")).unwrap();
+    let mut s = Serve::start(&cfg, admin, &dir.join("serve.log"));
+    s.wait_ready(Duration::from_secs(90));
+    s
+}
+
+fn credit_ids(rows: &[Value]) -> std::collections::HashSet<String> {
+    rows.iter().map(|r| r["credit_id"].as_str().unwrap().to_string()).collect()
+}
+
+fn log(dirs: &[&std::path::Path]) -> String {
+    dirs.iter().map(|d| std::fs::read_to_string(d.join("serve.log")).unwrap_or_default()).collect::<Vec<_>>().join("\n----\n")
+}
+
+/// Touches read by instance A, which stops; the conversions after them
+/// arrive at instance B, on another data dir: credited with A's touches,
+/// exactly as replay credits them. Without the changelog B would start with
+/// no journeys (touches before the move never credited).
+#[test]
+fn a_partition_moved_to_another_instance_keeps_its_journeys() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("move");
+    let (a, b, d) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    create_topics(&brokers, &[&format!("{prefix}-events")], 2, &[]);
+    let mut events = scenario(500, 31, START);
+    events.sort_by_key(|e| e.ts);
+    let want = expected(d.path(), &events);
+    let half = events.len() / 2;
+    // Some conversions of the second half have touches in the first.
+    let users_first: std::collections::HashSet<&str> = events[..half].iter().map(|e| e.user.as_str()).collect();
+    assert!(events[half..].iter().any(|e| e.conversion && users_first.contains(e.user.as_str())));
+
+    produce(&brokers, &format!("{prefix}-events"), &messages(&events[..half]));
+    let mut first = instance(a.path(), &brokers, &prefix, 500);
+    wait_accepted(&first, half as u64, Duration::from_secs(90));
+    assert_eq!(first.signal("TERM").code(), Some(0), "{}", log(&[a.path()]));
+
+    produce(&brokers, &format!("{prefix}-events"), &messages(&events[half..]));
+    let mut second = instance(b.path(), &brokers, &prefix, 500);
+    let want_ids = credit_ids(&want);
+    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| {
+        credit_ids(rows).len() >= want_ids.len()
+    });
+    let repeated = assert_same_credit_at_least_once(&got, &want, &b.path().join("serve.log"));
+    assert_eq!(repeated, 0, "a clean stop hands over every commit: no row twice");
+    let second_log = log(&[b.path()]);
+    assert!(second_log.contains("partition restored from its changelog"), "{second_log}");
+    assert_eq!(second.signal("TERM").code(), Some(0));
+
+    // The changelog topic as the service created it: compacted, partitioned
+    // like the input.
+    let topic = format!("{prefix}-group-{prefix}-events-changelog");
+    let (partitions, policy) = topic_settings(&brokers, &topic);
+    assert_eq!(partitions, 2);
+    assert_eq!(policy.as_deref(), Some("compact"));
+}
+
+/// The partition count and `cleanup.policy` of a topic.
+fn topic_settings(brokers: &str, topic: &str) -> (usize, Option<String>) {
+    use rdkafka::admin::{AdminClient, AdminOptions, ResourceSpecifier};
+    use rdkafka::client::DefaultClientContext;
+    use rdkafka::consumer::{BaseConsumer, Consumer};
+    use rdkafka::ClientConfig;
+    let c: BaseConsumer = ClientConfig::new().set("bootstrap.servers", brokers).create().unwrap();
+    let md = c.fetch_metadata(Some(topic), Duration::from_secs(10)).unwrap();
+    let partitions = md.topics()[0].partitions().len();
+    let admin: AdminClient<DefaultClientContext> =
+        ClientConfig::new().set("bootstrap.servers", brokers).create().unwrap();
+    let described = futures_block_on(admin.describe_configs([&ResourceSpecifier::Topic(topic)], &AdminOptions::new()));
+    let policy = described.unwrap().into_iter().next().unwrap().ok().and_then(|r| r.get("cleanup.policy")?.value.clone());
+    (partitions, policy)
+}
+
+/// Instance A is killed mid-stream (kill -9); instance B, on another data
+/// dir, takes its partitions from their changelogs and finishes the stream:
+/// every credit row replay gives, a repeated row only as the same row.
+#[test]
+fn a_killed_instance_s_partitions_are_restored_on_another() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("kill");
+    let (a, b, d) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    create_topics(&brokers, &[&format!("{prefix}-events")], 4, &[]);
+    let mut events = scenario(1500, 37, START);
+    events.sort_by_key(|e| e.ts);
+    let want = expected(d.path(), &events);
+    produce(&brokers, &format!("{prefix}-events"), &messages(&events));
+
+    let mut first = instance(a.path(), &brokers, &prefix, 50);
+    let partial = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 300);
+    assert!(partial.len() < want.len(), "stream finished before the kill; make the scenario larger");
+    first.signal("KILL");
+    let mut second = instance(b.path(), &brokers, &prefix, 50);
+    let want_ids = credit_ids(&want);
+    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(180), |rows| {
+        credit_ids(rows).len() >= want_ids.len()
+    });
+    let repeated = assert_same_credit_at_least_once(&got, &want, &b.path().join("serve.log"));
+    eprintln!("kill -9 and move: {} rows, {repeated} repeated", got.len());
+    assert!(log(&[b.path()]).contains("partition restored from its changelog"));
+    assert_eq!(second.signal("TERM").code(), Some(0));
+}
+
+/// Instance A works alone; B joins mid-stream (the partitions are split);
+/// A leaves; B finishes: the same credit as replay, a repeated row only as
+/// the same row. Every hand-over waits for the commit in flight.
+#[test]
+fn instances_joining_and_leaving_mid_stream_give_the_same_credit() {
+    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
+    let prefix = unique("join");
+    let (a, b, d) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    create_topics(&brokers, &[&format!("{prefix}-events")], 4, &[]);
+    let mut events = scenario(3000, 41, START);
+    events.sort_by_key(|e| e.ts);
+    let want = expected(d.path(), &events);
+    produce(&brokers, &format!("{prefix}-events"), &messages(&events));
+
+    let mut first = instance(a.path(), &brokers, &prefix, 50);
+    consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 200);
+    let mut second = instance(b.path(), &brokers, &prefix, 50);
+    let mid = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 1200);
+    assert!(credit_ids(&mid).len() < credit_ids(&want).len(), "stream finished before A left; make it larger");
+    assert_eq!(first.signal("TERM").code(), Some(0), "{}", log(&[a.path()]));
+    let want_ids = credit_ids(&want);
+    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(180), |rows| {
+        credit_ids(rows).len() >= want_ids.len()
+    });
+    let repeated = assert_same_credit_at_least_once(&got, &want, &b.path().join("serve.log"));
+    eprintln!("join and leave: {} rows, {repeated} repeated", got.len());
+    assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[a.path(), b.path()]));
+}
