@@ -252,6 +252,30 @@ wait_consumed() {
   done
 }
 
+# Restore cost: a second instance of the same group on an empty data dir
+# takes every partition from its changelog; timed from start to /readyz 200
+# (the restore ends before the partitions open). Uses the caller's cfg,
+# dir, port, tag and logs.
+restore_part() {
+  local journeys r0 r1 rpid rw restored cfg2="$dir/apportion-restore.toml"
+  journeys="$(awk '/^apportion_journeys_open / { print $NF }' "$logs/serve-$tag-$events.metrics")"
+  sed "s#^data_dir = .*#data_dir = \"$dir/data-restore\"#" "$cfg" > "$cfg2"
+  say "restore: a new instance on an empty data dir, $journeys open journeys in the changelogs"
+  r0=$(date +%s.%N)
+  "$bin" serve --config "$cfg2" > "$logs/serve-restore-$events.log" 2>&1 &
+  rpid=$!
+  until curl -sf "127.0.0.1:$port/readyz" > /dev/null 2>&1; do
+    kill -0 "$rpid" 2>/dev/null || { tail -n 30 "$logs/serve-restore-$events.log" >&2; echo "bench.sh: the restoring instance exited" >&2; exit 1; }
+    sleep 0.1
+  done
+  r1=$(date +%s.%N)
+  restored="$(curl -sf "127.0.0.1:$port/metrics" | awk '/^apportion_changelog_records_total\{direction="restored"\}/ { print $NF }')"
+  kill -TERM "$rpid"; wait "$rpid" || true
+  rw=$(awk -v a="$r0" -v b="$r1" 'BEGIN { printf "%.2f", b - a }')
+  say "restore: ${rw}s to ready, $restored changelog records read, $(awk -v w="$rw" -v j="$journeys" 'BEGIN { if (j > 0) printf "%.2f", w / j * 100000; else print "-" }') s per 100k open journeys"
+  row "restore from changelog ($journeys open journeys, $restored records)" "$rw" "-" "-" "-" "-" "-"
+}
+
 kafka_part() {
   local kafka="${APPORTION_TEST_KAFKA:-}" topic perf_log perf_rate perf_wall t0 t1 t2
   if [ -z "$kafka" ]; then
@@ -292,11 +316,13 @@ kafka_part() {
   row "ConsumerPerformance (whole JVM process)" "$pp_wall" "$(eps "$lines" "$pp_wall")" \
     "$(tv_rss "$logs/consumer-perf-process-$events.log")" "-" "-" "-"
 
-  local sets=("rules:$rules")
+  # rules-nolog: the same with kafka.changelog = false (no changelog topic)
+  local sets=("rules:$rules" "rules-nolog:$rules")
   [ "$dd_serve" = 1 ] && sets+=("seven:$seven")
-  local s tag models dir port pid n hwm cfg limit rows_line
+  local s tag models dir port pid n hwm cfg limit rows_line changelog
   for s in "${sets[@]}"; do
     tag="${s%%:*}"; models="${s#*:}"
+    changelog=true; [ "${tag%-nolog}" != "$tag" ] && changelog=false
     dir="$work/serve-$tag"
     rm -rf "$dir"; mkdir -p "$dir"
     port="$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')"
@@ -318,8 +344,9 @@ paths_topic = "$topic-$tag-paths"
 dead_letter_topic = "$topic-$tag-dead"
 repartition_topic = "$topic-$tag-repart"
 input_keyed_by_user = true
+changelog = $changelog
 EOF
-    say "serve ($tag): $models, until $lines messages are consumed"
+    say "serve ($tag): $models, changelog $changelog, until $lines messages are consumed"
     t0=$(date +%s.%N)
     "$bin" serve --config "$cfg" > "$logs/serve-$tag-$events.log" 2>&1 &
     pid=$!
@@ -338,8 +365,9 @@ EOF
       --describe --group "$topic-$tag-group" > "$logs/serve-$tag-$events.lag" 2>&1 || true
     local lag; lag="$(awk '$2 == "'"$topic-events"'" && $6 ~ /^[0-9]+$/ { s += $6 } END { printf "%.0f", s }' "$logs/serve-$tag-$events.lag")"
     say "serve ($tag): committed lag after stop: ${lag:-?} (ConsumerGroupCommand)"
-    row "serve $models (kafka in/out)" "$sw" "$(eps "$lines" "$sw")" "$hwm" "ConsumerPerformance" "$perf_wall" \
+    row "serve $models (kafka in/out, changelog $changelog)" "$sw" "$(eps "$lines" "$sw")" "$hwm" "ConsumerPerformance" "$perf_wall" \
       "$(ratio "$(eps "$lines" "$sw")" "$perf_rate")"
+    if [ "$tag" = rules ]; then restore_part; fi
     rm -rf "$dir"
   done
   # best effort: the topics hold a copy of the input

@@ -206,7 +206,7 @@ fn no_raw_id_in_state_logs_metrics_or_output() {
 /// The same scenario through `serve` on the real broker, input not keyed by
 /// user (so the internal repartition topic is used), debug logs: no raw id
 /// in any message (key or payload) of the repartition, credit, path,
-/// dead-letter or erasure topics, in the store, the log or /metrics. The
+/// dead-letter, erasure or changelog topics, in the store, the log or /metrics. The
 /// input topic itself holds them (the search is shown to find them there).
 #[test]
 fn no_raw_id_in_kafka_topics() {
@@ -243,7 +243,10 @@ fn no_raw_id_in_kafka_topics() {
     assert_eq!(s.signal("TERM").code(), Some(0));
     let short = Duration::from_secs(3);
     let mut found = Vec::new();
-    for name in ["repart", "credit", "paths", "dead", "erasures"] {
+    // The changelog of the state (docs/contract.md, "State across
+    // instances"): the repartition topic's, the input not being keyed.
+    let changelog = format!("group-{prefix}-repart-changelog");
+    for name in ["repart", "credit", "paths", "dead", "erasures", changelog.as_str()] {
         let all = consume_raw_until(&brokers, &topic(name), short, |_| false);
         if name != "paths" {
             assert!(!all.is_empty(), "topic {name} holds messages");

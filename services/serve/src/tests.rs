@@ -502,6 +502,8 @@ mod redelivery {
     //! (docs/contract.md, "Determinism").
 
     use super::*;
+    use crate::pipeline::changelog::{Changelog, CommitGate};
+    use apportion_store::{ChangeSet, COMMIT_MARKER};
     use proptest::prelude::*;
 
     /// Processing time of every message: long after the events.
@@ -559,30 +561,103 @@ mod redelivery {
     /// Largest arrival delay, = the allowed lateness.
     const JITTER: i64 = 2 * 3600 * SEC;
 
+    /// A changelog record: key, and value (`None`: a tombstone).
+    type Record = (Vec<u8>, Option<Vec<u8>>);
+
+    /// A changelog in memory: every published record in order (what a
+    /// Kafka partition would hold before compaction).
+    #[derive(Default, Clone)]
+    struct MemChangelog {
+        log: Arc<Mutex<Vec<Record>>>,
+    }
+
+    impl Changelog for MemChangelog {
+        fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> anyhow::Result<Vec<i64>> {
+            let mut log = self.log.lock().unwrap();
+            let mut offsets = Vec::new();
+            for (_, sets) in parts {
+                for (k, v) in sets.iter().flat_map(|s| s.iter()) {
+                    log.push((k.to_vec(), v.map(<[u8]>::to_vec)));
+                }
+                log.push((COMMIT_MARKER.to_vec(), Some(Vec::new())));
+                offsets.push(log.len() as i64 - 1);
+            }
+            Ok(offsets)
+        }
+    }
+
+    impl MemChangelog {
+        /// Rebuilds the partition in `store` from every record.
+        fn restore(&self, store: &Store) {
+            let log = self.log.lock().unwrap();
+            let mut r = store.restore(&part().store_name()).unwrap();
+            for (k, v) in log.iter() {
+                r.record(k, v.as_deref()).unwrap();
+            }
+            r.finish(log.len() as i64 - 1).unwrap();
+        }
+    }
+
     proptest! {
         #![proptest_config(ProptestConfig::with_cases(48))]
         #[test]
         fn committed_rows_equal_replay(events in arb_events(), steps in arb_steps()) {
+            committed_rows_equal_replay_with(events, steps, false)?;
+        }
+
+        /// With a changelog, a crash loses the instance: the partition goes
+        /// on in a new store restored from the changelog (docs/contract.md,
+        /// "State across instances"), with the same rows.
+        #[test]
+        fn committed_rows_equal_replay_when_a_crash_moves_the_partition(events in arb_events(), steps in arb_steps()) {
+            committed_rows_equal_replay_with(events, steps, true)?;
+        }
+    }
+
+    fn committed_rows_equal_replay_with(
+        events: Vec<Vec<u8>>,
+        steps: Vec<Step>,
+        moves: bool,
+    ) -> Result<(), TestCaseError> {
+        {
             let cfg = Config {
                 models: ModelId::RULES.to_vec(),
                 expiry: Period(5 * 3600 * SEC),
                 allowed_lateness: Period(JITTER),
                 ..config()
             };
-            let dir = tempfile::tempdir().unwrap();
-            let open = || {
-                let mut p = pipeline(cfg.clone(), Store::open(dir.path()).unwrap());
+            let steps_crashed = steps.iter().filter(|s| matches!(s, Step::Crash(_))).count();
+            let changelog = MemChangelog::default();
+            // A new directory per instance when the partition moves.
+            let dirs = std::cell::RefCell::new(vec![tempfile::tempdir().unwrap()]);
+            let open = |fresh: bool| {
+                if fresh && moves {
+                    dirs.borrow_mut().push(tempfile::tempdir().unwrap());
+                }
+                let store = Store::open(dirs.borrow().last().unwrap().path()).unwrap();
+                if fresh && moves {
+                    changelog.restore(&store);
+                }
+                let mut p = pipeline(cfg.clone(), store);
+                if moves {
+                    p.set_changelog(Arc::new(changelog.clone()), CommitGate::default());
+                }
                 let committed = p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
                 (p, committed.unwrap_or(0))
             };
-            let (mut p, mut next) = open();
+            let (mut p, mut next) = open(false);
             let mut rows: Vec<String> = Vec::new();
             let mut paths = 0;
             let total = events.len() as i64;
             let deliver = |p: &mut Pipeline, from: i64, n: usize| {
                 let upto = (from + n as i64).min(total);
                 let batch: Vec<InMsg> = (from..upto)
-                    .map(|o| InMsg { offset: o + 1, payload: events[o as usize].clone(), arrived: Instant::now(), timestamp_ms: PROCESSING_MS })
+                    .map(|o| InMsg {
+                        offset: o + 1,
+                        payload: events[o as usize].clone(),
+                        arrived: Instant::now(),
+                        timestamp_ms: PROCESSING_MS,
+                    })
                     .collect();
                 let mut out = OutputBatch::default();
                 p.process(&part(), &batch, &mut out).unwrap();
@@ -600,14 +675,14 @@ mod redelivery {
                     Step::Crash(n) => {
                         let _ = deliver(&mut p, next, n);
                         drop(p);
-                        let reopened = open();
+                        let reopened = open(true);
                         p = reopened.0;
                         prop_assert_eq!(reopened.1, next, "the committed offset survives the crash");
                     }
                     Step::Restart => {
                         p.flush().unwrap();
                         drop(p);
-                        p = open().0;
+                        p = open(false).0;
                     }
                 }
             }
@@ -629,7 +704,11 @@ mod redelivery {
             rows.sort();
             prop_assert_eq!(rows, want_rows);
             prop_assert_eq!(paths, want.paths.len());
+            if moves {
+                prop_assert_eq!(dirs.borrow().len(), 1 + steps_crashed, "one new store per crash");
+            }
         }
+        Ok(())
     }
 }
 

@@ -80,6 +80,9 @@ fn changelog_producer(k: &KafkaConfig) -> Result<BaseProducer<MarkerDelivery>> {
     if !k.properties.contains_key("linger.ms") {
         c.set("linger.ms", "5");
     }
+    if !k.properties.contains_key("compression.type") {
+        c.set("compression.type", "lz4");
+    }
     c.create_with_context(MarkerDelivery::default()).context("creating the changelog producer")
 }
 
