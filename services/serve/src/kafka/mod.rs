@@ -44,7 +44,9 @@ fn base_config(k: &KafkaConfig) -> ClientConfig {
 }
 
 /// Consumer configuration: manual offsets, start from the earliest offset
-/// for a new group.
+/// for a new group, and (unless `[kafka.properties]` names another)
+/// cooperative-sticky assignment: a rebalance moves only the partitions that
+/// change owner, the others keep working and keep their state in memory.
 pub fn consumer_config(k: &KafkaConfig, group: &str) -> ClientConfig {
     let mut c = base_config(k);
     c.set("group.id", group)
@@ -52,5 +54,8 @@ pub fn consumer_config(k: &KafkaConfig, group: &str) -> ClientConfig {
         .set("enable.auto.offset.store", "false")
         .set("auto.offset.reset", "earliest")
         .set("enable.partition.eof", "false");
+    if !k.properties.contains_key("partition.assignment.strategy") {
+        c.set("partition.assignment.strategy", "cooperative-sticky");
+    }
     c
 }
