@@ -5,8 +5,12 @@
 //!
 //! The marker makes a commit the unit of restore: records after the last
 //! marker belong to a commit whose publication did not finish (the process
-//! died in the middle) and are not applied; the instance that processes
-//! the same input again publishes the same commit in full.
+//! died in the middle) and are not applied. They stay in the log, though,
+//! and the next commit's marker would cover them, so the restoring instance
+//! publishes an undo first ([`Restored::undo`]): every key of that tail set
+//! back to its restored value (or removed), then a marker. The log then
+//! gives the restored state whatever compaction keeps (a later record of a
+//! key wins).
 
 use sled::IVec;
 
@@ -56,12 +60,33 @@ impl Restore {
     /// Ends the restore with the changelog read up to `read_through` (the
     /// offset of the last record read): records of an unfinished commit
     /// are dropped, the offset is recorded, and everything is made durable.
-    /// Returns the number of records applied.
-    pub fn finish(self, read_through: i64) -> Result<u64, StoreError> {
+    pub fn finish(self, read_through: i64) -> Result<Restored, StoreError> {
+        let mut undo = ChangeSet::default();
+        let mut seen = std::collections::BTreeSet::new();
+        for (key, _) in self.pending.iter() {
+            if seen.insert(key.to_vec()) {
+                match self.tree.get(key)? {
+                    Some(v) => undo.set(IVec::from(key), v),
+                    None => undo.remove(IVec::from(key)),
+                }
+            }
+        }
         self.tree.insert(CHANGELOG_OFFSET_KEY, &read_through.to_be_bytes()[..])?;
         self.db.flush()?;
-        Ok(self.applied)
+        Ok(Restored { applied: self.applied, undo })
     }
+}
+
+/// What a restore did.
+#[derive(Debug)]
+pub struct Restored {
+    /// Records applied.
+    pub applied: u64,
+    /// Writes that undo the records of an unfinished commit at the end of
+    /// the log (each of its keys back to the restored value, or removed):
+    /// publish them, with a marker, before anything else (empty: nothing to
+    /// undo).
+    pub undo: ChangeSet,
 }
 
 /// Every record of a tree as a changelog carries it (the local changelog

@@ -59,7 +59,7 @@ mod partition;
 mod seen;
 mod stats_keys;
 
-pub use changelog::{Restore, COMMIT_MARKER};
+pub use changelog::{Restore, Restored, COMMIT_MARKER};
 pub use changes::ChangeSet;
 pub use codec::{
     decode_clock, decode_journey, decode_offset, decode_stats, encode_clock, encode_journey, encode_stats, Clock,

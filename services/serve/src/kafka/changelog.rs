@@ -260,10 +260,19 @@ impl KafkaChangelog {
                 );
             }
         }
-        let applied = restore.finish(high - 1)?;
+        let restored = restore.finish(high - 1)?;
         self.metrics.changelog_records.with_label_values(&["restored"]).inc_by(read);
+        if !restored.undo.is_empty() {
+            // The log ends with part of a commit that was never finished:
+            // its keys go back to the restored values before anything else
+            // is published, or a later marker would cover them.
+            tracing::warn!(partition = %name, keys = restored.undo.len(), "the changelog ends with an unfinished commit; publishing its undo");
+            let offset = self.publish(&[(id, vec![&restored.undo])])?[0];
+            store.set_changelog_offset(&name, offset)?;
+            store.flush()?;
+        }
         tracing::info!(
-            partition = %name, records = read, applied, seconds = started.elapsed().as_secs_f64(),
+            partition = %name, records = read, applied = restored.applied, seconds = started.elapsed().as_secs_f64(),
             "partition restored from its changelog"
         );
         Ok(())
