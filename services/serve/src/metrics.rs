@@ -68,6 +68,8 @@ pub struct Metrics {
     pub changelog_failures: IntCounter,
     /// apportion_changelog_restoring_partitions.
     pub changelog_restoring: IntGauge,
+    /// apportion_changelog_restore_remaining_records.
+    pub changelog_remaining: IntGauge,
     /// apportion_events_without_consent_total{type}.
     pub events_without_consent: IntCounterVec,
     /// apportion_store_size_bytes.
@@ -276,6 +278,10 @@ impl Metrics {
             changelog_restoring: gauge(
                 "apportion_changelog_restoring_partitions",
                 "Partitions being restored from their changelog (the service is not ready meanwhile).",
+            ),
+            changelog_remaining: gauge(
+                "apportion_changelog_restore_remaining_records",
+                "Changelog records left to read by the restore in progress (0: none in progress).",
             ),
             _build: build,
             registry,

@@ -209,7 +209,11 @@ impl KafkaChangelog {
     ) -> Result<()> {
         let name = id.store_name();
         self.metrics.changelog_restoring.inc();
-        let _restoring = scopeguard(|| self.metrics.changelog_restoring.dec());
+        self.metrics.changelog_remaining.set(high - low);
+        let _restoring = scopeguard(|| {
+            self.metrics.changelog_restoring.dec();
+            self.metrics.changelog_remaining.set(0);
+        });
         let started = Instant::now();
         tracing::info!(partition = %name, changelog = %topic, from = low, to = high, "restoring the partition from its changelog");
         let mut tpl = TopicPartitionList::new();
@@ -240,6 +244,9 @@ impl KafkaChangelog {
                     restore.record(key, value)?;
                     last = m.offset();
                     read += 1;
+                    if read % 4096 == 0 {
+                        self.metrics.changelog_remaining.set(high - 1 - last);
+                    }
                     progress = Instant::now();
                 }
                 Some(Err(KafkaError::PartitionEOF(_))) => {
