@@ -37,6 +37,54 @@ fn instance(dir: &std::path::Path, brokers: &str, prefix: &str, batch: usize) ->
     s
 }
 
+/// A test's topic (`partitions` partitions), its events (the scenario of
+/// `users` users from `seed`, in time order) and replay's rows for them.
+struct Setup {
+    brokers: String,
+    prefix: String,
+    events: Vec<GenEvent>,
+    want: Vec<Value>,
+    _replay_dir: tempfile::TempDir,
+}
+
+fn setup(name: &str, partitions: i32, users: u32, seed: u64) -> Option<Setup> {
+    let brokers = server("APPORTION_TEST_KAFKA")?;
+    let prefix = unique(name);
+    create_topics(&brokers, &[&format!("{prefix}-events")], partitions, &[]);
+    let mut events = scenario(users, seed, START);
+    events.sort_by_key(|e| e.ts);
+    let d = tempfile::tempdir().unwrap();
+    let want = expected(d.path(), &events);
+    Some(Setup { brokers, prefix, events, want, _replay_dir: d })
+}
+
+impl Setup {
+    fn produce(&self, events: &[GenEvent]) {
+        produce(&self.brokers, &format!("{}-events", self.prefix), &messages(events));
+    }
+
+    fn instance(&self, dir: &std::path::Path, batch: usize) -> Serve {
+        instance(dir, &self.brokers, &self.prefix, batch)
+    }
+
+    /// The credit topic once it holds at least `n` rows.
+    fn credit_at_least(&self, n: usize) -> Vec<Value> {
+        consume_until(&self.brokers, &format!("{}-credit", self.prefix), Duration::from_secs(60), |r| r.len() >= n)
+    }
+
+    /// The credit topic once it holds every credit id of replay's rows,
+    /// checked as at-least-once delivery of those rows (`log` shown when
+    /// not); returns the rows read and how many were repeats.
+    fn all_credit(&self, log: &std::path::Path) -> (Vec<Value>, usize) {
+        let want_ids = credit_ids(&self.want);
+        let got = consume_until(&self.brokers, &format!("{}-credit", self.prefix), Duration::from_secs(180), |rows| {
+            credit_ids(rows).len() >= want_ids.len()
+        });
+        let repeated = assert_same_credit_at_least_once(&got, &self.want, log);
+        (got, repeated)
+    }
+}
+
 fn credit_ids(rows: &[Value]) -> std::collections::HashSet<String> {
     rows.iter().map(|r| r["credit_id"].as_str().unwrap().to_string()).collect()
 }
@@ -54,30 +102,21 @@ fn log(dirs: &[&std::path::Path]) -> String {
 /// no journeys (touches before the move never credited).
 #[test]
 fn a_partition_moved_to_another_instance_keeps_its_journeys() {
-    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
-    let prefix = unique("move");
-    let (a, b, d) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
-    create_topics(&brokers, &[&format!("{prefix}-events")], 2, &[]);
-    let mut events = scenario(500, 31, START);
-    events.sort_by_key(|e| e.ts);
-    let want = expected(d.path(), &events);
-    let half = events.len() / 2;
+    let Some(t) = setup("move", 2, 500, 31) else { return };
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let half = t.events.len() / 2;
     // Some conversions of the second half have touches in the first.
-    let users_first: std::collections::HashSet<&str> = events[..half].iter().map(|e| e.user.as_str()).collect();
-    assert!(events[half..].iter().any(|e| e.conversion && users_first.contains(e.user.as_str())));
+    let users_first: std::collections::HashSet<&str> = t.events[..half].iter().map(|e| e.user.as_str()).collect();
+    assert!(t.events[half..].iter().any(|e| e.conversion && users_first.contains(e.user.as_str())));
 
-    produce(&brokers, &format!("{prefix}-events"), &messages(&events[..half]));
-    let mut first = instance(a.path(), &brokers, &prefix, 500);
+    t.produce(&t.events[..half]);
+    let mut first = t.instance(a.path(), 500);
     wait_accepted(&first, half as u64, Duration::from_secs(90));
     assert_eq!(first.signal("TERM").code(), Some(0), "{}", log(&[a.path()]));
 
-    produce(&brokers, &format!("{prefix}-events"), &messages(&events[half..]));
-    let mut second = instance(b.path(), &brokers, &prefix, 500);
-    let want_ids = credit_ids(&want);
-    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(120), |rows| {
-        credit_ids(rows).len() >= want_ids.len()
-    });
-    let repeated = assert_same_credit_at_least_once(&got, &want, &b.path().join("serve.log"));
+    t.produce(&t.events[half..]);
+    let mut second = t.instance(b.path(), 500);
+    let (_, repeated) = t.all_credit(&b.path().join("serve.log"));
     assert_eq!(repeated, 0, "a clean stop hands over every commit: no row twice");
     let second_log = log(&[b.path()]);
     assert!(second_log.contains("partition restored from its changelog"), "{second_log}");
@@ -85,8 +124,8 @@ fn a_partition_moved_to_another_instance_keeps_its_journeys() {
 
     // The changelog topic as the service created it: compacted, partitioned
     // like the input.
-    let topic = format!("{prefix}-group-{prefix}-events-changelog");
-    let (partitions, policy) = topic_settings(&brokers, &topic);
+    let topic = format!("{p}-group-{p}-events-changelog", p = t.prefix);
+    let (partitions, policy) = topic_settings(&t.brokers, &topic);
     assert_eq!(partitions, 2);
     assert_eq!(policy.as_deref(), Some("compact"));
 }
@@ -113,25 +152,15 @@ fn topic_settings(brokers: &str, topic: &str) -> (usize, Option<String>) {
 /// every credit row replay gives, a repeated row only as the same row.
 #[test]
 fn a_killed_instance_s_partitions_are_restored_on_another() {
-    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
-    let prefix = unique("kill");
-    let (a, b, d) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
-    create_topics(&brokers, &[&format!("{prefix}-events")], 4, &[]);
-    let mut events = scenario(1500, 37, START);
-    events.sort_by_key(|e| e.ts);
-    let want = expected(d.path(), &events);
-    produce(&brokers, &format!("{prefix}-events"), &messages(&events));
-
-    let mut first = instance(a.path(), &brokers, &prefix, 50);
-    let partial = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 300);
-    assert!(partial.len() < want.len(), "stream finished before the kill; make the scenario larger");
+    let Some(t) = setup("kill", 4, 1500, 37) else { return };
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    t.produce(&t.events);
+    let mut first = t.instance(a.path(), 50);
+    let partial = t.credit_at_least(300);
+    assert!(partial.len() < t.want.len(), "stream finished before the kill; make the scenario larger");
     first.signal("KILL");
-    let mut second = instance(b.path(), &brokers, &prefix, 50);
-    let want_ids = credit_ids(&want);
-    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(180), |rows| {
-        credit_ids(rows).len() >= want_ids.len()
-    });
-    let repeated = assert_same_credit_at_least_once(&got, &want, &b.path().join("serve.log"));
+    let mut second = t.instance(b.path(), 50);
+    let (got, repeated) = t.all_credit(&b.path().join("serve.log"));
     eprintln!("kill -9 and move: {} rows, {repeated} repeated", got.len());
     assert!(log(&[b.path()]).contains("partition restored from its changelog"));
     assert_eq!(second.signal("TERM").code(), Some(0));
@@ -142,26 +171,16 @@ fn a_killed_instance_s_partitions_are_restored_on_another() {
 /// the same row. Every hand-over waits for the commit in flight.
 #[test]
 fn instances_joining_and_leaving_mid_stream_give_the_same_credit() {
-    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
-    let prefix = unique("join");
-    let (a, b, d) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
-    create_topics(&brokers, &[&format!("{prefix}-events")], 4, &[]);
-    let mut events = scenario(3000, 41, START);
-    events.sort_by_key(|e| e.ts);
-    let want = expected(d.path(), &events);
-    produce(&brokers, &format!("{prefix}-events"), &messages(&events));
-
-    let mut first = instance(a.path(), &brokers, &prefix, 50);
-    consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 200);
-    let mut second = instance(b.path(), &brokers, &prefix, 50);
-    let mid = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(60), |r| r.len() >= 1200);
-    assert!(credit_ids(&mid).len() < credit_ids(&want).len(), "stream finished before A left; make it larger");
+    let Some(t) = setup("join", 4, 3000, 41) else { return };
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    t.produce(&t.events);
+    let mut first = t.instance(a.path(), 50);
+    t.credit_at_least(200);
+    let mut second = t.instance(b.path(), 50);
+    let mid = t.credit_at_least(1200);
+    assert!(credit_ids(&mid).len() < credit_ids(&t.want).len(), "stream finished before A left; make it larger");
     assert_eq!(first.signal("TERM").code(), Some(0), "{}", log(&[a.path()]));
-    let want_ids = credit_ids(&want);
-    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(180), |rows| {
-        credit_ids(rows).len() >= want_ids.len()
-    });
-    let repeated = assert_same_credit_at_least_once(&got, &want, &b.path().join("serve.log"));
+    let (got, repeated) = t.all_credit(&b.path().join("serve.log"));
     eprintln!("join and leave: {} rows, {repeated} repeated", got.len());
     assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[a.path(), b.path()]));
 }
@@ -173,20 +192,13 @@ fn instances_joining_and_leaving_mid_stream_give_the_same_credit() {
 /// gives, a repeated row only as the same row.
 #[test]
 fn two_instances_through_five_kills_give_replay_s_credit() {
-    let Some(brokers) = server("APPORTION_TEST_KAFKA") else { return };
-    let prefix = unique("loop");
+    let Some(t) = setup("loop", 4, 3000, 43) else { return };
     let dirs = [tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap()];
-    let d = tempfile::tempdir().unwrap();
-    create_topics(&brokers, &[&format!("{prefix}-events")], 4, &[]);
-    let mut events = scenario(3000, 43, START);
-    events.sort_by_key(|e| e.ts);
-    let want = expected(d.path(), &events);
-    let mut running: Vec<Serve> = dirs.iter().map(|dir| instance(dir.path(), &brokers, &prefix, 50)).collect();
-    let chunks: Vec<&[GenEvent]> = events.chunks(events.len().div_ceil(20)).collect();
+    let mut running: Vec<Serve> = dirs.iter().map(|dir| t.instance(dir.path(), 50)).collect();
     let mut seed = 0x5eed_u64;
     let mut kills = 0;
-    for (i, chunk) in chunks.iter().enumerate() {
-        produce(&brokers, &format!("{prefix}-events"), &messages(chunk));
+    for (i, chunk) in t.events.chunks(t.events.len().div_ceil(20)).enumerate() {
+        t.produce(chunk);
         std::thread::sleep(Duration::from_millis(1500));
         if i % 4 == 1 && kills < 5 {
             seed ^= seed << 13;
@@ -195,16 +207,12 @@ fn two_instances_through_five_kills_give_replay_s_credit() {
             let victim = (seed % 2) as usize;
             running[victim].signal("KILL");
             kills += 1;
-            running[victim] = instance(dirs[victim].path(), &brokers, &prefix, 50);
+            running[victim] = t.instance(dirs[victim].path(), 50);
         }
     }
     assert_eq!(kills, 5);
-    let want_ids = credit_ids(&want);
-    let got = consume_until(&brokers, &format!("{prefix}-credit"), Duration::from_secs(180), |rows| {
-        credit_ids(rows).len() >= want_ids.len()
-    });
+    let (got, repeated) = t.all_credit(&dirs[0].path().join("serve.log"));
     let logs = log(&[dirs[0].path(), dirs[1].path()]);
-    let repeated = assert_same_credit_at_least_once(&got, &want, &dirs[0].path().join("serve.log"));
     eprintln!(
         "five kills: {} rows, {repeated} repeated, {} restores",
         got.len(),

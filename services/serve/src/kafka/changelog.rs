@@ -366,18 +366,6 @@ fn publish_with(
     Ok((offsets.ok_or("a commit marker has no delivery report")?, sent))
 }
 
-fn send(
-    p: &BaseProducer<MarkerDelivery>,
-    mut rec: BaseRecord<'_, [u8], [u8], usize>,
-) -> std::result::Result<(), String> {
-    loop {
-        match p.send(rec) {
-            Ok(()) => return Ok(()),
-            Err((KafkaError::MessageProduction(RDKafkaErrorCode::QueueFull), r)) => {
-                p.poll(Duration::from_millis(50));
-                rec = r;
-            }
-            Err((e, _)) => return Err(e.to_string()),
-        }
-    }
+fn send(p: &BaseProducer<MarkerDelivery>, rec: BaseRecord<'_, [u8], [u8], usize>) -> std::result::Result<(), String> {
+    super::sink::send_waiting(p, rec).map_err(|e| e.to_string())
 }

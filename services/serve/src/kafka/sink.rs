@@ -85,6 +85,19 @@ pub(crate) fn send_to(
     if let Some(part) = partition {
         rec = rec.partition(part);
     }
+    send_waiting(p, rec)
+}
+
+/// Sends `rec`, waiting while the producer's queue is full.
+pub(crate) fn send_waiting<C, K, P>(
+    p: &BaseProducer<C>,
+    mut rec: BaseRecord<'_, K, P, C::DeliveryOpaque>,
+) -> Result<(), KafkaError>
+where
+    C: ProducerContext,
+    K: rdkafka::message::ToBytes + ?Sized,
+    P: rdkafka::message::ToBytes + ?Sized,
+{
     loop {
         match p.send(rec) {
             Ok(()) => return Ok(()),
