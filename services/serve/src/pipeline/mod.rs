@@ -89,11 +89,14 @@ impl PreparedBatch {
     /// to the store, and writing again publishes again).
     pub fn write(&mut self) -> Result<()> {
         if let (Some(log), false) = (&self.changelog, self.published) {
+            // A partition with nothing new publishes nothing.
             let sets: Vec<(&PartId, Vec<&apportion_store::ChangeSet>)> =
-                self.parts.iter().map(|(id, p)| (id, p.changes())).collect();
-            let offsets = log.publish(&sets)?;
-            for ((_, p), o) in self.parts.iter_mut().zip(offsets) {
-                p.set_changelog_offset(o);
+                self.parts.iter().filter(|(_, p)| !p.is_empty()).map(|(id, p)| (id, p.changes())).collect();
+            if !sets.is_empty() {
+                let offsets = log.publish(&sets)?;
+                for ((_, p), o) in self.parts.iter_mut().filter(|(_, p)| !p.is_empty()).zip(offsets) {
+                    p.set_changelog_offset(o);
+                }
             }
             self.published = true;
         }

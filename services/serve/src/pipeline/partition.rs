@@ -114,6 +114,11 @@ pub struct PartState {
     /// Decisions written to the store and not yet in a commit (a changelog
     /// publishes them with the next one).
     pub unpublished: ChangeSet,
+    /// The clock and snapshot version as last staged: a commit stages them
+    /// only when they changed, so a partition with nothing new commits
+    /// (and publishes) nothing.
+    staged_clock: Clock,
+    staged_snapshot: Option<String>,
 }
 
 impl PartState {
@@ -180,6 +185,8 @@ impl PartState {
             sources,
             arrivals: HashMap::new(),
             unpublished: ChangeSet::default(),
+            staged_clock: clock,
+            staged_snapshot: active,
         })
     }
 
@@ -223,7 +230,10 @@ impl PartState {
             self.store.stage_forget_decisions(c)?;
             self.decisions.future = self.decisions.future.split_off(&(c.saturating_add(1)));
         }
-        self.store.stage_clock(&self.clock);
+        if self.clock != self.staged_clock {
+            self.store.stage_clock(&self.clock);
+            self.staged_clock = self.clock;
+        }
         if self.keep_stats {
             // Only the counters this batch changed (nothing when none did).
             self.store.stage_stats(&mut self.stats)?;
@@ -232,7 +242,10 @@ impl PartState {
             self.snapshot = s;
         }
         if let Some(v) = self.snapshot.version() {
-            self.store.stage_active_snapshot(v);
+            if self.staged_snapshot.as_deref() != Some(v) {
+                self.store.stage_active_snapshot(v);
+                self.staged_snapshot = Some(v.to_string());
+            }
         }
         if let Some(b) = self.source_position.take() {
             self.store.stage_source_position(b);
@@ -272,6 +285,11 @@ impl PreparedPart {
     /// the last commit, then the commit's writes.
     pub fn changes(&self) -> Vec<&ChangeSet> {
         vec![&self.decisions, self.store.changes()]
+    }
+
+    /// True when the commit writes nothing.
+    pub fn is_empty(&self) -> bool {
+        self.decisions.is_empty() && self.store.changes().is_empty()
     }
 
     /// Records, with the commit, the changelog offset it was published at.
