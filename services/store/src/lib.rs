@@ -125,6 +125,8 @@ pub enum StoreError {
 
 /// Key of the pseudonymization key's fingerprint in the default tree.
 const KEY_FINGERPRINT: &[u8] = b"key_fingerprint";
+/// The name this store's instance gives itself (made once, kept).
+const INSTANCE_NAME: &[u8] = b"instance_name";
 
 /// What [`Store::check_key_fingerprint`] found.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -222,6 +224,24 @@ impl Store {
                 Ok(if had_state { KeyCheck::Adopted } else { KeyCheck::Recorded })
             }
         }
+    }
+
+    /// A name for the instance that owns this store: made once (16 hex
+    /// digits from the process's random hasher seed, the time and the
+    /// process id) and kept, so it stays the same across restarts.
+    pub fn instance_name(&self) -> Result<String, StoreError> {
+        if let Some(v) = self.db.get(INSTANCE_NAME)? {
+            return Ok(String::from_utf8_lossy(&v).into_owned());
+        }
+        use std::hash::{BuildHasher, Hasher};
+        let mut h = std::collections::hash_map::RandomState::new().build_hasher();
+        let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap_or_default();
+        h.write_u128(now.as_nanos());
+        h.write_u32(std::process::id());
+        let name = format!("{:016x}", h.finish());
+        self.db.insert(INSTANCE_NAME, name.as_bytes())?;
+        self.db.flush()?;
+        Ok(name)
     }
 
     /// Names of the partitions that have state.

@@ -356,6 +356,19 @@ fn a_store_refuses_another_pseudonymization_key() {
     assert_eq!(store.check_key_fingerprint(&a).unwrap(), KeyCheck::Matches, "a refusal changes nothing");
 }
 
+/// The instance name is made once and kept across reopening; another store
+/// makes another (docs/contract.md, "Delivery": a restarted instance keeps
+/// its transactional identity).
+#[test]
+fn a_store_keeps_its_instance_name() {
+    let (d1, d2) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let name = Store::open(d1.path()).unwrap().instance_name().unwrap();
+    assert_eq!(name.len(), 16);
+    assert!(name.bytes().all(|b| b.is_ascii_hexdigit()), "{name}");
+    assert_eq!(Store::open(d1.path()).unwrap().instance_name().unwrap(), name);
+    assert_ne!(Store::open(d2.path()).unwrap().instance_name().unwrap(), name);
+}
+
 /// A store written before fingerprints were recorded (state, no
 /// fingerprint) adopts the first key it is opened with.
 #[test]
