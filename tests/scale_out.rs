@@ -26,15 +26,25 @@ fn expected(dir: &std::path::Path, events: &[GenEvent]) -> Vec<Value> {
 }
 
 /// One instance of the group: its own data dir and admin port; `batch`
-/// events per batch; a killed member leaves the group after 6 s.
-fn instance(dir: &std::path::Path, brokers: &str, prefix: &str, batch: usize) -> Serve {
+/// events per batch; `kafka` adds lines to the `[kafka]` section (e.g. the
+/// delivery mode); a killed member leaves the group after 6 s.
+fn instance(dir: &std::path::Path, brokers: &str, prefix: &str, batch: usize, kafka: &str) -> Serve {
+    let s = start_instance(dir, brokers, prefix, batch, kafka);
+    wait_ready(s)
+}
+
+fn wait_ready(mut s: Serve) -> Serve {
+    s.wait_ready(Duration::from_secs(90));
+    s
+}
+
+/// [`instance`], not waiting until it is ready.
+fn start_instance(dir: &std::path::Path, brokers: &str, prefix: &str, batch: usize, kafka: &str) -> Serve {
     let admin = free_port();
     let cfg = kafka_config(dir, brokers, admin, prefix, true, "");
     let text = std::fs::read_to_string(&cfg).unwrap().replace("batch_size = 500", &format!("batch_size = {batch}"));
-    std::fs::write(&cfg, format!("{text}[kafka.properties]\n\"session.timeout.ms\" = \"6000\"\n")).unwrap();
-    let mut s = Serve::start(&cfg, admin, &dir.join("serve.log"));
-    s.wait_ready(Duration::from_secs(90));
-    s
+    std::fs::write(&cfg, format!("{text}{kafka}\n[kafka.properties]\n\"session.timeout.ms\" = \"6000\"\n")).unwrap();
+    Serve::start(&cfg, admin, &dir.join("serve.log"))
 }
 
 /// A test's topic (`partitions` partitions), its events (the scenario of
@@ -64,7 +74,7 @@ impl Setup {
     }
 
     fn instance(&self, dir: &std::path::Path, batch: usize) -> Serve {
-        instance(dir, &self.brokers, &self.prefix, batch)
+        instance(dir, &self.brokers, &self.prefix, batch, "")
     }
 
     /// The credit topic once it holds at least `n` rows.
@@ -77,7 +87,9 @@ impl Setup {
     /// not); returns the rows read and how many were repeats.
     fn all_credit(&self, log: &std::path::Path) -> (Vec<Value>, usize) {
         let want_ids = credit_ids(&self.want);
-        let got = consume_until(&self.brokers, &format!("{}-credit", self.prefix), Duration::from_secs(180), |rows| {
+        // Three minutes, and a second more per 5000 events.
+        let wait = Duration::from_secs(180 + self.events.len() as u64 / 5000);
+        let got = consume_until(&self.brokers, &format!("{}-credit", self.prefix), wait, |rows| {
             credit_ids(rows).len() >= want_ids.len()
         });
         let repeated = assert_same_credit_at_least_once(&got, &self.want, log);
@@ -185,40 +197,108 @@ fn instances_joining_and_leaving_mid_stream_give_the_same_credit() {
     assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[a.path(), b.path()]));
 }
 
+/// A number from the environment, else `default`.
+fn env_or(name: &str, default: usize) -> usize {
+    std::env::var(name).ok().and_then(|v| v.parse().ok()).unwrap_or(default)
+}
+
 /// Two instances share the stream while it is produced; five times one of
 /// them (chosen by a fixed seed) is killed with kill -9 at a moment in the
 /// stream and started again on its own data dir, its partitions moving to
 /// the other one meanwhile and back: at the end every credit row replay
-/// gives, a repeated row only as the same row.
+/// gives, and (exactly-once delivery, read with read_committed) each of
+/// them once. The longer run of load/ (README there) sets
+/// `APPORTION_CRASH_LOOP_USERS`, `APPORTION_CRASH_LOOP_KILLS` and
+/// `APPORTION_CRASH_LOOP_BATCH`.
 #[test]
-fn two_instances_through_five_kills_give_replay_s_credit() {
-    let Some(t) = setup("loop", 4, 3000, 43) else { return };
+fn two_instances_through_five_kills_give_replay_s_credit_exactly_once() {
+    crash_loop("exactly_once");
+}
+
+/// The same with at-least-once delivery: every row replay gives, a
+/// repeated row only as the same row.
+#[test]
+fn two_instances_through_five_kills_give_replay_s_credit_at_least_once() {
+    crash_loop("at_least_once");
+}
+
+fn crash_loop(delivery: &str) {
+    let users = env_or("APPORTION_CRASH_LOOP_USERS", 3000) as u32;
+    let kill_count = env_or("APPORTION_CRASH_LOOP_KILLS", 5);
+    let batch = env_or("APPORTION_CRASH_LOOP_BATCH", 50);
+    let Some(t) = setup(&format!("loop-{}", &delivery[..2]), 4, users, 43) else { return };
+    let mode = format!("delivery = \"{delivery}\"");
     let dirs = [tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap()];
-    let mut running: Vec<Serve> = dirs.iter().map(|dir| t.instance(dir.path(), 50)).collect();
+    let start = |dir: &std::path::Path| instance(dir, &t.brokers, &t.prefix, batch, &mode);
+    let mut running: Vec<Serve> = dirs.iter().map(|dir| start(dir.path())).collect();
     let mut seed = 0x5eed_u64;
     let mut kills = 0;
-    for (i, chunk) in t.events.chunks(t.events.len().div_ceil(20)).enumerate() {
+    for (i, chunk) in t.events.chunks(t.events.len().div_ceil(4 * kill_count)).enumerate() {
         t.produce(chunk);
-        std::thread::sleep(Duration::from_millis(1500));
-        if i % 4 == 1 && kills < 5 {
+        if i % 4 == 1 && kills < kill_count {
             seed ^= seed << 13;
             seed ^= seed >> 7;
             seed ^= seed << 17;
+            // While the chunk is being processed: 0 to 0.5 s after it.
+            std::thread::sleep(Duration::from_millis(seed % 500));
             let victim = (seed % 2) as usize;
             running[victim].signal("KILL");
             kills += 1;
-            running[victim] = t.instance(dirs[victim].path(), 50);
+            running[victim] = start(dirs[victim].path());
         }
+        std::thread::sleep(Duration::from_millis(1500));
     }
-    assert_eq!(kills, 5);
+    assert_eq!(kills, kill_count);
     let (got, repeated) = t.all_credit(&dirs[0].path().join("serve.log"));
     let logs = log(&[dirs[0].path(), dirs[1].path()]);
     eprintln!(
-        "five kills: {} rows, {repeated} repeated, {} restores",
+        "{kill_count} kills, {delivery}: {} rows, {repeated} repeated, {} restores, {} assignments up to date",
         got.len(),
-        logs.matches("partition restored from its changelog").count()
+        logs.matches("partition restored from its changelog").count(),
+        logs.matches("the local state is the changelog's last commit").count()
     );
     for s in running.iter_mut() {
         assert_eq!(s.signal("TERM").code(), Some(0), "{logs}");
     }
+    if delivery == "exactly_once" {
+        // Everything the instances wrote, read again now that they stopped.
+        let (all, repeated) = t.all_credit(&dirs[0].path().join("serve.log"));
+        assert_eq!(repeated, 0, "{} rows for {} credit ids: {logs}", all.len(), t.want.len());
+    }
+}
+
+/// Two instances with the same transactional identity (`kafka.instance_id`):
+/// the second one's start fences the first, which writes nothing more and
+/// exits non-zero saying why; the second credits everything, once
+/// (Kafka's transactional.id fencing, KIP-98).
+#[test]
+fn an_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
+    let Some(t) = setup("fence", 2, 1000, 47) else { return };
+    let twin = "delivery = \"exactly_once\"\ninstance_id = \"twin\"";
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let half = t.events.len() / 2;
+    t.produce(&t.events[..half]);
+    let mut first = instance(a.path(), &t.brokers, &t.prefix, 50, twin);
+    t.credit_at_least(100);
+    let second = start_instance(b.path(), &t.brokers, &t.prefix, 50, twin);
+    // The first goes on until its next transaction, which fails.
+    t.produce(&t.events[half..]);
+    let status = first
+        .wait_exit(Duration::from_secs(120))
+        .unwrap_or_else(|| panic!("the fenced instance did not stop: {}", log(&[a.path()])));
+    let first_log = std::fs::read_to_string(a.path().join("serve.log")).unwrap();
+    assert_ne!(status.code(), Some(0), "{first_log}");
+    assert!(first_log.contains("failed for good") && first_log.contains("fence-"), "{first_log}");
+    let mut second = wait_ready(second);
+    let (_, repeated) = t.all_credit(&b.path().join("serve.log"));
+    assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[b.path()]));
+    let (all, again) = t.all_credit(&b.path().join("serve.log"));
+    assert_eq!(
+        (repeated, again),
+        (0, 0),
+        "{} rows for {} credit ids: {}",
+        all.len(),
+        t.want.len(),
+        log(&[a.path(), b.path()])
+    );
 }

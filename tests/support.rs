@@ -187,6 +187,9 @@ pub fn consume_raw_until(
         .set("group.id", unique("reader"))
         .set("enable.auto.commit", "false")
         .set("auto.offset.reset", "earliest")
+        // Records of aborted transactions are never read (the librdkafka
+        // default, named because exactly-once checks rely on it).
+        .set("isolation.level", "read_committed")
         .create()
         .expect("consumer");
     let start = Instant::now();
@@ -267,6 +270,18 @@ impl Serve {
             std::thread::sleep(Duration::from_millis(200));
         }
         panic!("serve not ready after {timeout:?}: {}", std::fs::read_to_string(&self.log).unwrap_or_default());
+    }
+
+    /// Waits up to `timeout` for the process to exit on its own.
+    pub fn wait_exit(&mut self, timeout: Duration) -> Option<std::process::ExitStatus> {
+        let start = Instant::now();
+        while start.elapsed() < timeout {
+            if let Some(s) = self.child.try_wait().unwrap() {
+                return Some(s);
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
+        None
     }
 
     /// Sends a signal and waits for the exit status.

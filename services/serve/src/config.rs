@@ -215,6 +215,15 @@ pub struct KafkaConfig {
     /// Replication factor of the changelog topics the service creates; -1:
     /// the broker's default.
     pub changelog_replication_factor: i32,
+    /// How a batch's output, state and input offsets reach Kafka:
+    /// `exactly_once` (one Kafka transaction per batch; needs the
+    /// changelog) or `at_least_once` (for brokers without transactions).
+    pub delivery: Delivery,
+    /// This instance's name in its `transactional.id`,
+    /// `<group_id>-<instance_id>` (`exactly_once`). Empty: a name made once
+    /// per data dir and kept in the store. A restarted instance with the
+    /// same name fences its predecessor.
+    pub instance_id: String,
     /// Extra librdkafka properties (TLS, SASL, tuning), passed through as is.
     pub properties: std::collections::BTreeMap<String, String>,
 }
@@ -288,7 +297,26 @@ impl Default for EmbeddedConfig {
     }
 }
 
+/// How output, state and input offsets reach Kafka (docs/contract.md,
+/// "Delivery").
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Delivery {
+    /// Per batch, one Kafka transaction holds the output rows, the
+    /// changelog records and the input offsets.
+    ExactlyOnce,
+    /// Output first, then state and offsets: a crash repeats output.
+    AtLeastOnce,
+}
+
 impl KafkaConfig {
+    /// The transactional.id of this instance (`exactly_once`), given the
+    /// name the store made when `instance_id` is empty.
+    pub fn transactional_id(&self, store_instance: &str) -> String {
+        let name = if self.instance_id.is_empty() { store_instance } else { &self.instance_id };
+        format!("{}-{name}", self.group_id)
+    }
+
     /// The changelog topic of input (or repartition) topic `topic`.
     pub fn changelog_topic(&self, topic: &str) -> String {
         format!("{}-{topic}-changelog", self.group_id)
@@ -327,6 +355,8 @@ impl Default for KafkaConfig {
             repartition_topic: "apportion-repartition".into(),
             changelog: true,
             changelog_replication_factor: -1,
+            delivery: Delivery::ExactlyOnce,
+            instance_id: String::new(),
             properties: Default::default(),
         }
     }
@@ -436,6 +466,14 @@ impl Config {
                 }
                 if k.changelog_replication_factor == 0 || k.changelog_replication_factor < -1 {
                     bail!("kafka.changelog_replication_factor must be -1 (the broker's default) or at least 1");
+                }
+            }
+            if k.delivery == Delivery::ExactlyOnce && !k.changelog {
+                bail!("kafka.delivery = \"exactly_once\" needs kafka.changelog = true (each batch's state goes into the changelog in the batch's transaction); set kafka.delivery = \"at_least_once\" to run without a changelog");
+            }
+            if !k.instance_id.is_empty() {
+                if let Some(why) = topic_name_problem(&k.instance_id) {
+                    bail!("kafka.instance_id {:?} {why}", k.instance_id);
                 }
             }
         }
@@ -560,6 +598,7 @@ pub fn managed_kafka_property(key: &str) -> Option<&'static str> {
             "the producer must be idempotent with acks=all so that no output row is lost or duplicated by retries"
         }
         "isolation.level" => "the consumer's isolation level is part of the delivery guarantee",
+        "transactional.id" => "it is <kafka.group_id>-<kafka.instance_id>; set kafka.instance_id",
         _ => return None,
     })
 }
@@ -906,5 +945,31 @@ mod tests {
         assert!(load(&format!("[postgres]\nurl = \"postgres://h/d\"\nschema = \"{long}\"\n")).contains("63 bytes"));
         assert!(load("[parquet]\ndir = \"\"\n").contains("parquet.dir is empty"));
         assert!(load("[parquet]\ndir = \"out\"\n[embedded]\noutput_dir = \"out\"\n").contains("own directory"));
+    }
+
+    /// The delivery settings: exactly once by default, refused without the
+    /// changelog it commits through, and the transactional.id scheme of
+    /// docs/contract.md, "Delivery" (derived by hand from it).
+    #[test]
+    fn delivery_defaults_to_exactly_once_and_needs_the_changelog() {
+        let dir = tempfile::tempdir().unwrap();
+        let f = dir.path().join("c.toml");
+        let load = |text: &str| {
+            std::fs::write(&f, text).unwrap();
+            Config::load(Some(&f), vec![])
+        };
+        let k = load("[kafka]\ngroup_id = \"g\"\n").unwrap().kafka.unwrap();
+        assert_eq!(k.delivery, Delivery::ExactlyOnce);
+        assert_eq!(k.transactional_id("0123abcd"), "g-0123abcd");
+        let k = load("[kafka]\ngroup_id = \"g\"\ninstance_id = \"pod-2\"\n").unwrap().kafka.unwrap();
+        assert_eq!(k.transactional_id("0123abcd"), "g-pod-2");
+        let err = load("[kafka]\nchangelog = false\n").unwrap_err().to_string();
+        assert!(err.contains("needs kafka.changelog = true") && err.contains("at_least_once"), "{err}");
+        let k = load("[kafka]\nchangelog = false\ndelivery = \"at_least_once\"\n").unwrap().kafka.unwrap();
+        assert_eq!(k.delivery, Delivery::AtLeastOnce);
+        assert!(load("[kafka]\ninstance_id = \"a b\"\n").unwrap_err().to_string().contains("kafka.instance_id"));
+        assert!(load("[kafka]\ndelivery = \"twice\"\n").unwrap_err().to_string().contains("twice"));
+        let err = load("[kafka.properties]\n\"transactional.id\" = \"x\"\n").unwrap_err().to_string();
+        assert!(err.contains("kafka.instance_id"), "{err}");
     }
 }

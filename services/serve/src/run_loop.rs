@@ -203,32 +203,60 @@ fn write_batch(
     metrics: &Metrics,
     shared: &Mutex<Shared>,
 ) -> Result<Written> {
-    let mut written = write_sinks(sinks, out, stop, metrics, shared);
-    if let Ok(Written::Done { .. }) = written {
-        written =
-            write_commit(prepared, stop, metrics)
-                .map(|done| if done { written.expect("ok") } else { Written::Abandoned });
-    }
+    let mut backoff = Duration::from_millis(100);
+    let written = loop {
+        let written = write_sinks(sinks, out, stop, metrics, shared);
+        let Ok(Written::Done { .. }) = written else { break written };
+        break match write_commit(prepared, stop, metrics) {
+            Ok(Committed::Yes) => written,
+            Ok(Committed::No) => Ok(Written::Abandoned),
+            Err(e) => Err(e),
+            Ok(Committed::Aborted) => {
+                // The transaction took the output rows with it: the batch
+                // is written again, output first.
+                if !sleep_unless_stopped(backoff, stop, metrics) {
+                    tracing::warn!("shutdown while the batch's transaction was retried: the batch is not committed and is delivered again after the restart");
+                    break Ok(Written::Abandoned);
+                }
+                backoff = (backoff * 2).min(MAX_BACKOFF);
+                continue;
+            }
+        };
+    };
     // Done with it either way: a revocation need not wait any longer.
     prepared.release();
     written
 }
 
+/// What became of a batch's commit.
+enum Committed {
+    /// Published and written.
+    Yes,
+    /// Shutdown came first: not committed.
+    No,
+    /// Its transaction was aborted, with the output sent in it.
+    Aborted,
+}
+
 /// Writes a batch's prepared commit: published to the changelog (if any),
 /// retried with backoff while the changelog cannot be reached, then
-/// written to the store. False: shutdown came before it was published (the
-/// batch is given up uncommitted, as when a sink holds it).
-fn write_commit(prepared: &mut PreparedBatch, stop: &AtomicBool, metrics: &Metrics) -> Result<bool> {
+/// written to the store.
+fn write_commit(prepared: &mut PreparedBatch, stop: &AtomicBool, metrics: &Metrics) -> Result<Committed> {
     let mut backoff = Duration::from_millis(100);
     loop {
         match prepared.write() {
-            Ok(()) => return Ok(true),
+            Ok(()) => return Ok(Committed::Yes),
+            Err(e) if e.is::<crate::pipeline::changelog::Aborted>() => {
+                metrics.changelog_failures.inc();
+                tracing::warn!(error = %format!("{e:#}"), "the batch's transaction did not commit; writing the batch again");
+                return Ok(Committed::Aborted);
+            }
             Err(e) if e.is::<crate::pipeline::changelog::PublishError>() => {
                 metrics.changelog_failures.inc();
                 tracing::warn!(error = %format!("{e:#}"), retry_in_ms = backoff.as_millis() as u64, "the changelog did not take the batch's commit; retrying");
                 if !sleep_unless_stopped(backoff, stop, metrics) {
                     tracing::warn!("shutdown while the changelog was unreachable: the batch is not committed and is delivered again after the restart");
-                    return Ok(false);
+                    return Ok(Committed::No);
                 }
                 backoff = (backoff * 2).min(MAX_BACKOFF);
             }

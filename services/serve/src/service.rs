@@ -106,11 +106,18 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
 
     let (source, mut sinks, ingest): (Box<dyn Source>, Vec<Box<dyn Sink>>, Option<_>) = match &cfg.kafka {
         Some(_) => {
-            let source = crate::kafka::KafkaSource::new(&cfg, &metrics)?;
+            let k = cfg.kafka.as_ref().expect("matched");
+            let txn = match k.delivery {
+                crate::config::Delivery::ExactlyOnce => {
+                    Some(Arc::new(crate::kafka::txn::Txn::new(k, &pipeline.store().instance_name()?)?))
+                }
+                crate::config::Delivery::AtLeastOnce => None,
+            };
+            let source = crate::kafka::KafkaSource::new(&cfg, &metrics, txn.clone())?;
             if let Some((log, gate)) = source.changelog() {
                 pipeline.set_changelog(log, gate);
             }
-            let sink = crate::kafka::KafkaSink::new(&cfg)?;
+            let sink = crate::kafka::KafkaSink::new(&cfg, txn)?;
             metrics.register_sink("kafka");
             (Box::new(source), vec![Box::new(sink) as Box<dyn Sink>], None)
         }
@@ -139,6 +146,12 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
     // gives up (a margin of a second is kept to finish and close).
     let deadline: Arc<Mutex<Option<std::time::Instant>>> = Arc::default();
     sinks.extend(warehouse_sinks(&cfg, &data_dir, &metrics, stop.clone(), deadline.clone())?);
+    if cfg.kafka.as_ref().is_some_and(|k| k.delivery == crate::config::Delivery::ExactlyOnce) {
+        // The Kafka sink's rows go into the batch's transaction, committed
+        // by the changelog's publication: written last, right before it,
+        // so that a transaction stays open only for that long.
+        sinks.rotate_left(1);
+    }
 
     let http_stop = Arc::new(tokio::sync::Notify::new());
     {

@@ -7,7 +7,7 @@
 
 use std::collections::BTreeSet;
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::Mutex;
+use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use anyhow::{bail, Context, Result};
@@ -22,6 +22,7 @@ use rdkafka::types::RDKafkaErrorCode;
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
 use super::base_config;
+use super::txn::{offsets_list, Txn};
 use crate::config::KafkaConfig;
 use crate::metrics::Metrics;
 use crate::pipeline::changelog::{Changelog, PublishError};
@@ -31,7 +32,7 @@ use crate::source::PartId;
 pub const RECORD_FORMAT: u8 = 1;
 
 /// Not a marker (the delivery report of an ordinary record).
-const NO_MARKER: usize = usize::MAX;
+pub(crate) const NO_MARKER: usize = usize::MAX;
 
 /// How long a restore may go without reading anything before it fails.
 const RESTORE_STALL: Duration = Duration::from_secs(120);
@@ -69,6 +70,9 @@ impl ProducerContext for MarkerDelivery {
 pub struct KafkaChangelog {
     kafka: KafkaConfig,
     producer: Mutex<BaseProducer<MarkerDelivery>>,
+    /// With exactly-once delivery: every publication goes through the
+    /// instance's transactions, with the batch's output and offsets.
+    txn: Option<Arc<Txn>>,
     metrics: Metrics,
     /// Changelog topics known to exist with the right partition count.
     checked: Mutex<BTreeSet<String>>,
@@ -88,9 +92,10 @@ fn changelog_producer(k: &KafkaConfig) -> Result<BaseProducer<MarkerDelivery>> {
 
 impl KafkaChangelog {
     /// The changelog of the group `kafka.group_id`.
-    pub fn new(kafka: &KafkaConfig, metrics: &Metrics) -> Result<Self> {
+    pub fn new(kafka: &KafkaConfig, metrics: &Metrics, txn: Option<Arc<Txn>>) -> Result<Self> {
         Ok(KafkaChangelog {
             producer: Mutex::new(changelog_producer(kafka)?),
+            txn,
             kafka: kafka.clone(),
             metrics: metrics.clone(),
             checked: Mutex::new(BTreeSet::new()),
@@ -167,6 +172,7 @@ impl KafkaChangelog {
             .set("group.id", format!("{}-restore", self.kafka.group_id))
             .set("enable.auto.commit", "false")
             .set("enable.partition.eof", "true")
+            .set("isolation.level", "read_committed")
             .create()
             .context("creating the changelog reader")?;
         let (low, high) = reader
@@ -181,14 +187,18 @@ impl KafkaChangelog {
                 for (k, v) in records {
                     set.set(k, v);
                 }
-                let offset = self.publish(&[(id, vec![&set])])?[0];
+                let offset = self.publish(&[(id, vec![&set])], &[])?[0];
                 store.set_changelog_offset(&name, offset)?;
                 store.flush()?;
             }
             return Ok(());
         }
         match local {
-            Some(l) if l == high - 1 => return Ok(()),
+            // A transaction's commit record follows its last marker.
+            Some(l) if l == high - 1 || (self.txn.is_some() && l == high - 2) => {
+                tracing::info!(partition = %name, changelog_offset = l, "the local state is the changelog's last commit");
+                return Ok(());
+            }
             Some(l) if l >= high => tracing::warn!(
                 partition = %name, local = l, changelog_end = high,
                 "the local state is ahead of its changelog (was the changelog topic recreated?); restoring from the changelog"
@@ -274,7 +284,7 @@ impl KafkaChangelog {
             // its keys go back to the restored values before anything else
             // is published, or a later marker would cover them.
             tracing::warn!(partition = %name, keys = restored.undo.len(), "the changelog ends with an unfinished commit; publishing its undo");
-            let offset = self.publish(&[(id, vec![&restored.undo])])?[0];
+            let offset = self.publish(&[(id, vec![&restored.undo])], &[])?[0];
             store.set_changelog_offset(&name, offset)?;
             store.flush()?;
         }
@@ -300,7 +310,23 @@ fn scopeguard<F: FnOnce()>(f: F) -> impl Drop {
 }
 
 impl Changelog for KafkaChangelog {
-    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> Result<Vec<i64>> {
+    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)], offsets: &[(&PartId, i64)]) -> Result<Vec<i64>> {
+        if let Some(txn) = &self.txn {
+            let mut sent = 0;
+            if !parts.is_empty() {
+                sent = txn.with_open(|p| send_records(p, &self.kafka, parts))?.map_err(|e| {
+                    // What was sent is aborted with the rest.
+                    let _ = txn.abort();
+                    crate::pipeline::changelog::Aborted(e)
+                })?;
+            }
+            let markers = txn.commit_then(&offsets_list(offsets)?, |p| match parts.is_empty() {
+                true => Ok(Vec::new()),
+                false => markers(p),
+            })?;
+            self.metrics.changelog_records.with_label_values(&["published"]).inc_by(sent);
+            return markers.map_err(anyhow::Error::msg);
+        }
         let mut producer = self.producer.lock().expect("changelog producer");
         let result = publish_with(&producer, &self.kafka, parts);
         match result {
@@ -318,6 +344,10 @@ impl Changelog for KafkaChangelog {
             }
         }
     }
+
+    fn transactional(&self) -> bool {
+        self.txn.is_some()
+    }
 }
 
 /// Sends every record and marker and waits for all of them; the markers'
@@ -327,8 +357,24 @@ fn publish_with(
     k: &KafkaConfig,
     parts: &[(&PartId, Vec<&ChangeSet>)],
 ) -> std::result::Result<(Vec<i64>, u64), String> {
-    *p.context().markers.lock().expect("markers") = vec![None; parts.len()];
     let before = p.context().failed.load(Ordering::SeqCst);
+    let sent = send_records(p, k, parts)?;
+    p.flush(Duration::from_secs(60)).map_err(|e| format!("flush: {e}"))?;
+    let failed = p.context().failed.load(Ordering::SeqCst) - before;
+    if failed > 0 {
+        let last = p.context().last.lock().expect("last error").clone().unwrap_or_default();
+        return Err(format!("{failed} records not delivered: {last}"));
+    }
+    Ok((markers(p)?, sent))
+}
+
+/// Sends every record and marker (not waiting); the number sent.
+fn send_records(
+    p: &BaseProducer<MarkerDelivery>,
+    k: &KafkaConfig,
+    parts: &[(&PartId, Vec<&ChangeSet>)],
+) -> std::result::Result<u64, String> {
+    *p.context().markers.lock().expect("markers") = vec![None; parts.len()];
     let mut sent = 0u64;
     let mut buf = Vec::new();
     for (i, (id, sets)) in parts.iter().enumerate() {
@@ -355,15 +401,14 @@ fn publish_with(
         )?;
         sent += 1;
     }
-    p.flush(Duration::from_secs(60)).map_err(|e| format!("flush: {e}"))?;
-    let failed = p.context().failed.load(Ordering::SeqCst) - before;
-    if failed > 0 {
-        let last = p.context().last.lock().expect("last error").clone().unwrap_or_default();
-        return Err(format!("{failed} records not delivered: {last}"));
-    }
+    Ok(sent)
+}
+
+/// The offsets of the markers of the last records sent (all delivered).
+fn markers(p: &BaseProducer<MarkerDelivery>) -> std::result::Result<Vec<i64>, String> {
     let markers = p.context().markers.lock().expect("markers").clone();
     let offsets: Option<Vec<i64>> = markers.into_iter().collect();
-    Ok((offsets.ok_or("a commit marker has no delivery report")?, sent))
+    offsets.ok_or_else(|| "a commit marker has no delivery report".to_string())
 }
 
 fn send(p: &BaseProducer<MarkerDelivery>, rec: BaseRecord<'_, [u8], [u8], usize>) -> std::result::Result<(), String> {

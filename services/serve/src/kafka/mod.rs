@@ -1,7 +1,9 @@
 //! Kafka: the consumer source, the producer sink and the repartition stage
 //! (rdkafka over librdkafka built from its vendored source).
 //!
-//! The consumer never auto-commits: offsets are committed to the group only
+//! The consumer never auto-commits: with exactly-once delivery the input
+//! offsets are committed in the batch's transaction; with at-least-once,
+//! they are committed to the group only
 //! after the batch's output is delivered and the state is committed to sled;
 //! on assignment, offsets already applied according to the store are
 //! skipped, so the store is the authority and the group's offsets a
@@ -13,6 +15,9 @@
 //! - [`repartition`]: stage 1 for input not keyed by user.
 //! - [`changelog`]: [`changelog::KafkaChangelog`], each partition's state
 //!   published to a compacted topic and restored from it on another instance.
+//! - [`txn`]: [`txn::Txn`], the instance's transactional producer
+//!   (`kafka.delivery = "exactly_once"`): per batch, output, changelog
+//!   records and input offsets in one Kafka transaction.
 //! - [`encode`]: JSON or protobuf payloads of the output topics.
 //! - [`erase`]: `POST /v1/erase` in Kafka mode, an erase to every input partition.
 
@@ -22,6 +27,7 @@ pub mod erase;
 pub mod repartition;
 pub mod sink;
 pub mod source;
+pub mod txn;
 
 use rdkafka::config::ClientConfig;
 

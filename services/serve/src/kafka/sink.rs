@@ -125,8 +125,12 @@ pub(crate) fn flush_checked(
 }
 
 /// Credit rows, paths and dead letters to their topics, keyed by user key.
+/// With exactly-once delivery they go into the batch's transaction, which
+/// the changelog's publication commits (the sink is then the last one
+/// written); else the producer flushes them.
 pub struct KafkaSink {
     producer: BaseProducer<DeliveryCounter>,
+    txn: Option<Arc<super::txn::Txn>>,
     kafka: KafkaConfig,
     credit_topic: String,
     paths_topic: String,
@@ -137,10 +141,11 @@ pub struct KafkaSink {
 
 impl KafkaSink {
     /// Builds the sink.
-    pub fn new(cfg: &Config) -> Result<KafkaSink> {
+    pub fn new(cfg: &Config, txn: Option<Arc<super::txn::Txn>>) -> Result<KafkaSink> {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
         Ok(KafkaSink {
             producer: producer(k)?,
+            txn,
             kafka: k.clone(),
             credit_topic: k.credit_topic.clone(),
             paths_topic: k.paths_topic.clone(),
@@ -161,37 +166,80 @@ impl Sink for KafkaSink {
     }
 
     fn close(&mut self) -> Result<(), SinkError> {
+        if let Some(txn) = &self.txn {
+            // A batch given up at shutdown: its rows are never read.
+            txn.abort().map_err(|e| SinkError::fatal("kafka", format!("{e:#}")))?;
+        }
         self.producer.flush(Duration::from_secs(30)).map_err(|e| SinkError::fatal("kafka", e.to_string()))
     }
 
-    /// After a failed write the same batch is sent again: with a new producer.
+    /// After a failed write the same batch is sent again: in a new
+    /// transaction, or with a new producer.
     fn reset(&mut self) {
-        renew(&mut self.producer, &self.kafka, "output");
+        match &self.txn {
+            Some(txn) => {
+                if let Err(e) = txn.abort() {
+                    tracing::warn!(error = %format!("{e:#}"), "aborting the batch's transaction");
+                }
+            }
+            None => renew(&mut self.producer, &self.kafka, "output"),
+        }
     }
 }
 
 impl KafkaSink {
     fn send_batch(&mut self, batch: &OutputBatch) -> Result<(), SinkError> {
+        if let Some(txn) = self.txn.clone() {
+            let sent = txn.with_open(|p| {
+                self.send_rows(batch, |topic, key, bytes| {
+                    let mut rec = BaseRecord::with_opaque_to(topic, super::changelog::NO_MARKER).payload(bytes);
+                    if let Some(k) = key {
+                        rec = rec.key(k);
+                    }
+                    send_waiting(p, rec)
+                })
+            });
+            return match sent {
+                Ok(r) => r,
+                // Fenced or otherwise failed for good: never retried.
+                Err(e) if !e.is::<crate::pipeline::changelog::Aborted>() => {
+                    Err(SinkError::fatal("kafka", format!("{e:#}")))
+                }
+                Err(e) => Err(SinkError::retry("kafka", format!("{e:#}"))),
+            };
+        }
         let before = self.producer.context().failed.load(Ordering::SeqCst);
+        let producer = &self.producer;
+        self.send_rows(batch, |topic, key, bytes| send(producer, topic, key, bytes))?;
+        flush_checked(&self.producer, before, "kafka")
+    }
+
+    /// Encodes every row of the batch and hands it to `send` (topic, key,
+    /// payload).
+    fn send_rows(
+        &self,
+        batch: &OutputBatch,
+        mut send: impl FnMut(&str, Option<&str>, &[u8]) -> Result<(), KafkaError>,
+    ) -> Result<(), SinkError> {
         let err = |e: KafkaError| SinkError::retry("kafka", e.to_string());
         // One buffer for every row of the batch (the producer copies each).
         let mut bytes = Vec::with_capacity(1024);
         for r in &batch.credit {
             encode::credit_into(self.format, r, &mut bytes);
-            send(&self.producer, &self.credit_topic, Some(r.user_key.hex().as_str()), &bytes).map_err(err)?;
+            send(&self.credit_topic, Some(r.user_key.hex().as_str()), &bytes).map_err(err)?;
         }
         for p in &batch.paths {
             encode::path_into(self.format, p, &mut bytes);
-            send(&self.producer, &self.paths_topic, Some(p.user_key.hex().as_str()), &bytes).map_err(err)?;
+            send(&self.paths_topic, Some(p.user_key.hex().as_str()), &bytes).map_err(err)?;
         }
         for d in &batch.dead_letters {
             let bytes = encode::dead_letter(self.format, d);
-            send(&self.producer, &self.dead_topic, None, &bytes).map_err(err)?;
+            send(&self.dead_topic, None, &bytes).map_err(err)?;
         }
         for e in &batch.erasures {
             let bytes = serde_json::to_vec(e).expect("rows serialize");
-            send(&self.producer, &self.erasure_topic, Some(&e.user_key.to_hex()), &bytes).map_err(err)?;
+            send(&self.erasure_topic, Some(&e.user_key.to_hex()), &bytes).map_err(err)?;
         }
-        flush_checked(&self.producer, before, "kafka")
+        Ok(())
     }
 }

@@ -49,7 +49,10 @@ impl ConsumerContext for RevokeGate {
 /// The consumer side: stage 2 (or the only stage), plus stage 1 when the
 /// input is not keyed by user.
 pub struct KafkaSource {
-    consumer: BaseConsumer<RevokeGate>,
+    consumer: Arc<BaseConsumer<RevokeGate>>,
+    /// Exactly-once delivery: input offsets go into each batch's
+    /// transaction, with this consumer's group metadata.
+    txn: Option<Arc<super::txn::Txn>>,
     changelog: Option<(Arc<KafkaChangelog>, CommitGate)>,
     payloads: BTreeMap<String, Payload>,
     assigned: BTreeSet<PartId>,
@@ -64,16 +67,22 @@ pub struct KafkaSource {
 }
 
 impl KafkaSource {
-    /// Connects and subscribes.
-    pub fn new(cfg: &Config, metrics: &Metrics) -> Result<KafkaSource> {
+    /// Connects and subscribes; `txn`: the instance's transactions
+    /// (exactly-once delivery).
+    pub fn new(cfg: &Config, metrics: &Metrics, txn: Option<Arc<super::txn::Txn>>) -> Result<KafkaSource> {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
         let changelog = match k.changelog {
-            true => Some((Arc::new(KafkaChangelog::new(k, metrics)?), CommitGate::default())),
+            true => Some((Arc::new(KafkaChangelog::new(k, metrics, txn.clone())?), CommitGate::default())),
             false => None,
         };
         let context = RevokeGate { gate: changelog.as_ref().map(|(_, g)| g.clone()) };
-        let consumer: BaseConsumer<RevokeGate> =
-            consumer_config(k, &k.group_id).create_with_context(context).context("creating the Kafka consumer")?;
+        let consumer: Arc<BaseConsumer<RevokeGate>> = Arc::new(
+            consumer_config(k, &k.group_id).create_with_context(context).context("creating the Kafka consumer")?,
+        );
+        if let Some(txn) = &txn {
+            let c = consumer.clone();
+            txn.set_group_source(Box::new(move || c.group_metadata()));
+        }
         let mut payloads = BTreeMap::new();
         let repartition = if k.input_keyed_by_user {
             for t in &k.input_topics {
@@ -89,6 +98,7 @@ impl KafkaSource {
         };
         Ok(KafkaSource {
             consumer,
+            txn,
             changelog,
             payloads,
             assigned: BTreeSet::new(),
@@ -169,6 +179,10 @@ impl Source for KafkaSource {
     }
 
     fn committed(&mut self, pipeline: &Pipeline, _statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()> {
+        if self.txn.is_some() {
+            // Committed in the batch's transaction.
+            return Ok(());
+        }
         let mut tpl = TopicPartitionList::new();
         for (id, off) in pipeline.committed_offsets() {
             if self.assigned.contains(&id) {

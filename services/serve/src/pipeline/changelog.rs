@@ -18,13 +18,30 @@ use crate::source::PartId;
 #[error("publishing to the changelog failed: {0}")]
 pub struct PublishError(pub String);
 
+/// The batch's Kafka transaction was aborted, and the output rows sent in
+/// it with it: the batch is written again from its output
+/// (`kafka.delivery = "exactly_once"`).
+#[derive(Debug, thiserror::Error)]
+#[error("the batch's Kafka transaction was aborted ({0})")]
+pub struct Aborted(pub String);
+
 /// A partition's changelog.
 pub trait Changelog: Send + Sync {
     /// Publishes, for every partition listed, the writes of its sets in
     /// order and then an end-of-commit marker, and waits until the broker
     /// has them all. Returns each partition's marker offset, in the order
     /// given. A [`PublishError`] when some record was not delivered.
-    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> Result<Vec<i64>>;
+    /// A transactional changelog also commits `offsets` (each partition's
+    /// next input offset) and the output sent in the batch's transaction,
+    /// all or nothing ([`Aborted`] when not).
+    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)], offsets: &[(&PartId, i64)]) -> Result<Vec<i64>>;
+
+    /// True when [`Changelog::publish`] commits the batch's output and input
+    /// offsets with its records: it is then called for every batch, with
+    /// or without records.
+    fn transactional(&self) -> bool {
+        false
+    }
 }
 
 /// Counts the commits being written, so that a revocation can wait until

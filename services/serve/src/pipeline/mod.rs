@@ -92,8 +92,13 @@ impl PreparedBatch {
             // A partition with nothing new publishes nothing.
             let sets: Vec<(&PartId, Vec<&apportion_store::ChangeSet>)> =
                 self.parts.iter().filter(|(_, p)| !p.is_empty()).map(|(id, p)| (id, p.changes())).collect();
-            if !sets.is_empty() {
-                let offsets = log.publish(&sets)?;
+            let transactional = log.transactional();
+            if !sets.is_empty() || transactional {
+                let next: Vec<(&PartId, i64)> = match transactional {
+                    true => self.parts.iter().filter_map(|(id, p)| p.offset().map(|o| (id, o + 1))).collect(),
+                    false => Vec::new(),
+                };
+                let offsets = log.publish(&sets, &next)?;
                 for ((_, p), o) in self.parts.iter_mut().filter(|(_, p)| !p.is_empty()).zip(offsets) {
                     p.set_changelog_offset(o);
                 }
