@@ -316,13 +316,17 @@ kafka_part() {
   row "ConsumerPerformance (whole JVM process)" "$pp_wall" "$(eps "$lines" "$pp_wall")" \
     "$(tv_rss "$logs/consumer-perf-process-$events.log")" "-" "-" "-"
 
-  # rules-nolog: the same with kafka.changelog = false (no changelog topic)
-  local sets=("rules:$rules" "rules-nolog:$rules")
+  # rules: exactly-once delivery (the default: one Kafka transaction per
+  # batch); rules-alo: the same at least once; rules-nolog: at least once
+  # with kafka.changelog = false (no changelog topic)
+  local sets=("rules:$rules" "rules-alo:$rules" "rules-nolog:$rules")
   [ "$dd_serve" = 1 ] && sets+=("seven:$seven")
-  local s tag models dir port pid n hwm cfg limit rows_line changelog
+  local s tag models dir port pid n hwm cfg limit rows_line changelog delivery
   for s in "${sets[@]}"; do
     tag="${s%%:*}"; models="${s#*:}"
     changelog=true; [ "${tag%-nolog}" != "$tag" ] && changelog=false
+    delivery=exactly_once
+    if [ "$tag" != rules ] && [ "$tag" != seven ]; then delivery=at_least_once; fi
     dir="$work/serve-$tag"
     rm -rf "$dir"; mkdir -p "$dir"
     port="$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')"
@@ -345,8 +349,9 @@ dead_letter_topic = "$topic-$tag-dead"
 repartition_topic = "$topic-$tag-repart"
 input_keyed_by_user = true
 changelog = $changelog
+delivery = "$delivery"
 EOF
-    say "serve ($tag): $models, changelog $changelog, until $lines messages are consumed"
+    say "serve ($tag): $models, changelog $changelog, $delivery, until $lines messages are consumed"
     t0=$(date +%s.%N)
     "$bin" serve --config "$cfg" > "$logs/serve-$tag-$events.log" 2>&1 &
     pid=$!
@@ -365,7 +370,7 @@ EOF
       --describe --group "$topic-$tag-group" > "$logs/serve-$tag-$events.lag" 2>&1 || true
     local lag; lag="$(awk '$2 == "'"$topic-events"'" && $6 ~ /^[0-9]+$/ { s += $6 } END { printf "%.0f", s }' "$logs/serve-$tag-$events.lag")"
     say "serve ($tag): committed lag after stop: ${lag:-?} (ConsumerGroupCommand)"
-    row "serve $models (kafka in/out, changelog $changelog)" "$sw" "$(eps "$lines" "$sw")" "$hwm" "ConsumerPerformance" "$perf_wall" \
+    row "serve $models (kafka in/out, changelog $changelog, $delivery)" "$sw" "$(eps "$lines" "$sw")" "$hwm" "ConsumerPerformance" "$perf_wall" \
       "$(ratio "$(eps "$lines" "$sw")" "$perf_rate")"
     if [ "$tag" = rules ]; then restore_part; fi
     rm -rf "$dir"

@@ -273,7 +273,7 @@ impl Metrics {
             ),
             changelog_failures: plain_counter(
                 "apportion_changelog_publish_failures_total",
-                "Commits the changelog did not take (retried with backoff).",
+                "Commits the changelog did not take, or batch transactions aborted (retried with backoff).",
             ),
             changelog_restoring: gauge(
                 "apportion_changelog_restoring_partitions",
