@@ -302,8 +302,8 @@ impl Default for EmbeddedConfig {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Delivery {
-    /// Per batch, one Kafka transaction holds the output rows, the
-    /// changelog records and the input offsets.
+    /// Per batch, one Kafka transaction holds the output rows and the
+    /// changelog records (the input offsets among them).
     ExactlyOnce,
     /// Output first, then state and offsets: a crash repeats output.
     AtLeastOnce,

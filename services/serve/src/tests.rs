@@ -572,11 +572,7 @@ mod redelivery {
     }
 
     impl Changelog for MemChangelog {
-        fn publish(
-            &self,
-            parts: &[(&PartId, Vec<&ChangeSet>)],
-            _offsets: &[(&PartId, i64)],
-        ) -> anyhow::Result<Vec<i64>> {
+        fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> anyhow::Result<Vec<i64>> {
             let mut log = self.log.lock().unwrap();
             let mut offsets = Vec::new();
             for (_, sets) in parts {

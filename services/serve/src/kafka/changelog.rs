@@ -22,7 +22,7 @@ use rdkafka::types::RDKafkaErrorCode;
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
 use super::base_config;
-use super::txn::{offsets_list, Txn};
+use super::txn::Txn;
 use crate::config::KafkaConfig;
 use crate::metrics::Metrics;
 use crate::pipeline::changelog::{Changelog, PublishError};
@@ -187,7 +187,7 @@ impl KafkaChangelog {
                 for (k, v) in records {
                     set.set(k, v);
                 }
-                let offset = self.publish(&[(id, vec![&set])], &[])?[0];
+                let offset = self.publish(&[(id, vec![&set])])?[0];
                 store.set_changelog_offset(&name, offset)?;
                 store.flush()?;
             }
@@ -284,7 +284,7 @@ impl KafkaChangelog {
             // its keys go back to the restored values before anything else
             // is published, or a later marker would cover them.
             tracing::warn!(partition = %name, keys = restored.undo.len(), "the changelog ends with an unfinished commit; publishing its undo");
-            let offset = self.publish(&[(id, vec![&restored.undo])], &[])?[0];
+            let offset = self.publish(&[(id, vec![&restored.undo])])?[0];
             store.set_changelog_offset(&name, offset)?;
             store.flush()?;
         }
@@ -310,7 +310,7 @@ fn scopeguard<F: FnOnce()>(f: F) -> impl Drop {
 }
 
 impl Changelog for KafkaChangelog {
-    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)], offsets: &[(&PartId, i64)]) -> Result<Vec<i64>> {
+    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> Result<Vec<i64>> {
         if let Some(txn) = &self.txn {
             let mut sent = 0;
             if !parts.is_empty() {
@@ -320,7 +320,7 @@ impl Changelog for KafkaChangelog {
                     crate::pipeline::changelog::Aborted(e)
                 })?;
             }
-            let markers = txn.commit_then(&offsets_list(offsets)?, |p| match parts.is_empty() {
+            let markers = txn.commit_then(|p| match parts.is_empty() {
                 true => Ok(Vec::new()),
                 false => markers(p),
             })?;

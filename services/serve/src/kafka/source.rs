@@ -49,10 +49,7 @@ impl ConsumerContext for RevokeGate {
 /// The consumer side: stage 2 (or the only stage), plus stage 1 when the
 /// input is not keyed by user.
 pub struct KafkaSource {
-    consumer: Arc<BaseConsumer<RevokeGate>>,
-    /// Exactly-once delivery: input offsets go into each batch's
-    /// transaction, with this consumer's group metadata.
-    txn: Option<Arc<super::txn::Txn>>,
+    consumer: BaseConsumer<RevokeGate>,
     changelog: Option<(Arc<KafkaChangelog>, CommitGate)>,
     payloads: BTreeMap<String, Payload>,
     assigned: BTreeSet<PartId>,
@@ -76,13 +73,8 @@ impl KafkaSource {
             false => None,
         };
         let context = RevokeGate { gate: changelog.as_ref().map(|(_, g)| g.clone()) };
-        let consumer: Arc<BaseConsumer<RevokeGate>> = Arc::new(
-            consumer_config(k, &k.group_id).create_with_context(context).context("creating the Kafka consumer")?,
-        );
-        if let Some(txn) = &txn {
-            let c = consumer.clone();
-            txn.set_group_source(Box::new(move || c.group_metadata()));
-        }
+        let consumer: BaseConsumer<RevokeGate> =
+            consumer_config(k, &k.group_id).create_with_context(context).context("creating the Kafka consumer")?;
         let mut payloads = BTreeMap::new();
         let repartition = if k.input_keyed_by_user {
             for t in &k.input_topics {
@@ -98,7 +90,6 @@ impl KafkaSource {
         };
         Ok(KafkaSource {
             consumer,
-            txn,
             changelog,
             payloads,
             assigned: BTreeSet::new(),
@@ -179,10 +170,6 @@ impl Source for KafkaSource {
     }
 
     fn committed(&mut self, pipeline: &Pipeline, _statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()> {
-        if self.txn.is_some() {
-            // Committed in the batch's transaction.
-            return Ok(());
-        }
         let mut tpl = TopicPartitionList::new();
         for (id, off) in pipeline.committed_offsets() {
             if self.assigned.contains(&id) {

@@ -1,9 +1,14 @@
 //! Exactly-once delivery (`kafka.delivery = "exactly_once"`, docs/contract.md,
 //! "Delivery"): one transactional producer per instance, whose
 //! `transactional.id` is `<group_id>-<instance_id>`. Per batch, the output
-//! sink's rows, then the changelog records and the input offsets (with the
-//! consumer's current group metadata, KIP-447) go into one transaction,
-//! committed by the changelog's publication.
+//! sink's rows, then the changelog records (the input offsets among them:
+//! the store's offset record) go into one transaction, committed by the
+//! changelog's publication. The consumer group's offsets are committed
+//! after it, as a fallback, not in the transaction: the store restored from
+//! the changelog is the authority on where a partition continues (with
+//! `send_offsets_to_transaction`, a revocation that waits for the commit in
+//! flight deadlocked against the group's rebalance, docs/contract.md
+//! "Delivery").
 //!
 //! A transaction belongs to the thread that began it until it is committed
 //! or aborted; another thread (a partition's state published on assignment)
@@ -16,9 +21,7 @@ use std::thread::ThreadId;
 use std::time::Duration;
 
 use anyhow::{anyhow, Context, Result};
-use rdkafka::consumer::ConsumerGroupMetadata;
 use rdkafka::producer::{BaseProducer, Producer};
-use rdkafka::TopicPartitionList;
 
 use super::base_config;
 use super::changelog::MarkerDelivery;
@@ -32,12 +35,8 @@ const CALL_TIMEOUT: Duration = Duration::from_secs(60);
 pub struct Txn {
     inner: Mutex<Inner>,
     ended: Condvar,
-    group: Mutex<Option<GroupSource>>,
     id: String,
 }
-
-/// Reads the consumer's current group metadata.
-type GroupSource = Box<dyn Fn() -> Option<ConsumerGroupMetadata> + Send + Sync>;
 
 struct Inner {
     producer: BaseProducer<MarkerDelivery>,
@@ -67,26 +66,12 @@ impl Txn {
             )
         })?;
         tracing::info!(transactional_id = %id, "Kafka transactions initialized (exactly-once delivery)");
-        Ok(Txn {
-            inner: Mutex::new(Inner { producer, owner: None }),
-            ended: Condvar::new(),
-            group: Mutex::new(None),
-            id,
-        })
+        Ok(Txn { inner: Mutex::new(Inner { producer, owner: None }), ended: Condvar::new(), id })
     }
 
     /// The `transactional.id`.
     pub fn id(&self) -> &str {
         &self.id
-    }
-
-    /// Where the consumer's group metadata is read, afresh for every
-    /// commit: the offsets of a transaction are committed for this member
-    /// and its current generation (a rebalance changes it, also while the
-    /// processing thread waits for this commit), so a member that lost its
-    /// partitions cannot commit them (KIP-447).
-    pub fn set_group_source(&self, source: GroupSource) {
-        *self.group.lock().expect("group metadata") = Some(source);
     }
 
     /// The producer inside this thread's transaction (begun if none is):
@@ -106,59 +91,44 @@ impl Txn {
         }
         if inner.owner.is_none() {
             if let Err(e) = inner.producer.begin_transaction() {
-                return Err(self.failure(&inner, "beginning a transaction", e));
+                if self.fatal(&inner).is_some() {
+                    return Err(self.failure(&inner, "beginning a transaction", e));
+                }
+                // An abort that did not finish: finish it, then begin.
+                inner.owner = Some(me);
+                self.abort_locked(&mut inner)?;
+                if let Err(e) = inner.producer.begin_transaction() {
+                    return Err(self.failure(&inner, "beginning a transaction", e));
+                }
             }
             inner.owner = Some(me);
         }
         Ok(inner)
     }
 
-    /// True when this thread has a transaction open.
-    pub fn is_open(&self) -> bool {
-        self.inner.lock().expect("transaction").owner == Some(std::thread::current().id())
-    }
-
-    /// Commits this thread's transaction with the input `offsets` (next
-    /// offsets to read, in the consumer's group). Nothing when there is no
-    /// transaction and no offset (no empty transactions). An [`Aborted`]
-    /// error when the transaction was aborted instead (all of it is to be
-    /// sent again); any other error is fatal.
-    /// `after` runs on the producer right after the commit (or when there
-    /// is nothing to commit), before another thread can begin a
-    /// transaction (the delivery reports of the committed records).
-    pub fn commit_then<R>(
-        &self,
-        offsets: &TopicPartitionList,
-        after: impl FnOnce(&BaseProducer<MarkerDelivery>) -> R,
-    ) -> Result<R> {
-        if offsets.count() == 0 && !self.is_open() {
-            let inner = self.inner.lock().expect("transaction");
+    /// Commits this thread's transaction; nothing when it has none (no
+    /// empty transactions). `after` runs on the producer right after the
+    /// commit (or when there is nothing to commit), before another thread
+    /// can begin a transaction (the delivery reports of the committed
+    /// records). An [`Aborted`] error when the transaction was aborted
+    /// instead (all of it is to be sent again); any other error is fatal.
+    pub fn commit_then<R>(&self, after: impl FnOnce(&BaseProducer<MarkerDelivery>) -> R) -> Result<R> {
+        let mut inner = self.inner.lock().expect("transaction");
+        if inner.owner != Some(std::thread::current().id()) {
             return Ok(after(&inner.producer));
         }
-        let mut inner = self.own()?;
-        let result = (|| -> std::result::Result<(), (&'static str, rdkafka::error::KafkaError)> {
-            if offsets.count() > 0 {
-                let meta = self.group.lock().expect("group metadata").as_ref().and_then(|read| read());
-                let Some(meta) = meta else {
-                    return Err(("reading the consumer's group metadata", rdkafka::error::KafkaError::Canceled));
-                };
-                inner
-                    .producer
-                    .send_offsets_to_transaction(offsets, &meta, CALL_TIMEOUT)
-                    .map_err(|e| ("sending the input offsets to the transaction", e))?;
-            }
-            inner.producer.commit_transaction(CALL_TIMEOUT).map_err(|e| ("committing the transaction", e))
-        })();
-        match result {
+        match inner.producer.commit_transaction(CALL_TIMEOUT) {
             Ok(()) => {
                 let r = after(&inner.producer);
                 self.end(&mut inner);
                 Ok(r)
             }
-            Err((what, e)) => {
-                let err = self.failure(&inner, what, e);
+            Err(e) => {
+                let err = self.failure(&inner, "committing the transaction", e);
                 if err.is::<Aborted>() {
                     self.abort_locked(&mut inner)?;
+                } else {
+                    self.end(&mut inner);
                 }
                 Err(err)
             }
@@ -175,19 +145,31 @@ impl Txn {
         self.abort_locked(&mut inner)
     }
 
+    /// Aborts the open transaction. The messages still in flight are
+    /// waited for first (a `BaseProducer` serves their delivery reports
+    /// only when polled; librdkafka's abort waits for them); an abort that
+    /// fails is tried again, a few times.
     fn abort_locked(&self, inner: &mut MutexGuard<'_, Inner>) -> Result<()> {
-        let result = inner.producer.abort_transaction(CALL_TIMEOUT);
-        self.end(inner);
-        match result {
-            Ok(()) => Ok(()),
-            Err(e) => match self.fatal(inner) {
-                Some(fatal) => Err(fatal),
-                None => {
-                    tracing::warn!(error = %e, "aborting the Kafka transaction failed; the broker aborts it when it times out");
-                    Ok(())
+        let mut last = None;
+        for _ in 0..5 {
+            let _ = inner.producer.flush(Duration::from_secs(10));
+            match inner.producer.abort_transaction(CALL_TIMEOUT) {
+                Ok(()) => {
+                    self.end(inner);
+                    return Ok(());
                 }
-            },
+                Err(e) => {
+                    if let Some(fatal) = self.fatal(inner) {
+                        self.end(inner);
+                        return Err(fatal);
+                    }
+                    last = Some(e);
+                }
+            }
         }
+        self.end(inner);
+        tracing::warn!(error = ?last, "aborting the Kafka transaction failed; the broker aborts it when it times out");
+        Ok(())
     }
 
     fn end(&self, inner: &mut MutexGuard<'_, Inner>) {
@@ -208,14 +190,4 @@ impl Txn {
             self.id
         ))
     }
-}
-
-/// The offsets of a batch's transaction: for each partition, the next
-/// offset to read.
-pub fn offsets_list(offsets: &[(&crate::source::PartId, i64)]) -> Result<TopicPartitionList> {
-    let mut tpl = TopicPartitionList::new();
-    for (id, next) in offsets {
-        tpl.add_partition_offset(&id.source, id.partition, rdkafka::Offset::Offset(*next))?;
-    }
-    Ok(tpl)
 }

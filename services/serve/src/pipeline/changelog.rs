@@ -31,14 +31,13 @@ pub trait Changelog: Send + Sync {
     /// order and then an end-of-commit marker, and waits until the broker
     /// has them all. Returns each partition's marker offset, in the order
     /// given. A [`PublishError`] when some record was not delivered.
-    /// A transactional changelog also commits `offsets` (each partition's
-    /// next input offset) and the output sent in the batch's transaction,
-    /// all or nothing ([`Aborted`] when not).
-    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)], offsets: &[(&PartId, i64)]) -> Result<Vec<i64>>;
+    /// A transactional changelog also commits the output sent in the
+    /// batch's transaction with them, all or nothing ([`Aborted`] when
+    /// not); the input offsets are among the records (the store's offset).
+    fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> Result<Vec<i64>>;
 
-    /// True when [`Changelog::publish`] commits the batch's output and input
-    /// offsets with its records: it is then called for every batch, with
-    /// or without records.
+    /// True when [`Changelog::publish`] commits the batch's output with its
+    /// records: it is then called for every batch, with or without records.
     fn transactional(&self) -> bool {
         false
     }

@@ -94,11 +94,7 @@ impl PreparedBatch {
                 self.parts.iter().filter(|(_, p)| !p.is_empty()).map(|(id, p)| (id, p.changes())).collect();
             let transactional = log.transactional();
             if !sets.is_empty() || transactional {
-                let next: Vec<(&PartId, i64)> = match transactional {
-                    true => self.parts.iter().filter_map(|(id, p)| p.offset().map(|o| (id, o + 1))).collect(),
-                    false => Vec::new(),
-                };
-                let offsets = log.publish(&sets, &next)?;
+                let offsets = log.publish(&sets)?;
                 for ((_, p), o) in self.parts.iter_mut().filter(|(_, p)| !p.is_empty()).zip(offsets) {
                     p.set_changelog_offset(o);
                 }

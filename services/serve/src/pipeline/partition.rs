@@ -287,11 +287,6 @@ impl PreparedPart {
         vec![&self.decisions, self.store.changes()]
     }
 
-    /// The last input offset the commit covers, if it covers any new one.
-    pub fn offset(&self) -> Option<i64> {
-        self.offset
-    }
-
     /// True when the commit writes nothing.
     pub fn is_empty(&self) -> bool {
         self.decisions.is_empty() && self.store.changes().is_empty()
