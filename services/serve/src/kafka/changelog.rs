@@ -175,7 +175,16 @@ impl KafkaChangelog {
             .set("isolation.level", "read_committed")
             .create()
             .context("creating the changelog reader")?;
-        let (low, high) = reader
+        // The log's end (high watermark), asked by a read_uncommitted
+        // client: a read_committed one is told the last stable offset,
+        // which stops short of a transaction still open. The restore
+        // then waits for that transaction to end (committed or aborted).
+        let probe: BaseConsumer = base_config(&self.kafka)
+            .set("group.id", format!("{}-restore", self.kafka.group_id))
+            .set("isolation.level", "read_uncommitted")
+            .create()
+            .context("creating a Kafka client")?;
+        let (low, high) = probe
             .fetch_watermarks(&topic, id.partition, Duration::from_secs(10))
             .with_context(|| format!("reading the offsets of {topic} partition {}", id.partition))?;
         let local = store.changelog_offset(&name)?;
