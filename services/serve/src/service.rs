@@ -104,15 +104,16 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
         .with_context(|| format!("cannot listen on admin address {}", cfg.admin.listen))?;
     let admin_addr = admin.local_addr()?;
 
+    // Exactly-once delivery: the instance's transactions.
+    let txn = match &cfg.kafka {
+        Some(k) if k.delivery == crate::config::Delivery::ExactlyOnce => {
+            Some(Arc::new(crate::kafka::txn::Txn::new(k, &pipeline.store().instance_name()?)?))
+        }
+        _ => None,
+    };
+    let transactional = txn.is_some();
     let (source, mut sinks, ingest): (Box<dyn Source>, Vec<Box<dyn Sink>>, Option<_>) = match &cfg.kafka {
         Some(_) => {
-            let k = cfg.kafka.as_ref().expect("matched");
-            let txn = match k.delivery {
-                crate::config::Delivery::ExactlyOnce => {
-                    Some(Arc::new(crate::kafka::txn::Txn::new(k, &pipeline.store().instance_name()?)?))
-                }
-                crate::config::Delivery::AtLeastOnce => None,
-            };
             let source = crate::kafka::KafkaSource::new(&cfg, &metrics, txn.clone())?;
             if let Some((log, gate)) = source.changelog() {
                 pipeline.set_changelog(log, gate);
@@ -146,7 +147,7 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
     // gives up (a margin of a second is kept to finish and close).
     let deadline: Arc<Mutex<Option<std::time::Instant>>> = Arc::default();
     sinks.extend(warehouse_sinks(&cfg, &data_dir, &metrics, stop.clone(), deadline.clone())?);
-    if cfg.kafka.as_ref().is_some_and(|k| k.delivery == crate::config::Delivery::ExactlyOnce) {
+    if transactional {
         // The Kafka sink's rows go into the batch's transaction, committed
         // by the changelog's publication: written last, right before it,
         // so that a transaction stays open only for that long.

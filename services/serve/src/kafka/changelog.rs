@@ -78,16 +78,20 @@ pub struct KafkaChangelog {
     checked: Mutex<BTreeSet<String>>,
 }
 
-fn changelog_producer(k: &KafkaConfig) -> Result<BaseProducer<MarkerDelivery>> {
-    let mut c = base_config(k);
-    c.set("enable.idempotence", "true").set("acks", "all");
-    if !k.properties.contains_key("linger.ms") {
-        c.set("linger.ms", "5");
-    }
+/// The changelog producer's configuration: a producer's, compressed with
+/// lz4 unless `[kafka.properties]` names a compression.
+pub(super) fn changelog_producer_config(k: &KafkaConfig) -> rdkafka::config::ClientConfig {
+    let mut c = super::producer_config(k);
     if !k.properties.contains_key("compression.type") {
         c.set("compression.type", "lz4");
     }
-    c.create_with_context(MarkerDelivery::default()).context("creating the changelog producer")
+    c
+}
+
+fn changelog_producer(k: &KafkaConfig) -> Result<BaseProducer<MarkerDelivery>> {
+    changelog_producer_config(k)
+        .create_with_context(MarkerDelivery::default())
+        .context("creating the changelog producer")
 }
 
 impl KafkaChangelog {

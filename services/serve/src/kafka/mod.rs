@@ -1,10 +1,10 @@
 //! Kafka: the consumer source, the producer sink and the repartition stage
 //! (rdkafka over librdkafka built from its vendored source).
 //!
-//! The consumer never auto-commits: with exactly-once delivery the input
-//! offsets are committed in the batch's transaction; with at-least-once,
-//! they are committed to the group only
-//! after the batch's output is delivered and the state is committed to sled;
+//! The consumer never auto-commits: offsets are committed to the group only
+//! after the batch's output is delivered and the state is committed (with
+//! exactly-once delivery, the state's changelog records, the input offset
+//! among them, commit in the batch's transaction with the output);
 //! on assignment, offsets already applied according to the store are
 //! skipped, so the store is the authority and the group's offsets a
 //! fallback.
@@ -16,8 +16,8 @@
 //! - [`changelog`]: [`changelog::KafkaChangelog`], each partition's state
 //!   published to a compacted topic and restored from it on another instance.
 //! - [`txn`]: [`txn::Txn`], the instance's transactional producer
-//!   (`kafka.delivery = "exactly_once"`): per batch, output, changelog
-//!   records and input offsets in one Kafka transaction.
+//!   (`kafka.delivery = "exactly_once"`): per batch, output and changelog
+//!   records in one Kafka transaction.
 //! - [`encode`]: JSON or protobuf payloads of the output topics.
 //! - [`erase`]: `POST /v1/erase` in Kafka mode, an erase to every input partition.
 
@@ -45,6 +45,18 @@ fn base_config(k: &KafkaConfig) -> ClientConfig {
     c.set("bootstrap.servers", &k.brokers);
     for (key, v) in &k.properties {
         c.set(key, v);
+    }
+    c
+}
+
+/// Producer configuration every producer starts from: idempotent, acks
+/// from every in-sync replica, and (unless `[kafka.properties]` sets it) a
+/// 5 ms linger so that rows of a batch travel together.
+fn producer_config(k: &KafkaConfig) -> ClientConfig {
+    let mut c = base_config(k);
+    c.set("enable.idempotence", "true").set("acks", "all");
+    if !k.properties.contains_key("linger.ms") {
+        c.set("linger.ms", "5");
     }
     c
 }

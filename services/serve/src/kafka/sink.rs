@@ -12,7 +12,7 @@ use rdkafka::producer::{BaseProducer, BaseRecord, DeliveryResult, Producer, Prod
 use rdkafka::types::RDKafkaErrorCode;
 use rdkafka::ClientContext;
 
-use super::{base_config, encode};
+use super::encode;
 use crate::config::{Config, Format, KafkaConfig};
 
 /// Counts delivery failures of the producer.
@@ -36,12 +36,7 @@ impl ProducerContext for DeliveryCounter {
 
 /// An idempotent producer.
 pub fn producer(k: &KafkaConfig) -> Result<BaseProducer<DeliveryCounter>> {
-    let mut c = base_config(k);
-    c.set("enable.idempotence", "true").set("acks", "all");
-    if !k.properties.contains_key("linger.ms") {
-        c.set("linger.ms", "5");
-    }
-    c.create_with_context(DeliveryCounter::default()).context("creating the Kafka producer")
+    super::producer_config(k).create_with_context(DeliveryCounter::default()).context("creating the Kafka producer")
 }
 
 /// Replaces `p` with a new producer after it failed to deliver (its
@@ -166,10 +161,6 @@ impl Sink for KafkaSink {
     }
 
     fn close(&mut self) -> Result<(), SinkError> {
-        if let Some(txn) = &self.txn {
-            // A batch given up at shutdown: its rows are never read.
-            txn.abort().map_err(|e| SinkError::fatal("kafka", format!("{e:#}")))?;
-        }
         self.producer.flush(Duration::from_secs(30)).map_err(|e| SinkError::fatal("kafka", e.to_string()))
     }
 

@@ -69,7 +69,7 @@ impl KafkaSource {
     pub fn new(cfg: &Config, metrics: &Metrics, txn: Option<Arc<super::txn::Txn>>) -> Result<KafkaSource> {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
         let changelog = match k.changelog {
-            true => Some((Arc::new(KafkaChangelog::new(k, metrics, txn.clone())?), CommitGate::default())),
+            true => Some((Arc::new(KafkaChangelog::new(k, metrics, txn)?), CommitGate::default())),
             false => None,
         };
         let context = RevokeGate { gate: changelog.as_ref().map(|(_, g)| g.clone()) };

@@ -23,8 +23,7 @@ use std::time::Duration;
 use anyhow::{anyhow, Context, Result};
 use rdkafka::producer::{BaseProducer, Producer};
 
-use super::base_config;
-use super::changelog::MarkerDelivery;
+use super::changelog::{changelog_producer_config, MarkerDelivery};
 use crate::config::KafkaConfig;
 use crate::pipeline::changelog::Aborted;
 
@@ -50,16 +49,11 @@ impl Txn {
     /// aborts its unfinished transaction).
     pub fn new(k: &KafkaConfig, store_instance: &str) -> Result<Txn> {
         let id = k.transactional_id(store_instance);
-        let mut c = base_config(k);
-        c.set("transactional.id", &id).set("enable.idempotence", "true").set("acks", "all");
-        if !k.properties.contains_key("linger.ms") {
-            c.set("linger.ms", "5");
-        }
-        if !k.properties.contains_key("compression.type") {
-            c.set("compression.type", "lz4");
-        }
-        let producer: BaseProducer<MarkerDelivery> =
-            c.create_with_context(MarkerDelivery::default()).context("creating the transactional Kafka producer")?;
+        // It carries the changelog records, and the output rows with them.
+        let producer: BaseProducer<MarkerDelivery> = changelog_producer_config(k)
+            .set("transactional.id", &id)
+            .create_with_context(MarkerDelivery::default())
+            .context("creating the transactional Kafka producer")?;
         producer.init_transactions(CALL_TIMEOUT).map_err(|e| {
             anyhow!(
                 "initializing Kafka transactions for transactional.id {id} failed: {e}; brokers without transactions (or without the rights for them) need kafka.delivery = \"at_least_once\""
@@ -67,11 +61,6 @@ impl Txn {
         })?;
         tracing::info!(transactional_id = %id, "Kafka transactions initialized (exactly-once delivery)");
         Ok(Txn { inner: Mutex::new(Inner { producer, owner: None }), ended: Condvar::new(), id })
-    }
-
-    /// The `transactional.id`.
-    pub fn id(&self) -> &str {
-        &self.id
     }
 
     /// The producer inside this thread's transaction (begun if none is):
