@@ -42,7 +42,10 @@ fn wait_ready(mut s: Serve) -> Serve {
 fn start_instance(dir: &std::path::Path, brokers: &str, prefix: &str, batch: usize, kafka: &str) -> Serve {
     let admin = free_port();
     let cfg = kafka_config(dir, brokers, admin, prefix, true, "");
-    let text = std::fs::read_to_string(&cfg).unwrap().replace("batch_size = 500", &format!("batch_size = {batch}"));
+    let mut text = std::fs::read_to_string(&cfg).unwrap().replace("batch_size = 500", &format!("batch_size = {batch}"));
+    if kafka.contains("input_keyed_by_user") {
+        text = text.replace("input_keyed_by_user = true\n", "");
+    }
     std::fs::write(&cfg, format!("{text}{kafka}\n[kafka.properties]\n\"session.timeout.ms\" = \"6000\"\n")).unwrap();
     Serve::start(&cfg, admin, &dir.join("serve.log"))
 }
@@ -336,4 +339,73 @@ fn an_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
     assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[b.path()]));
     assert_eq!(repeated, 0, "{}", log(&[a.path(), b.path()]));
     t.assert_each_once(&b.path().join("serve.log"), &log(&[a.path(), b.path()]));
+}
+
+/// Input not keyed by user goes through the repartition stage; the
+/// instance is killed with kill -9 three times while it works through the
+/// backlog, and started again. With exactly-once delivery each event is in
+/// the repartition topic once (read_committed: Kafka's transactions, KIP-98,
+/// with the input offsets in them, KIP-447); with at-least-once, at least
+/// once. Either way the credit is replay's, each row once with exactly-once.
+/// (A backlog, not a stream produced meanwhile: a burst of days of event
+/// time landing on an input partition already read to its end is late by
+/// design, docs/contract.md "Repartitioned input".)
+#[test]
+fn the_repartition_stage_through_kills_sends_each_event_once() {
+    repartition_kills("exactly_once");
+}
+
+/// [`the_repartition_stage_through_kills_sends_each_event_once`] with
+/// at-least-once delivery: every event at least once, the credit replay's.
+#[test]
+fn the_repartition_stage_through_kills_sends_each_event_at_least_once() {
+    repartition_kills("at_least_once");
+}
+
+fn repartition_kills(delivery: &str) {
+    let Some(t) = setup(&format!("rep-{}", &delivery[..2]), 4, 1500, 53) else { return };
+    create_topics(&t.brokers, &[&format!("{}-repart", t.prefix)], 4, &[]);
+    // Keyless: the producer's partitioner spreads a user's events over
+    // every input partition.
+    let unkeyed: Vec<_> = t.events.iter().map(|e| (None, e.line.as_bytes().to_vec(), None)).collect();
+    produce(&t.brokers, &format!("{}-events", t.prefix), &unkeyed);
+    let mode = format!("delivery = \"{delivery}\"\ninput_keyed_by_user = false");
+    let dir = tempfile::tempdir().unwrap();
+    let start = || instance(dir.path(), &t.brokers, &t.prefix, 50, &mode);
+    let mut serve = start();
+    let mut seed = 0x0bad_5eed_u64;
+    for _ in 0..3 {
+        seed ^= seed << 13;
+        seed ^= seed >> 7;
+        seed ^= seed << 17;
+        std::thread::sleep(Duration::from_millis(500 + seed % 2000));
+        serve.signal("KILL");
+        serve = start();
+    }
+    let logs = || log(&[dir.path()]);
+    let ids: std::collections::HashSet<String> = t
+        .events
+        .iter()
+        .map(|e| serde_json::from_str::<Value>(&e.line).unwrap()["event_id"].as_str().unwrap().to_string())
+        .collect();
+    let (_, repeated_credit) = t.all_credit(&dir.path().join("serve.log"));
+    let events = consume_until(&t.brokers, &format!("{}-repart", t.prefix), Duration::from_secs(120), |rows| {
+        rows.iter().filter_map(|r| r["event_id"].as_str()).collect::<std::collections::HashSet<_>>().len() >= ids.len()
+    });
+    let mut seen: std::collections::HashMap<&str, usize> = std::collections::HashMap::new();
+    for r in events.iter().filter(|r| r.get("progress").is_none()) {
+        *seen.entry(r["event_id"].as_str().expect("a repartitioned event has its id")).or_default() += 1;
+    }
+    let missing = ids.iter().filter(|id| !seen.contains_key(id.as_str())).count();
+    let twice = seen.values().filter(|n| **n > 1).count();
+    eprintln!(
+        "repartition, 3 kills, {delivery}: {} events, {missing} missing, {twice} repartitioned more than once, {repeated_credit} credit rows repeated",
+        ids.len()
+    );
+    assert_eq!(missing, 0, "{}", logs());
+    assert_eq!(serve.signal("TERM").code(), Some(0), "{}", logs());
+    if delivery == "exactly_once" {
+        assert_eq!(twice, 0, "events repartitioned more than once: {}", logs());
+        t.assert_each_once(&dir.path().join("serve.log"), &logs());
+    }
 }

@@ -317,6 +317,12 @@ impl KafkaConfig {
         format!("{}-{name}", self.group_id)
     }
 
+    /// The transactional.id of this instance's repartition stage
+    /// (`exactly_once`, input not keyed by user).
+    pub fn repartition_transactional_id(&self, store_instance: &str) -> String {
+        format!("{}-repartition", self.transactional_id(store_instance))
+    }
+
     /// The changelog topic of input (or repartition) topic `topic`.
     pub fn changelog_topic(&self, topic: &str) -> String {
         format!("{}-{topic}-changelog", self.group_id)
@@ -961,6 +967,7 @@ mod tests {
         let k = load("[kafka]\ngroup_id = \"g\"\n").unwrap().kafka.unwrap();
         assert_eq!(k.delivery, Delivery::ExactlyOnce);
         assert_eq!(k.transactional_id("0123abcd"), "g-0123abcd");
+        assert_eq!(k.repartition_transactional_id("0123abcd"), "g-0123abcd-repartition");
         let k = load("[kafka]\ngroup_id = \"g\"\ninstance_id = \"pod-2\"\n").unwrap().kafka.unwrap();
         assert_eq!(k.transactional_id("0123abcd"), "g-pod-2");
         let err = load("[kafka]\nchangelog = false\n").unwrap_err().to_string();

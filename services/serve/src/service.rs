@@ -105,16 +105,17 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
     let admin_addr = admin.local_addr()?;
 
     // Exactly-once delivery: the instance's transactions.
+    let instance = pipeline.store().instance_name()?;
     let txn = match &cfg.kafka {
         Some(k) if k.delivery == crate::config::Delivery::ExactlyOnce => {
-            Some(Arc::new(crate::kafka::txn::Txn::new(k, &pipeline.store().instance_name()?)?))
+            Some(Arc::new(crate::kafka::txn::Txn::new(k, &instance)?))
         }
         _ => None,
     };
     let transactional = txn.is_some();
     let (source, mut sinks, ingest): (Box<dyn Source>, Vec<Box<dyn Sink>>, Option<_>) = match &cfg.kafka {
         Some(_) => {
-            let source = crate::kafka::KafkaSource::new(&cfg, &metrics, txn.clone())?;
+            let source = crate::kafka::KafkaSource::new(&cfg, &metrics, txn.clone(), &instance)?;
             if let Some((log, gate)) = source.changelog() {
                 pipeline.set_changelog(log, gate);
             }

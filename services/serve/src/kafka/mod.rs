@@ -29,7 +29,9 @@ pub mod sink;
 pub mod source;
 pub mod txn;
 
+use anyhow::{Context, Result};
 use rdkafka::config::ClientConfig;
+use rdkafka::consumer::BaseConsumer;
 
 use crate::config::KafkaConfig;
 
@@ -76,4 +78,21 @@ pub fn consumer_config(k: &KafkaConfig, group: &str) -> ClientConfig {
         c.set("partition.assignment.strategy", "cooperative-sticky");
     }
     c
+}
+
+/// A client that only asks the brokers where partitions begin and end
+/// (`fetch_watermarks`), for the lag and caught-up readings. A group
+/// consumer's own query waits on its broker connection behind the fetch in
+/// flight (a long poll of up to `fetch.wait.max.ms` when caught up), so a
+/// reading of four partitions cost the processing loop up to two seconds;
+/// this client has no fetch in flight. Read-committed like the consumers:
+/// the end it reports is the last stable offset. It never joins `group`
+/// (librdkafka wants a group id for a consumer).
+pub fn offsets_probe(k: &KafkaConfig, group: &str) -> Result<BaseConsumer> {
+    base_config(k)
+        .set("group.id", group)
+        .set("enable.auto.commit", "false")
+        .set("isolation.level", "read_committed")
+        .create()
+        .context("creating the Kafka offsets client")
 }

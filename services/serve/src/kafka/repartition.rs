@@ -17,16 +17,36 @@
 //! slowest one that still has a backlog ([`SourceClocks`]): a function of
 //! its own message sequence, so a redelivery repeats it.
 //!
+//! ## Exactly-once (`kafka.delivery = "exactly_once"`)
+//!
+//! Each pump is one Kafka transaction of the stage's own transactional
+//! producer (`transactional.id` `<group_id>-<instance_id>-repartition`):
+//! the repartitioned events, the dead letters, the progress records and the
+//! input offsets (`send_offsets_to_transaction` with the stage consumer's
+//! group metadata, KIP-447). Stage 2 reads the repartition topic with
+//! read_committed, so an event is repartitioned once however often the
+//! stage crashes: the records of a transaction that did not commit are never
+//! read, and its input is read again from the offsets of the last one that
+//! did. A member that lost its partitions in a rebalance and still sends is
+//! refused by the group coordinator (its generation is old), so its
+//! transaction aborts. Nothing blocks the stage's consumer in a rebalance
+//! (no hook waits), so the offsets in the transaction never wait for a
+//! rebalance this thread would have to serve; a call that fails aborts.
+//! A stage fenced by a newer producer with the same `transactional.id`
+//! stops the instance.
+//!
 //! ## Failures
 //!
-//! A failed produce, flush or offset commit does not stop the service: the
-//! stage waits (exponential backoff up to 30 s), rewinds its consumer to the
-//! last committed input offsets and reads the same messages again, with a
-//! new producer (one that failed to deliver may stay stuck). Offsets
-//! are committed asynchronously: no call of the stage waits without a time
+//! A failed produce, flush, offset commit or transaction does not stop the
+//! service: the stage aborts its transaction (exactly-once), waits
+//! (exponential backoff up to 30 s), rewinds its consumer to the last
+//! committed input offsets, takes back the progress of the failed pump and
+//! reads the same messages again. Without transactions it does so with a
+//! new producer (one that failed to deliver may stay stuck); offsets are
+//! then committed asynchronously: no call of the stage waits without a time
 //! limit, so a broker restart during a rebalance cannot stall it. Messages
-//! produced twice are the same records; stage 2 drops the second copy of an
-//! event as a duplicate.
+//! produced twice (at-least-once) are the same records; stage 2 drops the
+//! second copy of an event as a duplicate.
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::sync::atomic::Ordering;
@@ -35,13 +55,15 @@ use std::time::{Duration, Instant};
 use anyhow::{Context, Result};
 use apportion_contract::{RejectReason, Rejection};
 use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer};
+use rdkafka::error::KafkaError;
 use rdkafka::message::Message;
 use rdkafka::producer::{BaseProducer, Producer};
 use rdkafka::{Offset, TopicPartitionList};
 use serde::{Deserialize, Serialize};
 
 use super::sink::{flush_checked, producer, send, send_to, DeliveryCounter};
-use super::{consumer_config, encode};
+use super::txn::CALL_TIMEOUT;
+use super::{consumer_config, encode, producer_config};
 use crate::config::{Config, Format};
 use crate::metrics::Metrics;
 use crate::pipeline::emit::dead_letter;
@@ -131,6 +153,8 @@ impl SourceClocks {
 /// Stage 1 (see the module docs).
 pub struct Repartitioner {
     consumer: BaseConsumer,
+    /// Asks where input partitions end (see [`super::offsets_probe`]).
+    probe: BaseConsumer,
     producer: BaseProducer<DeliveryCounter>,
     kafka: crate::config::KafkaConfig,
     topic: String,
@@ -146,9 +170,30 @@ pub struct Repartitioner {
     progress: BTreeMap<PartId, SourceProgress>,
     retry_at: Option<Instant>,
     backoff: Duration,
+    /// The stage's `transactional.id` (exactly-once delivery).
+    txn: Option<String>,
+    /// A transaction is begun and not yet committed or aborted.
+    open: bool,
     /// Input partitions at their end, as of `caught_up_at` (network reads,
     /// so at most every [`CAUGHT_UP_EVERY`]).
     caught_up: (BTreeSet<PartId>, Option<Instant>),
+}
+
+/// The stage's producer: transactional, its transactions initialized,
+/// when `txn` names a `transactional.id`.
+fn stage_producer(k: &crate::config::KafkaConfig, txn: Option<&str>) -> Result<BaseProducer<DeliveryCounter>> {
+    let Some(id) = txn else { return producer(k) };
+    let p: BaseProducer<DeliveryCounter> = producer_config(k)
+        .set("transactional.id", id)
+        .create_with_context(DeliveryCounter::default())
+        .context("creating the repartition stage's transactional producer")?;
+    p.init_transactions(CALL_TIMEOUT).map_err(|e: KafkaError| {
+        anyhow::anyhow!(
+            "initializing Kafka transactions for transactional.id {id} (repartition stage) failed: {e}; brokers without transactions (or without the rights for them) need kafka.delivery = \"at_least_once\""
+        )
+    })?;
+    tracing::info!(transactional_id = %id, "Kafka transactions initialized for the repartition stage (exactly-once delivery)");
+    Ok(p)
 }
 
 /// How often stage 1 asks the brokers whether input partitions are at their end.
@@ -157,7 +202,9 @@ const CAUGHT_UP_EVERY: Duration = Duration::from_secs(2);
 const MAX_BACKOFF: Duration = Duration::from_secs(30);
 
 impl Repartitioner {
-    pub(crate) fn new(cfg: &Config, metrics: Metrics) -> Result<Self> {
+    /// `txn`: the stage's `transactional.id` (exactly-once delivery), whose
+    /// transactions are initialized here.
+    pub(crate) fn new(cfg: &Config, metrics: Metrics, txn: Option<String>) -> Result<Self> {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
         let consumer: BaseConsumer = consumer_config(k, &format!("{}-repartition", k.group_id))
             .create()
@@ -177,7 +224,8 @@ impl Repartitioner {
         let (key, _) = cfg.pseudonym_key();
         Ok(Repartitioner {
             consumer,
-            producer: producer(k)?,
+            probe: super::offsets_probe(k, &format!("{}-repartition", k.group_id))?,
+            producer: stage_producer(k, txn.as_deref())?,
             kafka: k.clone(),
             topic: k.repartition_topic.clone(),
             partitions_out,
@@ -192,16 +240,20 @@ impl Repartitioner {
             progress: BTreeMap::new(),
             retry_at: None,
             backoff: Duration::from_millis(200),
+            txn,
+            open: false,
             caught_up: (BTreeSet::new(), None),
         })
     }
 
     /// Moves up to `max` input messages to the repartition topic. A failure
-    /// is logged and retried later (see the module docs); it is never fatal.
+    /// is logged and retried later (see the module docs); only a fenced
+    /// transactional producer is fatal.
     pub(crate) fn pump(&mut self, max: usize, wait: Duration) -> Result<()> {
         if self.retry_at.is_some_and(|t| Instant::now() < t) {
             return Ok(());
         }
+        let progress = self.progress.clone();
         match self.try_pump(max, wait) {
             Ok(()) => {
                 if self.retry_at.take().is_some() {
@@ -210,15 +262,91 @@ impl Repartitioner {
                 self.backoff = Duration::from_millis(200);
             }
             Err(e) => {
+                if let Some(fatal) = self.fatal() {
+                    return Err(fatal);
+                }
                 self.metrics.sink_errors.with_label_values(&["kafka"]).inc();
                 tracing::warn!(error = %format!("{e:#}"), retry_in_ms = self.backoff.as_millis() as u64, "repartition stage failed; reading the same input again after the backoff");
                 self.retry_at = Some(Instant::now() + self.backoff);
                 self.backoff = (self.backoff * 2).min(MAX_BACKOFF);
+                if self.txn.is_some() {
+                    self.abort()?;
+                } else {
+                    super::sink::renew(&mut self.producer, &self.kafka, "repartition");
+                }
                 self.rewind();
-                super::sink::renew(&mut self.producer, &self.kafka, "repartition");
+                // The failed pump's messages are read again: their progress
+                // is taken again from where it was before them.
+                self.progress = progress;
             }
         }
         Ok(())
+    }
+
+    /// Begins a transaction (exactly-once) unless one is open.
+    fn begin(&mut self) -> Result<()> {
+        if self.txn.is_some() && !self.open {
+            self.producer.begin_transaction().context("beginning a repartition transaction")?;
+            self.open = true;
+        }
+        Ok(())
+    }
+
+    /// Commits the open transaction with the input offsets `tpl`
+    /// (KIP-447: the consumer's group metadata goes with them, so a member
+    /// that lost the partitions cannot commit).
+    fn commit(&mut self, tpl: Option<TopicPartitionList>) -> Result<()> {
+        if let Some(tpl) = tpl {
+            self.begin()?;
+            let group = self.consumer.group_metadata().context("the repartition consumer has no group metadata")?;
+            self.producer
+                .send_offsets_to_transaction(&tpl, &group, CALL_TIMEOUT)
+                .context("sending the input offsets to the repartition transaction")?;
+        }
+        if self.open {
+            self.producer.commit_transaction(CALL_TIMEOUT).context("committing the repartition transaction")?;
+            self.open = false;
+        }
+        Ok(())
+    }
+
+    /// Aborts the open transaction (its records are never read by stage 2);
+    /// when the abort fails, a new producer with the same
+    /// `transactional.id` is made, whose initialization aborts it.
+    fn abort(&mut self) -> Result<()> {
+        let open = std::mem::replace(&mut self.open, false);
+        if !open {
+            return Ok(());
+        }
+        // librdkafka's abort waits for the messages in flight, whose
+        // delivery reports a BaseProducer serves only when polled.
+        let _ = self.producer.flush(Duration::from_secs(10));
+        match self.producer.abort_transaction(CALL_TIMEOUT) {
+            Ok(()) => Ok(()),
+            Err(e) => {
+                if let Some(fatal) = self.fatal() {
+                    return Err(fatal);
+                }
+                tracing::warn!(error = %e, "aborting the repartition transaction failed; starting a new transactional producer, which aborts it");
+                match stage_producer(&self.kafka, self.txn.as_deref()) {
+                    Ok(p) => self.producer = p,
+                    Err(e) => {
+                        tracing::warn!(error = %format!("{e:#}"), "cannot start a new transactional producer; the broker aborts the transaction when it times out")
+                    }
+                }
+                Ok(())
+            }
+        }
+    }
+
+    /// The error that stops the instance: the transactional producer was
+    /// fenced (another instance with the same `transactional.id`).
+    fn fatal(&self) -> Option<anyhow::Error> {
+        let (code, reason) = self.producer.client().fatal_error()?;
+        Some(anyhow::anyhow!(
+            "the repartition stage's transactional producer {} failed for good ({code:?}: {reason}): another instance started with the same transactional.id (kafka.instance_id), or this one was presumed dead; this instance writes nothing more and stops",
+            self.txn.as_deref().unwrap_or("-")
+        ))
     }
 
     /// Points the consumer back at the committed input offsets, so the
@@ -276,6 +404,9 @@ impl Repartitioner {
                     self.caught_up.1 = None;
                 }
             }
+        }
+        if n > 0 || !announce.is_empty() {
+            self.begin()?;
         }
         for id in &announce {
             self.send_progress(id)?;
@@ -345,6 +476,9 @@ impl Repartitioner {
         }
         // Progress of every input partition read (or changed), to every
         // partition of the repartition topic.
+        if !touched.is_empty() {
+            self.begin()?;
+        }
         for id in &touched {
             self.send_progress(id)?;
         }
@@ -352,12 +486,23 @@ impl Repartitioner {
         if n == 0 && !touched_any {
             return Ok(());
         }
-        flush_checked(&self.producer, before, "kafka").map_err(|e| anyhow::anyhow!("{e}"))?;
-        if !offsets.is_empty() {
-            let mut tpl = TopicPartitionList::new();
-            for ((t, p), o) in offsets {
-                tpl.add_partition_offset(&t, p, Offset::Offset(o + 1))?;
+        let tpl = match offsets.is_empty() {
+            true => None,
+            false => {
+                let mut tpl = TopicPartitionList::new();
+                for ((t, p), o) in offsets {
+                    tpl.add_partition_offset(&t, p, Offset::Offset(o + 1))?;
+                }
+                Some(tpl)
             }
+        };
+        if self.txn.is_some() {
+            // commit_transaction waits for every record and fails when one
+            // was not delivered.
+            return self.commit(tpl);
+        }
+        flush_checked(&self.producer, before, "kafka").map_err(|e| anyhow::anyhow!("{e}"))?;
+        if let Some(tpl) = tpl {
             // Asynchronous on purpose: a synchronous commit waits without a
             // time limit, and while the group rejoins after a broker restart
             // it can wait for a rebalance that only this thread's next poll
@@ -389,7 +534,7 @@ impl Repartitioner {
         let Ok(positions) = self.consumer.position() else { return out };
         let committed = self.consumer.committed(Duration::from_secs(2)).ok();
         for e in positions.elements() {
-            let Ok((low, high)) = self.consumer.fetch_watermarks(e.topic(), e.partition(), Duration::from_millis(500))
+            let Ok((low, high)) = self.probe.fetch_watermarks(e.topic(), e.partition(), Duration::from_millis(500))
             else {
                 continue;
             };

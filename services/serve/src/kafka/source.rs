@@ -50,6 +50,8 @@ impl ConsumerContext for RevokeGate {
 /// input is not keyed by user.
 pub struct KafkaSource {
     consumer: BaseConsumer<RevokeGate>,
+    /// Asks where partitions end (see [`super::offsets_probe`]).
+    probe: BaseConsumer,
     changelog: Option<(Arc<KafkaChangelog>, CommitGate)>,
     payloads: BTreeMap<String, Payload>,
     assigned: BTreeSet<PartId>,
@@ -65,8 +67,14 @@ pub struct KafkaSource {
 
 impl KafkaSource {
     /// Connects and subscribes; `txn`: the instance's transactions
-    /// (exactly-once delivery).
-    pub fn new(cfg: &Config, metrics: &Metrics, txn: Option<Arc<super::txn::Txn>>) -> Result<KafkaSource> {
+    /// (exactly-once delivery); `instance`: the store's instance name (for
+    /// the repartition stage's own `transactional.id`).
+    pub fn new(
+        cfg: &Config,
+        metrics: &Metrics,
+        txn: Option<Arc<super::txn::Txn>>,
+        instance: &str,
+    ) -> Result<KafkaSource> {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
         let changelog = match k.changelog {
             true => Some((Arc::new(KafkaChangelog::new(k, metrics, txn)?), CommitGate::default())),
@@ -86,10 +94,13 @@ impl KafkaSource {
         } else {
             payloads.insert(k.repartition_topic.clone(), Payload::Pseudonymized);
             consumer.subscribe(&[&k.repartition_topic]).context("subscribing to the repartition topic")?;
-            Some(Repartitioner::new(cfg, metrics.clone())?)
+            let stage_txn =
+                (k.delivery == crate::config::Delivery::ExactlyOnce).then(|| k.repartition_transactional_id(instance));
+            Some(Repartitioner::new(cfg, metrics.clone(), stage_txn)?)
         };
         Ok(KafkaSource {
             consumer,
+            probe: super::offsets_probe(k, &k.group_id)?,
             changelog,
             payloads,
             assigned: BTreeSet::new(),
@@ -197,8 +208,7 @@ impl Source for KafkaSource {
         let committed = self.consumer.committed(Duration::from_secs(2)).ok();
         for e in positions.elements() {
             let id = PartId::new(e.topic(), e.partition());
-            let Ok((low, high)) = self.consumer.fetch_watermarks(e.topic(), e.partition(), Duration::from_secs(1))
-            else {
+            let Ok((low, high)) = self.probe.fetch_watermarks(e.topic(), e.partition(), Duration::from_secs(1)) else {
                 self.caught_up_at.remove(&id);
                 continue;
             };

@@ -28,7 +28,7 @@ use crate::config::KafkaConfig;
 use crate::pipeline::changelog::Aborted;
 
 /// How long a transaction call may block.
-const CALL_TIMEOUT: Duration = Duration::from_secs(60);
+pub(crate) const CALL_TIMEOUT: Duration = Duration::from_secs(60);
 
 /// The instance's transactional producer.
 pub struct Txn {
