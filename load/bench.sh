@@ -44,7 +44,11 @@
 #     when it reads Kafka). Its time runs from process start until its metrics
 #     count every message consumed; peak RSS is VmHWM read before SIGTERM.
 #     Ratio = serve events/s / ConsumerPerformance msgs/s (its own reported
-#     rate, group join included; 1 = as fast as the bare consumer).
+#     rate, group join included; 1 = as fast as the bare consumer). Rows:
+#     exactly_once (the default), at_least_once with and without the changelog,
+#     and exactly_once with input_keyed_by_user = false (every event crosses
+#     the repartition stage and its topic first; the same topic, read as if
+#     its keys meant nothing).
 #
 #  c. (--latency) p50 and p99 of apportion_processing_latency_seconds (from a
 #     conversion read by serve to its credit rows produced; includes the
@@ -319,14 +323,22 @@ kafka_part() {
   # rules: exactly-once delivery (the default: one Kafka transaction per
   # batch); rules-alo: the same at least once; rules-nolog: at least once
   # with kafka.changelog = false (no changelog topic)
-  local sets=("rules:$rules" "rules-alo:$rules" "rules-nolog:$rules")
+  # rules-unkeyed: exactly once with input_keyed_by_user = false, so every
+  # event crosses the repartition stage (its own transactions) first
+  local sets=("rules:$rules" "rules-alo:$rules" "rules-nolog:$rules" "rules-unkeyed:$rules")
   [ "$dd_serve" = 1 ] && sets+=("seven:$seven")
-  local s tag models dir port pid n hwm cfg limit rows_line changelog delivery
+  local s tag models dir port pid n hwm cfg limit rows_line changelog delivery keyed
   for s in "${sets[@]}"; do
     tag="${s%%:*}"; models="${s#*:}"
     changelog=true; [ "${tag%-nolog}" != "$tag" ] && changelog=false
     delivery=exactly_once
-    if [ "$tag" != rules ] && [ "$tag" != seven ]; then delivery=at_least_once; fi
+    if [ "$tag" = rules-alo ] || [ "$tag" = rules-nolog ]; then delivery=at_least_once; fi
+    keyed=true
+    if [ "$tag" = rules-unkeyed ]; then
+      keyed=false
+      "${ks[@]}" run org.apache.kafka.tools.TopicCommand --bootstrap-server "$kafka" --create \
+        --topic "$topic-$tag-repart" --partitions 4 --replication-factor 1 >> "$logs/topic-$events.log" 2>&1
+    fi
     dir="$work/serve-$tag"
     rm -rf "$dir"; mkdir -p "$dir"
     port="$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')"
@@ -347,11 +359,11 @@ credit_topic = "$topic-$tag-credit"
 paths_topic = "$topic-$tag-paths"
 dead_letter_topic = "$topic-$tag-dead"
 repartition_topic = "$topic-$tag-repart"
-input_keyed_by_user = true
+input_keyed_by_user = $keyed
 changelog = $changelog
 delivery = "$delivery"
 EOF
-    say "serve ($tag): $models, changelog $changelog, $delivery, until $lines messages are consumed"
+    say "serve ($tag): $models, changelog $changelog, $delivery, keyed by user $keyed, until $lines messages are consumed"
     t0=$(date +%s.%N)
     "$bin" serve --config "$cfg" > "$logs/serve-$tag-$events.log" 2>&1 &
     pid=$!
@@ -370,7 +382,9 @@ EOF
       --describe --group "$topic-$tag-group" > "$logs/serve-$tag-$events.lag" 2>&1 || true
     local lag; lag="$(awk '$2 == "'"$topic-events"'" && $6 ~ /^[0-9]+$/ { s += $6 } END { printf "%.0f", s }' "$logs/serve-$tag-$events.lag")"
     say "serve ($tag): committed lag after stop: ${lag:-?} (ConsumerGroupCommand)"
-    row "serve $models (kafka in/out, changelog $changelog, $delivery)" "$sw" "$(eps "$lines" "$sw")" "$hwm" "ConsumerPerformance" "$perf_wall" \
+    local what="kafka in/out, changelog $changelog, $delivery"
+    [ "$keyed" = false ] && what="$what, repartitioned"
+    row "serve $models ($what)" "$sw" "$(eps "$lines" "$sw")" "$hwm" "ConsumerPerformance" "$perf_wall" \
       "$(ratio "$(eps "$lines" "$sw")" "$perf_rate")"
     if [ "$tag" = rules ]; then restore_part; fi
     rm -rf "$dir"
