@@ -268,9 +268,11 @@ fn two_instances_through_five_kills_give_replay_s_credit_at_least_once() {
 }
 
 fn crash_loop(delivery: &str) {
-    let users = env_or("APPORTION_CRASH_LOOP_USERS", 3000) as u32;
+    // 53 000 users: about 200 000 events (the scenario's mean is 3.75 per
+    // user); about 50 s per delivery mode here.
+    let users = env_or("APPORTION_CRASH_LOOP_USERS", 53_000) as u32;
     let kill_count = env_or("APPORTION_CRASH_LOOP_KILLS", 5);
-    let batch = env_or("APPORTION_CRASH_LOOP_BATCH", 50);
+    let batch = env_or("APPORTION_CRASH_LOOP_BATCH", 500);
     let Some(t) = setup(&format!("loop-{}", &delivery[..2]), 4, users, 43) else { return };
     let mode = format!("delivery = \"{delivery}\"");
     let dirs = [tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap()];
@@ -297,7 +299,8 @@ fn crash_loop(delivery: &str) {
     let (got, repeated) = t.all_credit(&dirs[0].path().join("serve.log"));
     let logs = log(&[dirs[0].path(), dirs[1].path()]);
     eprintln!(
-        "{kill_count} kills, {delivery}: {} rows, {repeated} repeated, {} restores, {} assignments up to date",
+        "{kill_count} kills, {delivery}: {} events, {} rows, {repeated} repeated, {} restores, {} assignments up to date",
+        t.events.len(),
         got.len(),
         logs.matches("partition restored from its changelog").count(),
         logs.matches("the local state is the changelog's last commit").count()
