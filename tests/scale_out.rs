@@ -392,13 +392,7 @@ fn repartition_kills(delivery: &str) {
         .map(|e| serde_json::from_str::<Value>(&e.line).unwrap()["event_id"].as_str().unwrap().to_string())
         .collect();
     let (_, repeated_credit) = t.all_credit(&dir.path().join("serve.log"));
-    let events = consume_until(&t.brokers, &format!("{}-repart", t.prefix), Duration::from_secs(120), |rows| {
-        rows.iter().filter_map(|r| r["event_id"].as_str()).collect::<std::collections::HashSet<_>>().len() >= ids.len()
-    });
-    let mut seen: std::collections::HashMap<&str, usize> = std::collections::HashMap::new();
-    for r in events.iter().filter(|r| r.get("progress").is_none()) {
-        *seen.entry(r["event_id"].as_str().expect("a repartitioned event has its id")).or_default() += 1;
-    }
+    let seen = repartitioned(&t, ids.len());
     let missing = ids.iter().filter(|id| !seen.contains_key(id.as_str())).count();
     let twice = seen.values().filter(|n| **n > 1).count();
     eprintln!(
@@ -411,4 +405,54 @@ fn repartition_kills(delivery: &str) {
         assert_eq!(twice, 0, "events repartitioned more than once: {}", logs());
         t.assert_each_once(&dir.path().join("serve.log"), &logs());
     }
+}
+
+/// The event ids of the repartition topic's events (progress records left
+/// out), read read_committed once it holds `n` distinct ids; with how many
+/// copies of each.
+fn repartitioned(t: &Setup, n: usize) -> std::collections::HashMap<String, usize> {
+    let rows = consume_until(&t.brokers, &format!("{}-repart", t.prefix), Duration::from_secs(120), |rows| {
+        rows.iter().filter_map(|r| r["event_id"].as_str()).collect::<std::collections::HashSet<_>>().len() >= n
+    });
+    let mut seen = std::collections::HashMap::new();
+    for r in rows.iter().filter(|r| r.get("progress").is_none()) {
+        *seen.entry(r["event_id"].as_str().expect("a repartitioned event has its id").to_string()).or_default() += 1;
+    }
+    seen
+}
+
+/// [`an_instance_fenced_by_its_twin_stops_and_nothing_repeats`] with input
+/// not keyed by user: the twin's start fences both transactional producers
+/// of the first instance (its own and its repartition stage's), which exits
+/// non-zero saying why; every event crosses the repartition topic once and
+/// every credit row is replay's, once.
+#[test]
+fn a_repartitioning_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
+    let Some(t) = setup("fence-rep", 2, 1000, 59) else { return };
+    create_topics(&t.brokers, &[&format!("{}-repart", t.prefix)], 2, &[]);
+    let twin = "delivery = \"exactly_once\"\ninstance_id = \"twin\"\ninput_keyed_by_user = false";
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let unkeyed: Vec<_> = t.events.iter().map(|e| (None, e.line.as_bytes().to_vec(), None)).collect();
+    let half = unkeyed.len() / 2;
+    produce(&t.brokers, &format!("{}-events", t.prefix), &unkeyed[..half]);
+    let mut first = instance(a.path(), &t.brokers, &t.prefix, 50, twin);
+    t.credit_at_least(100);
+    let second = start_instance(b.path(), &t.brokers, &t.prefix, 50, twin);
+    produce(&t.brokers, &format!("{}-events", t.prefix), &unkeyed[half..]);
+    let status = first
+        .wait_exit(Duration::from_secs(120))
+        .unwrap_or_else(|| panic!("the fenced instance did not stop: {}", log(&[a.path()])));
+    let first_log = std::fs::read_to_string(a.path().join("serve.log")).unwrap();
+    assert_ne!(status.code(), Some(0), "{first_log}");
+    assert!(first_log.contains("failed for good") && first_log.contains("fence-rep-"), "{first_log}");
+    let mut second = wait_ready(second);
+    let (_, repeated) = t.all_credit(&b.path().join("serve.log"));
+    let ids = t.events.len();
+    let seen = repartitioned(&t, ids);
+    assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[b.path()]));
+    let logs = log(&[a.path(), b.path()]);
+    assert_eq!(seen.len(), ids, "{logs}");
+    assert_eq!(seen.values().filter(|n| **n > 1).count(), 0, "events repartitioned more than once: {logs}");
+    assert_eq!(repeated, 0, "{logs}");
+    t.assert_each_once(&b.path().join("serve.log"), &logs);
 }
