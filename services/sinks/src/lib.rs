@@ -54,6 +54,13 @@ pub struct OutputBatch {
 }
 
 impl OutputBatch {
+    /// An empty batch with room for `credit` credit rows and `paths` path
+    /// rows (a batch that grows row by row copies itself at every doubling,
+    /// each time into memory the kernel has to zero first).
+    pub fn with_capacity(credit: usize, paths: usize) -> Self {
+        OutputBatch { credit: Vec::with_capacity(credit), paths: Vec::with_capacity(paths), ..Default::default() }
+    }
+
     /// True when there is nothing to write.
     pub fn is_empty(&self) -> bool {
         self.credit.is_empty() && self.paths.is_empty() && self.dead_letters.is_empty() && self.erasures.is_empty()
