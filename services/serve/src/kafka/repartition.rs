@@ -55,7 +55,6 @@ use std::time::{Duration, Instant};
 use anyhow::{Context, Result};
 use apportion_contract::{RejectReason, Rejection};
 use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer};
-use rdkafka::error::KafkaError;
 use rdkafka::message::Message;
 use rdkafka::producer::{BaseProducer, Producer};
 use rdkafka::{Offset, TopicPartitionList};
@@ -187,12 +186,7 @@ fn stage_producer(k: &crate::config::KafkaConfig, txn: Option<&str>) -> Result<B
         .set("transactional.id", id)
         .create_with_context(DeliveryCounter::default())
         .context("creating the repartition stage's transactional producer")?;
-    p.init_transactions(CALL_TIMEOUT).map_err(|e: KafkaError| {
-        anyhow::anyhow!(
-            "initializing Kafka transactions for transactional.id {id} (repartition stage) failed: {e}; brokers without transactions (or without the rights for them) need kafka.delivery = \"at_least_once\""
-        )
-    })?;
-    tracing::info!(transactional_id = %id, "Kafka transactions initialized for the repartition stage (exactly-once delivery)");
+    super::txn::init_transactions(&p, id)?;
     Ok(p)
 }
 
@@ -206,9 +200,9 @@ impl Repartitioner {
     /// transactions are initialized here.
     pub(crate) fn new(cfg: &Config, metrics: Metrics, txn: Option<String>) -> Result<Self> {
         let k = cfg.kafka.as_ref().context("no [kafka] section")?;
-        let consumer: BaseConsumer = consumer_config(k, &format!("{}-repartition", k.group_id))
-            .create()
-            .context("creating the repartition consumer")?;
+        let group = format!("{}-repartition", k.group_id);
+        let consumer: BaseConsumer =
+            consumer_config(k, &group).create().context("creating the repartition consumer")?;
         let topics: Vec<&str> = k.input_topics.iter().map(String::as_str).collect();
         consumer.subscribe(&topics).context("subscribing to the input topics")?;
         let md = consumer
@@ -224,7 +218,7 @@ impl Repartitioner {
         let (key, _) = cfg.pseudonym_key();
         Ok(Repartitioner {
             consumer,
-            probe: super::offsets_probe(k, &format!("{}-repartition", k.group_id))?,
+            probe: super::offsets_probe(k, &group)?,
             producer: stage_producer(k, txn.as_deref())?,
             kafka: k.clone(),
             topic: k.repartition_topic.clone(),
@@ -342,11 +336,7 @@ impl Repartitioner {
     /// The error that stops the instance: the transactional producer was
     /// fenced (another instance with the same `transactional.id`).
     fn fatal(&self) -> Option<anyhow::Error> {
-        let (code, reason) = self.producer.client().fatal_error()?;
-        Some(anyhow::anyhow!(
-            "the repartition stage's transactional producer {} failed for good ({code:?}: {reason}): another instance started with the same transactional.id (kafka.instance_id), or this one was presumed dead; this instance writes nothing more and stops",
-            self.txn.as_deref().unwrap_or("-")
-        ))
+        super::txn::fenced(&self.producer, self.txn.as_deref().unwrap_or("-"))
     }
 
     /// Points the consumer back at the committed input offsets, so the

@@ -21,7 +21,7 @@ use std::thread::ThreadId;
 use std::time::Duration;
 
 use anyhow::{anyhow, Context, Result};
-use rdkafka::producer::{BaseProducer, Producer};
+use rdkafka::producer::{BaseProducer, Producer, ProducerContext};
 
 use super::changelog::{changelog_producer_config, MarkerDelivery};
 use crate::config::KafkaConfig;
@@ -54,12 +54,7 @@ impl Txn {
             .set("transactional.id", &id)
             .create_with_context(MarkerDelivery::default())
             .context("creating the transactional Kafka producer")?;
-        producer.init_transactions(CALL_TIMEOUT).map_err(|e| {
-            anyhow!(
-                "initializing Kafka transactions for transactional.id {id} failed: {e}; brokers without transactions (or without the rights for them) need kafka.delivery = \"at_least_once\""
-            )
-        })?;
-        tracing::info!(transactional_id = %id, "Kafka transactions initialized (exactly-once delivery)");
+        init_transactions(&producer, &id)?;
         Ok(Txn { inner: Mutex::new(Inner { producer, owner: None }), ended: Condvar::new(), id })
     }
 
@@ -173,10 +168,29 @@ impl Txn {
     }
 
     fn fatal(&self, inner: &Inner) -> Option<anyhow::Error> {
-        let (code, reason) = inner.producer.client().fatal_error()?;
-        Some(anyhow!(
-            "the Kafka transactional producer {} failed for good ({code:?}: {reason}): another instance started with the same transactional.id (kafka.instance_id), or this one was presumed dead; this instance writes nothing more and stops",
-            self.id
-        ))
+        fenced(&inner.producer, &self.id)
     }
+}
+
+/// Initializes the transactions of `producer`, whose `transactional.id` is
+/// `id`: fences an older producer with the same id and aborts its
+/// unfinished transaction.
+pub(crate) fn init_transactions<C: ProducerContext>(producer: &BaseProducer<C>, id: &str) -> Result<()> {
+    producer.init_transactions(CALL_TIMEOUT).map_err(|e| {
+        anyhow!(
+            "initializing Kafka transactions for transactional.id {id} failed: {e}; brokers without transactions (or without the rights for them) need kafka.delivery = \"at_least_once\""
+        )
+    })?;
+    tracing::info!(transactional_id = %id, "Kafka transactions initialized (exactly-once delivery)");
+    Ok(())
+}
+
+/// The error that stops the instance when the transactional producer
+/// `producer` (`transactional.id` `id`) is in a fatal state: fenced by a
+/// newer one with the same id.
+pub(crate) fn fenced<C: ProducerContext>(producer: &BaseProducer<C>, id: &str) -> Option<anyhow::Error> {
+    let (code, reason) = producer.client().fatal_error()?;
+    Some(anyhow!(
+        "the Kafka transactional producer {id} failed for good ({code:?}: {reason}): another instance started with the same transactional.id (kafka.instance_id), or this one was presumed dead; this instance writes nothing more and stops"
+    ))
 }
