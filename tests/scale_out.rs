@@ -76,6 +76,13 @@ impl Setup {
         produce(&self.brokers, &format!("{}-events", self.prefix), &messages(events));
     }
 
+    /// [`Setup::produce`] without keys: the producer's partitioner spreads
+    /// a user's events over every input partition (input not keyed by user).
+    fn produce_unkeyed(&self, events: &[GenEvent]) {
+        let unkeyed: Vec<_> = events.iter().map(|e| (None, e.line.as_bytes().to_vec(), None)).collect();
+        produce(&self.brokers, &format!("{}-events", self.prefix), &unkeyed);
+    }
+
     fn instance(&self, dir: &std::path::Path, batch: usize) -> Serve {
         instance(dir, &self.brokers, &self.prefix, batch, "")
     }
@@ -322,26 +329,37 @@ fn crash_loop(delivery: &str) {
 #[test]
 fn an_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
     let Some(t) = setup("fence", 2, 1000, 47) else { return };
-    let twin = "delivery = \"exactly_once\"\ninstance_id = \"twin\"";
+    let (mut second, a, b) = fenced_by_twin(&t, "fence-", "");
+    let (_, repeated) = t.all_credit(&b.path().join("serve.log"));
+    assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[b.path()]));
+    assert_eq!(repeated, 0, "{}", log(&[a.path(), b.path()]));
+    t.assert_each_once(&b.path().join("serve.log"), &log(&[a.path(), b.path()]));
+}
+
+/// Half the events, a first instance, its twin (the same `instance_id`)
+/// started, the other half: the first must stop non-zero saying why (its
+/// log names `name`, the start of the test's prefix, in the
+/// transactional.id). `extra` adds `[kafka]` lines. Returns the twin, ready,
+/// and the data dirs of the first and the twin.
+fn fenced_by_twin(t: &Setup, name: &str, extra: &str) -> (Serve, tempfile::TempDir, tempfile::TempDir) {
+    let keyed = !extra.contains("input_keyed_by_user = false");
+    let twin = format!("delivery = \"exactly_once\"\ninstance_id = \"twin\"\n{extra}");
     let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
     let half = t.events.len() / 2;
-    t.produce(&t.events[..half]);
-    let mut first = instance(a.path(), &t.brokers, &t.prefix, 50, twin);
+    let produce = |events: &[GenEvent]| if keyed { t.produce(events) } else { t.produce_unkeyed(events) };
+    produce(&t.events[..half]);
+    let mut first = instance(a.path(), &t.brokers, &t.prefix, 50, &twin);
     t.credit_at_least(100);
-    let second = start_instance(b.path(), &t.brokers, &t.prefix, 50, twin);
+    let second = start_instance(b.path(), &t.brokers, &t.prefix, 50, &twin);
     // The first goes on until its next transaction, which fails.
-    t.produce(&t.events[half..]);
+    produce(&t.events[half..]);
     let status = first
         .wait_exit(Duration::from_secs(120))
         .unwrap_or_else(|| panic!("the fenced instance did not stop: {}", log(&[a.path()])));
     let first_log = std::fs::read_to_string(a.path().join("serve.log")).unwrap();
     assert_ne!(status.code(), Some(0), "{first_log}");
-    assert!(first_log.contains("failed for good") && first_log.contains("fence-"), "{first_log}");
-    let mut second = wait_ready(second);
-    let (_, repeated) = t.all_credit(&b.path().join("serve.log"));
-    assert_eq!(second.signal("TERM").code(), Some(0), "{}", log(&[b.path()]));
-    assert_eq!(repeated, 0, "{}", log(&[a.path(), b.path()]));
-    t.assert_each_once(&b.path().join("serve.log"), &log(&[a.path(), b.path()]));
+    assert!(first_log.contains("failed for good") && first_log.contains(name), "{first_log}");
+    (wait_ready(second), a, b)
 }
 
 /// Input not keyed by user goes through the repartition stage; the
@@ -368,10 +386,7 @@ fn the_repartition_stage_through_kills_sends_each_event_at_least_once() {
 fn repartition_kills(delivery: &str) {
     let Some(t) = setup(&format!("rep-{}", &delivery[..2]), 4, 1500, 53) else { return };
     create_topics(&t.brokers, &[&format!("{}-repart", t.prefix)], 4, &[]);
-    // Keyless: the producer's partitioner spreads a user's events over
-    // every input partition.
-    let unkeyed: Vec<_> = t.events.iter().map(|e| (None, e.line.as_bytes().to_vec(), None)).collect();
-    produce(&t.brokers, &format!("{}-events", t.prefix), &unkeyed);
+    t.produce_unkeyed(&t.events);
     let mode = format!("delivery = \"{delivery}\"\ninput_keyed_by_user = false");
     let dir = tempfile::tempdir().unwrap();
     let start = || instance(dir.path(), &t.brokers, &t.prefix, 50, &mode);
@@ -430,22 +445,7 @@ fn repartitioned(t: &Setup, n: usize) -> std::collections::HashMap<String, usize
 fn a_repartitioning_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
     let Some(t) = setup("fence-rep", 2, 1000, 59) else { return };
     create_topics(&t.brokers, &[&format!("{}-repart", t.prefix)], 2, &[]);
-    let twin = "delivery = \"exactly_once\"\ninstance_id = \"twin\"\ninput_keyed_by_user = false";
-    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
-    let unkeyed: Vec<_> = t.events.iter().map(|e| (None, e.line.as_bytes().to_vec(), None)).collect();
-    let half = unkeyed.len() / 2;
-    produce(&t.brokers, &format!("{}-events", t.prefix), &unkeyed[..half]);
-    let mut first = instance(a.path(), &t.brokers, &t.prefix, 50, twin);
-    t.credit_at_least(100);
-    let second = start_instance(b.path(), &t.brokers, &t.prefix, 50, twin);
-    produce(&t.brokers, &format!("{}-events", t.prefix), &unkeyed[half..]);
-    let status = first
-        .wait_exit(Duration::from_secs(120))
-        .unwrap_or_else(|| panic!("the fenced instance did not stop: {}", log(&[a.path()])));
-    let first_log = std::fs::read_to_string(a.path().join("serve.log")).unwrap();
-    assert_ne!(status.code(), Some(0), "{first_log}");
-    assert!(first_log.contains("failed for good") && first_log.contains("fence-rep-"), "{first_log}");
-    let mut second = wait_ready(second);
+    let (mut second, a, b) = fenced_by_twin(&t, "fence-rep-", "input_keyed_by_user = false");
     let (_, repeated) = t.all_credit(&b.path().join("serve.log"));
     let ids = t.events.len();
     let seen = repartitioned(&t, ids);
