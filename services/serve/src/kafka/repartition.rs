@@ -334,9 +334,10 @@ impl Repartitioner {
     }
 
     /// The error that stops the instance: the transactional producer was
-    /// fenced (another instance with the same `transactional.id`).
+    /// fenced (another instance with the same `transactional.id`). Without
+    /// transactions nothing is fatal: a failed producer is replaced.
     fn fatal(&self) -> Option<anyhow::Error> {
-        super::txn::fenced(&self.producer, self.txn.as_deref().unwrap_or("-"))
+        super::txn::fenced(&self.producer, self.txn.as_deref()?)
     }
 
     /// Points the consumer back at the committed input offsets, so the
