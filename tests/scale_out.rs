@@ -456,3 +456,71 @@ fn a_repartitioning_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
     assert_eq!(repeated, 0, "{logs}");
     t.assert_each_once(&b.path().join("serve.log"), &logs);
 }
+
+/// Two instances crediting with the data-driven models, the input's four
+/// partitions split between them: through the statistics topic both fit
+/// on every partition's paths (docs/contract.md, "Fitting across
+/// instances"), so both show the same model versions, and the paths they
+/// fitted on are all the group's closed paths: as many as the paths topic
+/// holds (read_committed), conversions as many as its converted rows. Each
+/// instance on its own would count only its partitions' paths (the unit
+/// test `instances_sharing_statistics_fit_replay_s_snapshot` shows the
+/// versions then differ from one fit over all paths).
+#[test]
+fn two_instances_fit_the_data_driven_models_on_the_same_statistics() {
+    let Some(t) = setup("pstats", 4, 300, 41) else { return };
+    let start = |dir: &std::path::Path| {
+        let admin = free_port();
+        let cfg = kafka_config(dir, &t.brokers, admin, &t.prefix, true, "refit_interval = \"3s\"");
+        let text = std::fs::read_to_string(&cfg).unwrap().replace(
+            &format!("models = [{}]", MODELS.split(',').map(|m| format!("\"{m}\"")).collect::<Vec<_>>().join(", ")),
+            r#"models = ["linear", "shapley", "markov"]"#,
+        );
+        assert!(text.contains("shapley"), "{text}");
+        std::fs::write(&cfg, format!("{text}[kafka.properties]\n\"session.timeout.ms\" = \"6000\"\n")).unwrap();
+        wait_ready(Serve::start(&cfg, admin, &dir.join("serve.log")))
+    };
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let mut first = start(a.path());
+    let mut second = start(b.path());
+    t.produce(&t.events);
+    // Until both show the same fit, unchanged over more than a round.
+    let fitted = |s: &Serve| -> Value {
+        let (_, body) = s.get("/v1/models").expect("model endpoint");
+        let v: Value = serde_json::from_str(&body).unwrap();
+        let versions: Vec<Value> = v["models"].as_array().unwrap().iter().map(|m| m["model_version"].clone()).collect();
+        serde_json::json!({ "paths": v["paths"], "conversions": v["conversions"], "versions": versions })
+    };
+    let deadline = std::time::Instant::now() + Duration::from_secs(120);
+    let mut last: Option<Value> = None;
+    let settled = loop {
+        let (x, y) = (fitted(&first), fitted(&second));
+        if x == y && x["paths"].as_u64() > Some(0) && last.as_ref() == Some(&x) {
+            break x;
+        }
+        last = (x == y).then_some(x.clone());
+        assert!(
+            std::time::Instant::now() < deadline,
+            "the instances fitted {x} and {y}: {}",
+            log(&[a.path(), b.path()])
+        );
+        std::thread::sleep(Duration::from_secs(4));
+    };
+    let paths = consume_until(&t.brokers, &format!("{}-paths", t.prefix), Duration::from_secs(10), |_| false);
+    let converted = paths.iter().filter(|p| p["converted"] == true).count();
+    assert_eq!(settled["paths"].as_u64(), Some(paths.len() as u64), "{settled}");
+    assert_eq!(settled["conversions"].as_u64(), Some(converted as u64), "{settled}");
+    for s in [&first, &second] {
+        let (_, m) = s.get("/metrics").unwrap();
+        assert!(m.contains("apportion_model_refit_missing_partitions 0"), "every partition's value in time");
+    }
+    for d in [a.path(), b.path()] {
+        assert!(log(&[d]).contains("partition assigned"), "both instances own partitions: {}", log(&[d]));
+    }
+    assert_eq!(first.signal("TERM").code(), Some(0));
+    assert_eq!(second.signal("TERM").code(), Some(0));
+    // The statistics topic as the service created it: compacted, one partition.
+    let (partitions, policy) = topic_settings(&t.brokers, &format!("{}-group-path-stats", t.prefix));
+    assert_eq!(partitions, 1);
+    assert_eq!(policy.as_deref(), Some("compact"));
+}

@@ -215,6 +215,11 @@ pub struct KafkaConfig {
     /// Replication factor of the changelog topics the service creates; -1:
     /// the broker's default.
     pub changelog_replication_factor: i32,
+    /// With a data-driven model: share path statistics through the
+    /// compacted topic `<group_id>-path-stats`, so that every instance of
+    /// the group fits on the statistics of every input partition (refit
+    /// rounds, docs/contract.md "Fitting across instances").
+    pub shared_path_stats: bool,
     /// How a batch's output, state and input offsets reach Kafka:
     /// `exactly_once` (one Kafka transaction per batch; needs the
     /// changelog) or `at_least_once` (for brokers without transactions).
@@ -323,6 +328,11 @@ impl KafkaConfig {
         format!("{}-repartition", self.transactional_id(store_instance))
     }
 
+    /// The topic the instances of the group share path statistics through.
+    pub fn path_stats_topic(&self) -> String {
+        format!("{}-path-stats", self.group_id)
+    }
+
     /// The changelog topic of input (or repartition) topic `topic`.
     pub fn changelog_topic(&self, topic: &str) -> String {
         format!("{}-{topic}-changelog", self.group_id)
@@ -361,6 +371,7 @@ impl Default for KafkaConfig {
             repartition_topic: "apportion-repartition".into(),
             changelog: true,
             changelog_replication_factor: -1,
+            shared_path_stats: true,
             delivery: Delivery::ExactlyOnce,
             instance_id: String::new(),
             properties: Default::default(),

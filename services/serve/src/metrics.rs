@@ -86,6 +86,8 @@ pub struct Metrics {
     pub refit_duration: GaugeVec,
     /// apportion_model_refit_failures_total{model}.
     pub refit_failures: IntCounterVec,
+    /// apportion_model_refit_missing_partitions.
+    pub refit_missing: IntGauge,
     /// apportion_sink_rows_total{sink,kind}.
     pub sink_rows: IntCounterVec,
     /// apportion_sink_errors_total{sink}.
@@ -262,6 +264,10 @@ impl Metrics {
                 &["model"],
             ),
             refit_failures: counter(r, "apportion_model_refit_failures_total", "Failed refits.", &["model"]),
+            refit_missing: gauge(
+                "apportion_model_refit_missing_partitions",
+                "Input partitions without shared statistics for the last refit round (fitted on this instance's or older values).",
+            ),
             sink_rows: counter(r, "apportion_sink_rows_total", "Rows written, by sink and kind.", &["sink", "kind"]),
             sink_errors: counter(r, "apportion_sink_errors_total", "Sink and producer errors.", &["sink"]),
             sink_retries: counter(r, "apportion_sink_retries_total", "Batches retried at a sink.", &["sink"]),

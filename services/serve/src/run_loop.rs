@@ -425,6 +425,11 @@ pub fn run_loop(
                     } else if !finish(&mut pipeline, &mut source, f)? {
                         return Ok(());
                     }
+                } else if pipeline.maybe_refit()? {
+                    // Idle: the next commit adopts the new snapshot; the
+                    // model endpoint shows it from now (refit rounds go on
+                    // without input, so instances stay in step).
+                    publish_models(&pipeline, &shared);
                 }
                 if finished {
                     break;

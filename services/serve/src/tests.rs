@@ -897,23 +897,12 @@ fn stored_statistics_are_deleted_when_no_data_driven_model_is_configured() {
     assert_eq!(store.partition("events/0", 0).unwrap().stats(1).unwrap().paths(), 0);
 }
 
-/// Serve keeps statistics per partition and merges them at a refit; replay
-/// counts every path in one pass in time order. With more channels than
-/// `max_channels`, arriving in different orders on two partitions, both keep
-/// the same channels (the smallest names) and fit the same snapshot, and
-/// the overflowed touches are counted (docs/contract.md, "Models", Channel
-/// cap; derived by hand: 8 channels, cap 3, so 5 go to the bucket).
-#[test]
-fn capped_statistics_of_two_partitions_equal_replay() {
-    let cfg = Config {
-        models: vec![ModelId::Shapley, ModelId::Markov],
-        max_channels: 3,
-        refit_interval: Period(0),
-        ..config()
-    };
+/// 16 users over two partitions, 8 channels: partition 0 sees the channels
+/// from the largest name down, partition 1 from the smallest up, so their
+/// first arrivals differ and the smallest names do not. Every third user
+/// does not convert. Returns the events per partition and all of them.
+fn two_partitions_of_paths() -> ([Vec<Vec<u8>>; 2], Vec<Vec<u8>>) {
     let names = ["h8", "g7", "f6", "e5", "d4", "c3", "b2", "a1"];
-    // Partition 0 sees the channels from the largest name down, partition 1
-    // from the smallest up: first arrivals differ, the smallest names do not.
     let mut per_part: [Vec<Vec<u8>>; 2] = [Vec::new(), Vec::new()];
     let mut all = Vec::new();
     for u in 0..16usize {
@@ -931,6 +920,24 @@ fn capped_statistics_of_two_partitions_equal_replay() {
         all.extend(events.iter().cloned());
         per_part[p].extend(events);
     }
+    (per_part, all)
+}
+
+/// Serve keeps statistics per partition and merges them at a refit; replay
+/// counts every path in one pass in time order. With more channels than
+/// `max_channels`, arriving in different orders on two partitions, both keep
+/// the same channels (the smallest names) and fit the same snapshot, and
+/// the overflowed touches are counted (docs/contract.md, "Models", Channel
+/// cap; derived by hand: 8 channels, cap 3, so 5 go to the bucket).
+#[test]
+fn capped_statistics_of_two_partitions_equal_replay() {
+    let cfg = Config {
+        models: vec![ModelId::Shapley, ModelId::Markov],
+        max_channels: 3,
+        refit_interval: Period(0),
+        ..config()
+    };
+    let (per_part, all) = two_partitions_of_paths();
     let metrics = Metrics::new(prometheus::Registry::new());
     let mut p =
         Pipeline::new(cfg.clone(), Pseudonymizer::new(KEY), Store::temporary().unwrap(), metrics.clone()).unwrap();
@@ -960,6 +967,62 @@ fn capped_statistics_of_two_partitions_equal_replay() {
     assert!(metrics.stats_overflow_touches.get() >= overflow_paths);
     p.commit().unwrap();
     assert_eq!(metrics.stats_channels.get(), 4, "3 kept channels and the bucket");
+}
+
+/// Two instances of a group, one partition each, sharing their path
+/// statistics in refit rounds (docs/contract.md, "Fitting across
+/// instances"): both fit the same snapshot, and it is the one replay fits on
+/// all the events (the reference: one fit over every path). Without
+/// sharing, each fits its own partition's paths: not replay's versions.
+#[test]
+fn instances_sharing_statistics_fit_replay_s_snapshot() {
+    let cfg = Config {
+        models: vec![ModelId::Shapley, ModelId::Markov],
+        max_channels: 3,
+        refit_interval: Period(60 * SEC),
+        ..config()
+    };
+    let (per_part, all) = two_partitions_of_paths();
+    let ids = [PartId::new("events", 0), PartId::new("events", 1)];
+    let exchange = crate::pipeline::shared_stats::MemoryExchange::new(ids.to_vec());
+    let instance = |i: usize, shared: bool| {
+        let mut p = pipeline(cfg.clone(), Store::temporary().unwrap());
+        if shared {
+            p.set_stats_exchange(Box::new(exchange.clone()));
+        }
+        let mut out = OutputBatch::default();
+        p.open_partition(&ids[i], Payload::Event(Format::Json)).unwrap();
+        p.process(&ids[i], &msgs(1, per_part[i].clone(), Instant::now()), &mut out).unwrap();
+        p.drain(&mut out).unwrap();
+        p.commit().unwrap();
+        p
+    };
+    let versions = |p: &Pipeline| -> std::collections::BTreeSet<String> {
+        p.models().iter().filter_map(|m| m.version().map(str::to_string)).collect()
+    };
+    let (mut a, mut b) = (instance(0, true), instance(1, true));
+    // One round (wall-clock ms 600 000 to 659 999 is round 10 of 60 s); a
+    // publishes partition 0 and waits for partition 1.
+    let now = Instant::now();
+    assert!(!a.refit_in_round(600_000, now).unwrap(), "waits for partition 1");
+    assert!(b.refit_in_round(600_100, now).unwrap());
+    assert!(a.refit_in_round(600_200, now).unwrap());
+    let text: Vec<String> = all.iter().map(|l| String::from_utf8(l.clone()).unwrap()).collect();
+    let refs: Vec<&str> = text.iter().map(String::as_str).collect();
+    let want = replay_lines(&refs, cfg.rules(), &Pseudonymizer::new(KEY), &cfg.model_plan());
+    let replay_versions: std::collections::BTreeSet<String> =
+        want.rows.iter().filter_map(|r| r.model_version.clone()).collect();
+    assert_eq!(replay_versions.len(), 2);
+    assert_eq!(versions(&a), replay_versions);
+    assert_eq!(versions(&b), replay_versions);
+    assert_eq!(a.models_json()["paths"], 16);
+    // Each alone.
+    let (mut a, mut b) = (instance(0, false), instance(1, false));
+    assert!(a.refit_now().unwrap() && b.refit_now().unwrap());
+    assert_ne!(versions(&a), replay_versions);
+    assert_ne!(versions(&b), replay_versions);
+    assert_eq!(a.models_json()["paths"], 8);
+    assert_eq!(b.models_json()["paths"], 8);
 }
 
 #[test]

@@ -12,13 +12,10 @@ use std::time::{Duration, Instant};
 
 use anyhow::{bail, Context, Result};
 use apportion_store::{ChangeSet, Store, COMMIT_MARKER};
-use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
-use rdkafka::client::DefaultClientContext;
 use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::error::KafkaError;
 use rdkafka::message::Message;
 use rdkafka::producer::{BaseProducer, BaseRecord, DeliveryResult, Producer, ProducerContext};
-use rdkafka::types::RDKafkaErrorCode;
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
 use super::base_config;
@@ -128,22 +125,9 @@ impl KafkaChangelog {
         };
         let want = partitions(source)?.with_context(|| format!("input topic {source} has no partitions yet"))?;
         if partitions(&name)?.is_none() {
-            let admin: AdminClient<DefaultClientContext> =
-                base_config(&self.kafka).create().context("creating the Kafka admin client")?;
-            let topic = NewTopic::new(&name, want, TopicReplication::Fixed(self.kafka.changelog_replication_factor))
-                .set("cleanup.policy", "compact");
-            let rt = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
-            let opts = AdminOptions::new().operation_timeout(Some(Duration::from_secs(30)));
-            let results = rt.block_on(admin.create_topics([&topic], &opts)).context("creating the changelog topic")?;
-            for r in results {
-                match r {
-                    Ok(_) => tracing::info!(topic = %name, partitions = want, "changelog topic created"),
-                    Err((_, RDKafkaErrorCode::TopicAlreadyExists)) => {}
-                    Err((_, code)) => bail!(
-                        "cannot create the changelog topic {name}: {code}; create it with cleanup.policy=compact and {want} partitions, or set kafka.changelog = false"
-                    ),
-                }
-            }
+            let hint =
+                format!("create it with cleanup.policy=compact and {want} partitions, or set kafka.changelog = false");
+            super::create_compacted_topic(&self.kafka, &name, want, "changelog topic", &hint)?;
         }
         // Metadata of a new topic can take a moment to show everywhere.
         let deadline = Instant::now() + Duration::from_secs(30);

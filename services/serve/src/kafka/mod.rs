@@ -20,10 +20,13 @@
 //!   records in one Kafka transaction.
 //! - [`encode`]: JSON or protobuf payloads of the output topics.
 //! - [`erase`]: `POST /v1/erase` in Kafka mode, an erase to every input partition.
+//! - [`path_stats`]: path statistics shared by the instances of a group
+//!   (`<group_id>-path-stats`), so that all fit the same data-driven models.
 
 pub mod changelog;
 pub mod encode;
 pub mod erase;
+pub mod path_stats;
 pub mod repartition;
 pub mod sink;
 pub mod source;
@@ -95,4 +98,34 @@ pub fn offsets_probe(k: &KafkaConfig, group: &str) -> Result<BaseConsumer> {
         .set("isolation.level", "read_committed")
         .create()
         .context("creating the Kafka offsets client")
+}
+
+/// Creates the compacted topic `name` (`partitions` partitions,
+/// `kafka.changelog_replication_factor` replicas) unless it exists; `what`
+/// names it in messages, `hint` says what to do when it cannot be created.
+pub(crate) fn create_compacted_topic(
+    k: &KafkaConfig,
+    name: &str,
+    partitions: i32,
+    what: &str,
+    hint: &str,
+) -> Result<()> {
+    use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
+    use rdkafka::client::DefaultClientContext;
+    use rdkafka::types::RDKafkaErrorCode;
+    let admin: AdminClient<DefaultClientContext> =
+        base_config(k).create().context("creating the Kafka admin client")?;
+    let topic = NewTopic::new(name, partitions, TopicReplication::Fixed(k.changelog_replication_factor))
+        .set("cleanup.policy", "compact");
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
+    let opts = AdminOptions::new().operation_timeout(Some(std::time::Duration::from_secs(30)));
+    let results = rt.block_on(admin.create_topics([&topic], &opts)).with_context(|| format!("creating the {what}"))?;
+    for r in results {
+        match r {
+            Ok(_) => tracing::info!(topic = %name, partitions, "{what} created"),
+            Err((_, RDKafkaErrorCode::TopicAlreadyExists)) => {}
+            Err((_, code)) => anyhow::bail!("cannot create the {what} {name}: {code}; {hint}"),
+        }
+    }
+    Ok(())
 }

@@ -19,6 +19,7 @@ pub mod decode;
 pub mod emit;
 pub mod partition;
 pub mod policy;
+pub mod shared_stats;
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -65,6 +66,10 @@ pub struct Pipeline {
     /// Where commits are published before the store writes them, and the
     /// gate that counts the commits being written.
     changelog: Option<(Arc<dyn Changelog>, CommitGate)>,
+    /// With a data-driven model and instances that share their path
+    /// statistics: the refit rounds (they replace `refit_interval`'s own
+    /// schedule).
+    rounds: Option<shared_stats::Rounds>,
 }
 
 /// Every open partition's commit, collected by [`Pipeline::prepare_commit`]
@@ -135,7 +140,20 @@ impl Pipeline {
             prepared: false,
             closing: Vec::new(),
             changelog: None,
+            rounds: None,
         })
+    }
+
+    /// Fits the data-driven models on the statistics of every input
+    /// partition of the group, shared through `exchange` in refit rounds
+    /// ([`shared_stats`]), instead of on this instance's partitions alone.
+    /// Without a data-driven model there is nothing to share: ignored.
+    pub fn set_stats_exchange(&mut self, exchange: Box<dyn shared_stats::StatsExchange>) {
+        if self.cfg.model_plan().data_driven() {
+            let interval = self.cfg.refit_interval.ms();
+            self.rounds =
+                Some(shared_stats::Rounds::new(exchange, interval, shared_stats::Rounds::default_wait(interval)));
+        }
     }
 
     /// Publishes every commit to `changelog` before the store writes it;
@@ -517,10 +535,31 @@ impl Pipeline {
     /// the new snapshot at its next commit. Returns true when a model
     /// version changed.
     pub fn maybe_refit(&mut self) -> Result<bool> {
+        if self.rounds.is_some() {
+            return self.refit_in_round(now_ms(), Instant::now());
+        }
         if !self.refit.due() {
             return Ok(false);
         }
         self.refit_now()
+    }
+
+    /// With shared statistics: one step of the refit rounds at wall-clock
+    /// time `now_ms` ([`shared_stats::Rounds::step`]); refits when the
+    /// round's statistics are in. Returns true when a model version changed.
+    pub fn refit_in_round(&mut self, now_ms: i64, now: Instant) -> Result<bool> {
+        let Some(rounds) = self.rounds.as_mut() else { return Ok(false) };
+        let open: Vec<(&PartId, &apportion_engine::datadriven::PathStats)> =
+            self.parts.iter().filter(|(_, p)| p.keep_stats).map(|(id, p)| (id, &p.stats)).collect();
+        let Some((all, fit)) = rounds.step(now_ms, now, &open, self.cfg.model_plan().empty_stats())? else {
+            return Ok(false);
+        };
+        self.metrics.refit_missing.set(fit.missing as i64);
+        if fit.missing > 0 {
+            tracing::warn!(round = fit.round, missing = fit.missing, "refit round: some input partitions published no statistics in time; fitted with this instance's or older values (other instances may fit other statistics until the next round)");
+        }
+        let snapshot = self.refit.refit(&self.store, &all)?;
+        self.adopt(snapshot)
     }
 
     /// Refits now (see [`Pipeline::maybe_refit`]).
@@ -529,7 +568,13 @@ impl Pipeline {
         for p in self.parts.values() {
             all.try_merge(&p.stats).expect("partition statistics share the configured markov_order");
         }
-        match self.refit.refit(&self.store, &all)? {
+        let snapshot = self.refit.refit(&self.store, &all)?;
+        self.adopt(snapshot)
+    }
+
+    /// Every partition switches to a new snapshot at its next commit.
+    fn adopt(&mut self, snapshot: Option<Arc<crate::refit::Snapshot>>) -> Result<bool> {
+        match snapshot {
             Some(s) => {
                 for p in self.parts.values_mut() {
                     p.adopt = Some(s.clone());
