@@ -484,32 +484,33 @@ fn two_instances_fit_the_data_driven_models_on_the_same_statistics() {
     let mut first = start(a.path());
     let mut second = start(b.path());
     t.produce(&t.events);
-    // Until both show the same fit, unchanged over more than a round.
+    // Until both show the same fit, on every closed path of the group: as
+    // many as the paths topic holds when they do.
     let fitted = |s: &Serve| -> Value {
         let (_, body) = s.get("/v1/models").expect("model endpoint");
         let v: Value = serde_json::from_str(&body).unwrap();
         let versions: Vec<Value> = v["models"].as_array().unwrap().iter().map(|m| m["model_version"].clone()).collect();
         serde_json::json!({ "paths": v["paths"], "conversions": v["conversions"], "versions": versions })
     };
-    let deadline = std::time::Instant::now() + Duration::from_secs(120);
-    let mut last: Option<Value> = None;
-    let settled = loop {
+    let deadline = std::time::Instant::now() + Duration::from_secs(150);
+    loop {
+        let paths = consume_until(&t.brokers, &format!("{}-paths", t.prefix), Duration::from_secs(3), |_| false);
+        let converted = paths.iter().filter(|p| p["converted"] == true).count();
+        let distinct: std::collections::HashSet<&str> = paths.iter().map(|p| p["path_id"].as_str().unwrap()).collect();
+        assert_eq!(distinct.len(), paths.len(), "each path once (read_committed)");
         let (x, y) = (fitted(&first), fitted(&second));
-        if x == y && x["paths"].as_u64() > Some(0) && last.as_ref() == Some(&x) {
-            break x;
+        let want = (Some(paths.len() as u64), Some(converted as u64));
+        if x == y && (x["paths"].as_u64(), x["conversions"].as_u64()) == want && !paths.is_empty() {
+            break;
         }
-        last = (x == y).then_some(x.clone());
         assert!(
             std::time::Instant::now() < deadline,
-            "the instances fitted {x} and {y}: {}",
+            "the instances fitted {x} and {y}; the paths topic holds {} paths, {converted} converted: {}",
+            paths.len(),
             log(&[a.path(), b.path()])
         );
-        std::thread::sleep(Duration::from_secs(4));
-    };
-    let paths = consume_until(&t.brokers, &format!("{}-paths", t.prefix), Duration::from_secs(10), |_| false);
-    let converted = paths.iter().filter(|p| p["converted"] == true).count();
-    assert_eq!(settled["paths"].as_u64(), Some(paths.len() as u64), "{settled}");
-    assert_eq!(settled["conversions"].as_u64(), Some(converted as u64), "{settled}");
+        std::thread::sleep(Duration::from_secs(1));
+    }
     for s in [&first, &second] {
         let (_, m) = s.get("/metrics").unwrap();
         assert!(m.contains("apportion_model_refit_missing_partitions 0"), "every partition's value in time");
