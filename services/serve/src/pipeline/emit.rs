@@ -10,7 +10,7 @@ use apportion_engine::replay::effect_rows;
 use apportion_engine::{Effect, Model, Outcome};
 use apportion_sinks::OutputBatch;
 
-use crate::metrics::Metrics;
+use crate::metrics::{HotSeries, Metrics};
 use crate::source::PartId;
 
 /// Appends the rows of `effects` to `out`, adds closed paths to `stats`
@@ -23,6 +23,7 @@ pub fn emit(
     mut stats: Option<&mut PathStats>,
     arrivals: &mut HashMap<String, Instant>,
     metrics: &Metrics,
+    hot: &HotSeries,
     out: &mut OutputBatch,
 ) {
     for e in effects {
@@ -37,18 +38,17 @@ pub fn emit(
                             metrics.stats_overflow_paths.inc();
                         }
                     }
-                    metrics.paths_closed.with_label_values(&[if converted { "true" } else { "false" }]).inc();
+                    hot.paths_closed[converted as usize].inc();
                 }
                 match outcome {
                     Outcome::Converted { conversion, path } => {
-                        metrics.journeys_closed.with_label_values(&["converted"]).inc();
-                        let attributed = if path.is_empty() { "false" } else { "true" };
-                        metrics.conversions.with_label_values(&[attributed]).inc();
+                        hot.journeys_closed[0].inc();
+                        hot.conversions[!path.is_empty() as usize].inc();
                         if let Some(t) = arrivals.remove(&conversion.event_id) {
                             metrics.latency.observe(t.elapsed().as_secs_f64());
                         }
                     }
-                    Outcome::Expired { .. } => metrics.journeys_closed.with_label_values(&["expired"]).inc(),
+                    Outcome::Expired { .. } => hot.journeys_closed[1].inc(),
                 }
             }
             Effect::TouchesDropped { cap, age, .. } => {
@@ -56,7 +56,7 @@ pub fn emit(
                 metrics.touches_dropped.with_label_values(&["max_age"]).inc_by(*age as u64);
             }
             Effect::Erased { conversion_ids, .. } => {
-                metrics.journeys_closed.with_label_values(&["erased"]).inc();
+                hot.journeys_closed[2].inc();
                 for id in conversion_ids {
                     arrivals.remove(id);
                 }
@@ -64,7 +64,7 @@ pub fn emit(
         }
         let (rows, path) = effect_rows(e, models);
         for r in &rows {
-            metrics.credit_rows.with_label_values(&[r.model.as_str()]).inc();
+            hot.credit_rows(r.model).inc();
         }
         out.credit.extend(rows);
         out.paths.extend(path);

@@ -57,6 +57,7 @@ pub struct Pipeline {
     parts: BTreeMap<PartId, PartState>,
     refit: Refit,
     metrics: Metrics,
+    hot: crate::metrics::HotSeries,
     state_scan: crate::state_scan::StateScan,
     /// A commit is prepared and not yet applied (its output is being
     /// written): partitions revoked meanwhile close once it is applied.
@@ -136,6 +137,7 @@ impl Pipeline {
             store,
             parts: BTreeMap::new(),
             refit,
+            hot: crate::metrics::HotSeries::new(&metrics),
             metrics,
             prepared: false,
             closing: Vec::new(),
@@ -399,7 +401,11 @@ impl Pipeline {
                 outcome = "late_applied";
             }
         }
-        self.metrics.events_consumed.with_label_values(&[kind, outcome]).inc();
+        if outcome == "accepted" {
+            self.hot.accepted(ev.kind).inc();
+        } else {
+            self.metrics.events_consumed.with_label_values(&[kind, outcome]).inc();
+        }
         if ev.kind == EventKind::Conversion {
             part.arrivals.insert(ev.event_id.clone(), m.arrived);
         }
@@ -518,7 +524,7 @@ impl Pipeline {
         let part = self.parts.get_mut(id).expect("open partition");
         let models = part.snapshot.models();
         let stats = part.keep_stats.then_some(&mut part.stats);
-        emit::emit(effects, models, stats, &mut part.arrivals, &self.metrics, out);
+        emit::emit(effects, models, stats, &mut part.arrivals, &self.metrics, &self.hot, out);
     }
 
     /// Makes every decision recorded in this batch durable. Call before the
