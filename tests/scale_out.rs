@@ -162,6 +162,12 @@ fn a_partition_moved_to_another_instance_keeps_its_journeys() {
 
 /// The partition count and `cleanup.policy` of a topic.
 fn topic_settings(brokers: &str, topic: &str) -> (usize, Option<String>) {
+    let (partitions, mut v) = topic_configs(brokers, topic, &["cleanup.policy"]);
+    (partitions, v.remove(0))
+}
+
+/// The partition count of a topic and the values of its configs `names`.
+fn topic_configs(brokers: &str, topic: &str, names: &[&str]) -> (usize, Vec<Option<String>>) {
     use rdkafka::admin::{AdminClient, AdminOptions, ResourceSpecifier};
     use rdkafka::client::DefaultClientContext;
     use rdkafka::consumer::{BaseConsumer, Consumer};
@@ -172,9 +178,9 @@ fn topic_settings(brokers: &str, topic: &str) -> (usize, Option<String>) {
     let admin: AdminClient<DefaultClientContext> =
         ClientConfig::new().set("bootstrap.servers", brokers).create().unwrap();
     let described = futures_block_on(admin.describe_configs([&ResourceSpecifier::Topic(topic)], &AdminOptions::new()));
-    let policy =
-        described.unwrap().into_iter().next().unwrap().ok().and_then(|r| r.get("cleanup.policy")?.value.clone());
-    (partitions, policy)
+    let r = described.unwrap().into_iter().next().unwrap().ok();
+    let values = names.iter().map(|n| r.as_ref().and_then(|r| r.get(n)?.value.clone())).collect();
+    (partitions, values)
 }
 
 /// Instance A is killed mid-stream (kill -9); instance B, on another data
@@ -520,8 +526,12 @@ fn two_instances_fit_the_data_driven_models_on_the_same_statistics() {
     }
     assert_eq!(first.signal("TERM").code(), Some(0));
     assert_eq!(second.signal("TERM").code(), Some(0));
-    // The statistics topic as the service created it: compacted, one partition.
-    let (partitions, policy) = topic_settings(&t.brokers, &format!("{}-group-path-stats", t.prefix));
+    // The statistics topic as the service created it (docs/contract.md,
+    // "Fitting across instances"): one partition, compacted, values up to
+    // 16 MiB, segments rolled hourly so compaction can keep it small.
+    let names = ["cleanup.policy", "max.message.bytes", "segment.ms"];
+    let (partitions, values) = topic_configs(&t.brokers, &format!("{}-group-path-stats", t.prefix), &names);
     assert_eq!(partitions, 1);
-    assert_eq!(policy.as_deref(), Some("compact"));
+    let values: Vec<Option<&str>> = values.iter().map(|v| v.as_deref()).collect();
+    assert_eq!(values, [Some("compact"), Some("16777216"), Some("3600000")]);
 }

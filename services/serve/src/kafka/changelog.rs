@@ -127,7 +127,7 @@ impl KafkaChangelog {
         if partitions(&name)?.is_none() {
             let hint =
                 format!("create it with cleanup.policy=compact and {want} partitions, or set kafka.changelog = false");
-            super::create_compacted_topic(&self.kafka, &name, want, "changelog topic", &hint)?;
+            super::create_compacted_topic(&self.kafka, &name, want, &[], "changelog topic", &hint)?;
         }
         // Metadata of a new topic can take a moment to show everywhere.
         let deadline = Instant::now() + Duration::from_secs(30);

@@ -102,11 +102,13 @@ pub fn offsets_probe(k: &KafkaConfig, group: &str) -> Result<BaseConsumer> {
 
 /// Creates the compacted topic `name` (`partitions` partitions,
 /// `kafka.changelog_replication_factor` replicas) unless it exists; `what`
-/// names it in messages, `hint` says what to do when it cannot be created.
+/// names it in messages, `hint` says what to do when it cannot be created;
+/// `settings` are further topic configs.
 pub(crate) fn create_compacted_topic(
     k: &KafkaConfig,
     name: &str,
     partitions: i32,
+    settings: &[(&str, &str)],
     what: &str,
     hint: &str,
 ) -> Result<()> {
@@ -115,8 +117,11 @@ pub(crate) fn create_compacted_topic(
     use rdkafka::types::RDKafkaErrorCode;
     let admin: AdminClient<DefaultClientContext> =
         base_config(k).create().context("creating the Kafka admin client")?;
-    let topic = NewTopic::new(name, partitions, TopicReplication::Fixed(k.changelog_replication_factor))
+    let mut topic = NewTopic::new(name, partitions, TopicReplication::Fixed(k.changelog_replication_factor))
         .set("cleanup.policy", "compact");
+    for (key, v) in settings {
+        topic = topic.set(key, v);
+    }
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
     let opts = AdminOptions::new().operation_timeout(Some(std::time::Duration::from_secs(30)));
     let results = rt.block_on(admin.create_topics([&topic], &opts)).with_context(|| format!("creating the {what}"))?;

@@ -30,6 +30,17 @@ use crate::source::PartId;
 /// The first byte of every value (its format version).
 pub const VALUE_FORMAT: u8 = 1;
 
+/// The largest value (bytes): a partition's statistics with many channels
+/// and a Markov order of 2 or more can pass Kafka's default of 1 MB.
+const MAX_VALUE_BYTES: &str = "16777216";
+
+/// Settings of the topic when the service creates it: values up to
+/// [`MAX_VALUE_BYTES`], and segments rolled every hour, so that compaction
+/// (which never touches the open segment) keeps about one value per
+/// partition rather than every round's since the topic began (7 days by
+/// the broker's default) for a restarted instance to read.
+const TOPIC_SETTINGS: [(&str, &str); 2] = [("max.message.bytes", MAX_VALUE_BYTES), ("segment.ms", "3600000")];
+
 /// The most records one [`StatsExchange::receive`] reads (the rest come at
 /// the next call).
 const MAX_READ: usize = 10_000;
@@ -54,7 +65,7 @@ impl KafkaPathStats {
     pub fn new(kafka: &KafkaConfig, sources: Vec<String>, markov_order: usize) -> Result<Self> {
         let topic = kafka.path_stats_topic();
         let hint = "create it with cleanup.policy=compact and 1 partition, or set kafka.shared_path_stats = false";
-        super::create_compacted_topic(kafka, &topic, 1, "path statistics topic", hint)?;
+        super::create_compacted_topic(kafka, &topic, 1, &TOPIC_SETTINGS, "path statistics topic", hint)?;
         // librdkafka wants a group id; this reader never joins nor commits.
         let reader: BaseConsumer = super::base_config(kafka)
             .set("group.id", format!("{}-path-stats", kafka.group_id))
@@ -66,7 +77,7 @@ impl KafkaPathStats {
         tpl.add_partition_offset(&topic, 0, Offset::Beginning)?;
         reader.assign(&tpl).context("reading the path statistics topic")?;
         Ok(KafkaPathStats {
-            producer: super::sink::producer(kafka)?,
+            producer: stats_producer(kafka)?,
             kafka: kafka.clone(),
             topic,
             sources,
@@ -90,6 +101,17 @@ impl KafkaPathStats {
         let stats = decode_stats(&rest[8..], self.markov_order)?;
         Ok(Some(Published { part: PartId::new(source, partition), round, stats }))
     }
+}
+
+/// An idempotent producer for values up to [`MAX_VALUE_BYTES`],
+/// lz4-compressed unless `[kafka.properties]` names a compression.
+fn stats_producer(k: &KafkaConfig) -> Result<BaseProducer<DeliveryCounter>> {
+    let mut c = super::producer_config(k);
+    c.set("message.max.bytes", MAX_VALUE_BYTES);
+    if !k.properties.contains_key("compression.type") {
+        c.set("compression.type", "lz4");
+    }
+    c.create_with_context(DeliveryCounter::default()).context("creating the path statistics producer")
 }
 
 impl StatsExchange for KafkaPathStats {
@@ -119,7 +141,12 @@ impl StatsExchange for KafkaPathStats {
         }
         if let Err(e) = flush_checked(&self.producer, before, "path-stats") {
             // A producer whose broker restarted can stay unable to deliver.
-            super::sink::renew(&mut self.producer, &self.kafka, "path statistics");
+            match stats_producer(&self.kafka) {
+                Ok(fresh) => self.producer = fresh,
+                Err(e) => {
+                    tracing::warn!(error = %format!("{e:#}"), "cannot create a new path statistics producer; keeping the old one")
+                }
+            }
             anyhow::bail!("{e}");
         }
         Ok(())
