@@ -118,8 +118,11 @@ impl StatsExchange for KafkaPathStats {
     fn partitions(&mut self) -> Result<Vec<PartId>> {
         let mut all = Vec::new();
         for topic in &self.sources {
+            // Asked of the producer's client: the reader's connection can
+            // hold a fetch long poll that the request would wait behind.
             let md = self
-                .reader
+                .producer
+                .client()
                 .fetch_metadata(Some(topic), Duration::from_secs(10))
                 .with_context(|| format!("reading the metadata of topic {topic}"))?;
             let t = md.topics().iter().find(|t| t.name() == topic).context("topic not in the metadata")?;
