@@ -87,7 +87,15 @@ impl Refit {
     /// the current one for a partition without one. A named snapshot the
     /// store lacks is an error: crediting with another would change the
     /// credit of a redelivered batch.
-    pub fn snapshot_for(&mut self, store: &Store, version: Option<&str>) -> Result<Arc<Snapshot>> {
+    /// `held` offers statistics that may give a snapshot the store lacks
+    /// (the rounds of shared statistics held in full): one whose fit has
+    /// the named version is stored and used.
+    pub fn snapshot_for(
+        &mut self,
+        store: &Store,
+        version: Option<&str>,
+        held: impl FnOnce() -> Vec<PathStats>,
+    ) -> Result<Arc<Snapshot>> {
         let Some(v) = version.filter(|_| self.plan.data_driven()) else { return Ok(self.current.clone()) };
         if self.current.version() == Some(v) {
             return Ok(self.current.clone());
@@ -95,7 +103,19 @@ impl Refit {
         if let Some(s) = self.loaded.get(v) {
             return Ok(s.clone());
         }
-        let Some(stats) = store.snapshot(v, self.plan.markov_order)? else {
+        let stored = store.snapshot(v, self.plan.markov_order)?;
+        let stored = match stored {
+            Some(stats) => Some(stats),
+            None => match held().into_iter().find(|stats| Snapshot::fit(&self.plan, stats).version() == Some(v)) {
+                Some(stats) => {
+                    tracing::info!(snapshot = v, "a partition names a model snapshot this store did not hold; fitted again from the shared path statistics of its round");
+                    store.save_snapshot(v, &stats)?;
+                    Some(stats)
+                }
+                None => None,
+            },
+        };
+        let Some(stats) = stored else {
             // A partition restored from its changelog names the snapshot
             // of the instance that owned it before; the snapshots are local.
             tracing::warn!(

@@ -1025,6 +1025,55 @@ fn instances_sharing_statistics_fit_replay_s_snapshot() {
     assert_eq!(b.models_json()["paths"], 8);
 }
 
+/// A partition moves to an instance whose store lacks the model snapshot the
+/// partition committed with (a changelog restore carries partitions, not
+/// snapshots): with shared statistics the round that fitted it is held in
+/// full, so the new owner fits it again (same statistics, same version)
+/// and credits with it, as the old owner would have. Without sharing it
+/// can only credit with its own current snapshot (docs/contract.md, "State
+/// across instances", limits).
+#[test]
+fn a_moved_partition_gets_its_snapshot_back_from_the_shared_rounds() {
+    let cfg = Config { models: vec![ModelId::Shapley, ModelId::Markov], refit_interval: Period(60 * SEC), ..config() };
+    let (per_part, _) = two_partitions_of_paths();
+    let ids = [PartId::new("events", 0), PartId::new("events", 1)];
+    let exchange = crate::pipeline::shared_stats::MemoryExchange::new(ids.to_vec());
+    let dir = tempfile::tempdir().unwrap();
+    let committed: std::collections::BTreeSet<String> = {
+        let mut a = pipeline(cfg.clone(), Store::open(dir.path()).unwrap());
+        a.set_stats_exchange(Box::new(exchange.clone()));
+        let mut out = OutputBatch::default();
+        for (i, id) in ids.iter().enumerate() {
+            a.open_partition(id, Payload::Event(Format::Json)).unwrap();
+            a.process(id, &msgs(1, per_part[i].clone(), Instant::now()), &mut out).unwrap();
+        }
+        assert!(a.refit_in_round(600_000, Instant::now()).unwrap());
+        // Both partitions adopt the round's snapshot at this commit.
+        a.commit().unwrap();
+        a.models().iter().filter_map(|m| m.version().map(str::to_string)).collect()
+    };
+    assert_eq!(committed.len(), 2);
+    let later = vec![touch("late-t", "mover", 1000 * SEC, "email"), conversion("late-c", "mover", 1001 * SEC)];
+    let first_offset = per_part[0].len() as i64 + 1;
+    let credit_versions = |shared: bool| -> std::collections::BTreeSet<String> {
+        let store = Store::open(dir.path()).unwrap();
+        // The new owner's copy: the partitions, no snapshot.
+        store.prune_snapshots(&[]).unwrap();
+        let mut b = pipeline(cfg.clone(), store);
+        if shared {
+            b.set_stats_exchange(Box::new(exchange.clone()));
+        }
+        b.open_partition(&ids[0], Payload::Event(Format::Json)).unwrap();
+        let mut out = OutputBatch::default();
+        b.process(&ids[0], &msgs(first_offset, later.clone(), Instant::now()), &mut out).unwrap();
+        b.drain(&mut out).unwrap();
+        assert!(!out.credit.is_empty());
+        out.credit.iter().filter_map(|r| r.model_version.clone()).collect()
+    };
+    assert_eq!(credit_versions(true), committed);
+    assert_ne!(credit_versions(false), committed);
+}
+
 #[test]
 fn an_applied_erase_writes_one_audit_record() {
     // Contract: Erasure records (derived by hand): the erase of u (two open

@@ -202,9 +202,11 @@ impl Pipeline {
             self.closing.retain(|c| c != id);
             return Ok(p.committed);
         }
-        let (store, refit) = (&self.store, &mut self.refit);
+        let (store, refit, rounds) = (&self.store, &mut self.refit, &mut self.rounds);
         let plan = self.cfg.model_plan();
-        let part = PartState::open(store, id, payload, self.cfg.cache_bytes, &plan, |v| refit.snapshot_for(store, v))?;
+        let held = || rounds.as_mut().map(|r| r.held_rounds(&plan.empty_stats())).unwrap_or_default();
+        let part =
+            PartState::open(store, id, payload, self.cfg.cache_bytes, &plan, |v| refit.snapshot_for(store, v, held))?;
         let committed = part.committed;
         self.parts.insert(id.clone(), part);
         Ok(committed)

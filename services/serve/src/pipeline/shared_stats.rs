@@ -180,6 +180,46 @@ impl Rounds {
     }
 }
 
+impl Rounds {
+    /// The statistics of every round held in full (a value of every input
+    /// partition), merged into `base` as that round's fit merged them,
+    /// newest round first. A partition that moved names the snapshot its
+    /// previous owner committed with; when this instance does not hold it,
+    /// one of these can give it back (same statistics, same version).
+    /// Reads what the exchange has first; best effort: a round whose fit
+    /// went ahead without some partition's value cannot be rebuilt.
+    pub fn held_rounds(&mut self, base: &PathStats) -> Vec<PathStats> {
+        match self.exchange.receive() {
+            Ok(got) => {
+                for p in got {
+                    self.received.entry(p.part).or_default().insert(p.round, p.stats);
+                }
+            }
+            Err(e) => tracing::warn!(error = %format!("{e:#}"), "cannot read the shared path statistics"),
+        }
+        if self.partitions.is_empty() {
+            if let Ok(p) = self.exchange.partitions() {
+                self.partitions = p;
+            }
+        }
+        let mut all: Vec<&PartId> = self.partitions.iter().collect();
+        all.extend(self.received.keys().filter(|id| !self.partitions.contains(id)));
+        all.sort();
+        let rounds: std::collections::BTreeSet<i64> = self.received.values().flat_map(|r| r.keys().copied()).collect();
+        let mut held = Vec::new();
+        for round in rounds.into_iter().rev() {
+            let values: Option<Vec<&PathStats>> =
+                all.iter().map(|id| self.received.get(*id).and_then(|r| r.get(&round))).collect();
+            let Some(values) = values else { continue };
+            let mut merged = base.clone();
+            if values.into_iter().all(|s| merged.try_merge(s).is_ok()) {
+                held.push(merged);
+            }
+        }
+        held
+    }
+}
+
 /// An exchange in memory, shared by the pipelines of one test as the
 /// statistics topic is by the instances of a group.
 #[derive(Clone)]
