@@ -152,7 +152,8 @@ impl Pipeline {
     /// Without a data-driven model there is nothing to share: ignored.
     pub fn set_stats_exchange(&mut self, exchange: Box<dyn shared_stats::StatsExchange>) {
         if self.cfg.model_plan().data_driven() {
-            let interval = self.cfg.refit_interval.ms();
+            // Each round publishes and flushes: at least a second apart.
+            let interval = self.cfg.refit_interval.ms().max(shared_stats::MIN_ROUND_MS);
             self.rounds =
                 Some(shared_stats::Rounds::new(exchange, interval, shared_stats::Rounds::default_wait(interval)));
         }

@@ -26,6 +26,10 @@ use apportion_engine::datadriven::PathStats;
 
 use crate::source::PartId;
 
+/// The shortest round (ms): a shorter `refit_interval` gives rounds of this
+/// length when statistics are shared (each round publishes and flushes).
+pub const MIN_ROUND_MS: i64 = 1000;
+
 /// One partition's statistics as published for a round.
 #[derive(Debug, Clone)]
 pub struct Published {
