@@ -468,7 +468,9 @@ fn a_repartitioning_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
 /// on every partition's paths (docs/contract.md, "Fitting across
 /// instances"), so both show the same model versions, and the paths they
 /// fitted on are all the group's closed paths: as many as the paths topic
-/// holds (read_committed), conversions as many as its converted rows. Each
+/// holds (read_committed), conversions as many as its converted rows; and
+/// after one is killed (kill -9) and more events come, the survivor fits on
+/// every path again, the dead one's partitions included. Each
 /// instance on its own would count only its partitions' paths (the unit
 /// test `instances_sharing_statistics_fit_replay_s_snapshot` shows the
 /// versions then differ from one fit over all paths).
@@ -489,9 +491,38 @@ fn two_instances_fit_the_data_driven_models_on_the_same_statistics() {
     let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
     let mut first = start(a.path());
     let mut second = start(b.path());
-    t.produce(&t.events);
-    // Until both show the same fit, on every closed path of the group: as
-    // many as the paths topic holds when they do.
+    let half = t.events.len() / 2;
+    t.produce(&t.events[..half]);
+    let logs = [a.path(), b.path()];
+    fitted_on_every_path(&t, &[&first, &second], &logs);
+    for s in [&first, &second] {
+        let (_, m) = s.get("/metrics").unwrap();
+        assert!(m.contains("apportion_model_refit_missing_partitions 0"), "every partition's value in time");
+    }
+    for d in logs {
+        assert!(log(&[d]).contains("partition assigned"), "both instances own partitions: {}", log(&[d]));
+    }
+    // One instance killed: the other restores its partitions (statistics
+    // included, from the changelog), publishes them in the next rounds and
+    // fits on every path again, the second half's too.
+    second.signal("KILL");
+    t.produce(&t.events[half..]);
+    fitted_on_every_path(&t, &[&first], &logs);
+    assert_eq!(first.signal("TERM").code(), Some(0));
+    // The statistics topic as the service created it (docs/contract.md,
+    // "Fitting across instances"): one partition, compacted, values up to
+    // 16 MiB, segments rolled hourly so compaction can keep it small.
+    let names = ["cleanup.policy", "max.message.bytes", "segment.ms"];
+    let (partitions, values) = topic_configs(&t.brokers, &format!("{}-group-path-stats", t.prefix), &names);
+    assert_eq!(partitions, 1);
+    let values: Vec<Option<&str>> = values.iter().map(|v| v.as_deref()).collect();
+    assert_eq!(values, [Some("compact"), Some("16777216"), Some("3600000")]);
+}
+
+/// Waits until every instance of `instances` shows the same fit, on every
+/// closed path of the group: as many paths and conversions as the paths
+/// topic holds (read_committed, each path once) when they do.
+fn fitted_on_every_path(t: &Setup, instances: &[&Serve], logs: &[&std::path::Path]) {
     let fitted = |s: &Serve| -> Value {
         let (_, body) = s.get("/v1/models").expect("model endpoint");
         let v: Value = serde_json::from_str(&body).unwrap();
@@ -504,34 +535,19 @@ fn two_instances_fit_the_data_driven_models_on_the_same_statistics() {
         let converted = paths.iter().filter(|p| p["converted"] == true).count();
         let distinct: std::collections::HashSet<&str> = paths.iter().map(|p| p["path_id"].as_str().unwrap()).collect();
         assert_eq!(distinct.len(), paths.len(), "each path once (read_committed)");
-        let (x, y) = (fitted(&first), fitted(&second));
+        let fits: Vec<Value> = instances.iter().map(|s| fitted(s)).collect();
         let want = (Some(paths.len() as u64), Some(converted as u64));
-        if x == y && (x["paths"].as_u64(), x["conversions"].as_u64()) == want && !paths.is_empty() {
-            break;
+        let x = &fits[0];
+        if fits.iter().all(|f| f == x) && (x["paths"].as_u64(), x["conversions"].as_u64()) == want && !paths.is_empty()
+        {
+            return;
         }
         assert!(
             std::time::Instant::now() < deadline,
-            "the instances fitted {x} and {y}; the paths topic holds {} paths, {converted} converted: {}",
+            "the instances fitted {fits:?}; the paths topic holds {} paths, {converted} converted: {}",
             paths.len(),
-            log(&[a.path(), b.path()])
+            log(logs)
         );
         std::thread::sleep(Duration::from_secs(1));
     }
-    for s in [&first, &second] {
-        let (_, m) = s.get("/metrics").unwrap();
-        assert!(m.contains("apportion_model_refit_missing_partitions 0"), "every partition's value in time");
-    }
-    for d in [a.path(), b.path()] {
-        assert!(log(&[d]).contains("partition assigned"), "both instances own partitions: {}", log(&[d]));
-    }
-    assert_eq!(first.signal("TERM").code(), Some(0));
-    assert_eq!(second.signal("TERM").code(), Some(0));
-    // The statistics topic as the service created it (docs/contract.md,
-    // "Fitting across instances"): one partition, compacted, values up to
-    // 16 MiB, segments rolled hourly so compaction can keep it small.
-    let names = ["cleanup.policy", "max.message.bytes", "segment.ms"];
-    let (partitions, values) = topic_configs(&t.brokers, &format!("{}-group-path-stats", t.prefix), &names);
-    assert_eq!(partitions, 1);
-    let values: Vec<Option<&str>> = values.iter().map(|v| v.as_deref()).collect();
-    assert_eq!(values, [Some("compact"), Some("16777216"), Some("3600000")]);
 }
