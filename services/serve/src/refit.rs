@@ -67,15 +67,35 @@ pub struct Refit {
     interval_ms: i64,
     current: Arc<Snapshot>,
     loaded: HashMap<String, Arc<Snapshot>>,
+    /// The versions fitted last, newest at the back (at most
+    /// [`KEEP_RECENT`]): their statistics stay in the store.
+    recent: std::collections::VecDeque<String>,
     last_fit: Option<Instant>,
     metrics: Metrics,
 }
+
+/// How many of the snapshots fitted last keep their statistics in the
+/// store although no partition here credits with them: a partition that
+/// moves here from another instance names the snapshot it committed with
+/// there, which this instance fitted too when both fitted the same round
+/// (shared statistics) but had already moved past when the partition
+/// arrived (a session timeout and a restore later: with 1 s rounds, tens of
+/// rounds).
+pub const KEEP_RECENT: usize = 64;
 
 impl Refit {
     /// The models of `plan`, the data-driven ones fitted on no paths yet.
     pub fn new(plan: ModelPlan, interval_ms: i64, metrics: Metrics) -> Self {
         let current = Arc::new(Snapshot::fit(&plan, &plan.empty_stats()));
-        Refit { plan, interval_ms, current, loaded: HashMap::new(), last_fit: None, metrics }
+        Refit {
+            plan,
+            interval_ms,
+            current,
+            loaded: HashMap::new(),
+            recent: Default::default(),
+            last_fit: None,
+            metrics,
+        }
     }
 
     /// The current snapshot.
@@ -164,19 +184,26 @@ impl Refit {
             seconds = secs,
             "refitted data-driven models"
         );
-        store.save_snapshot(s.version().expect("data-driven"), stats)?;
+        let version = s.version().expect("data-driven").to_string();
+        store.save_snapshot(&version, stats)?;
+        self.recent.push_back(version);
+        if self.recent.len() > KEEP_RECENT {
+            self.recent.pop_front();
+        }
         self.current = Arc::new(s);
         Ok(Some(self.current.clone()))
     }
 
     /// Forgets loaded snapshots no partition uses and deletes their stored
-    /// statistics.
+    /// statistics, except those of the [`KEEP_RECENT`] fitted last (kept
+    /// while the process runs).
     pub fn prune(&mut self, store: &Store, in_use: &[&str]) -> Result<()> {
         if !self.plan.data_driven() {
             return Ok(());
         }
         self.loaded.retain(|v, _| in_use.contains(&v.as_str()));
         let mut keep: Vec<&str> = in_use.to_vec();
+        keep.extend(self.recent.iter().map(String::as_str));
         if let Some(v) = self.current.version() {
             keep.push(v);
         }
@@ -231,6 +258,31 @@ pub fn fit(plan: &ModelPlan, stats: &PathStats) -> (Vec<Box<dyn Model>>, serde_j
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A snapshot fitted lately keeps its statistics in the store although
+    /// no partition uses it (a partition that moves here may name it), up
+    /// to KEEP_RECENT of them; an older one goes. Derived by hand from the
+    /// rule in Refit::prune.
+    #[test]
+    fn pruning_keeps_the_snapshots_fitted_last() {
+        let plan = ModelPlan { ids: vec![ModelId::Shapley], ..ModelPlan::rules() };
+        let store = Store::temporary().unwrap();
+        let mut refit = Refit::new(plan, 0, Metrics::new(prometheus::Registry::new()));
+        let mut versions = Vec::new();
+        for n in 1..=KEEP_RECENT + 1 {
+            let mut stats = PathStats::new(1);
+            for _ in 0..n {
+                stats.add_path(&["email"], true);
+            }
+            let s = refit.refit(&store, &stats).unwrap().expect("new statistics, new version");
+            versions.push(s.version().unwrap().to_string());
+        }
+        refit.prune(&store, &[]).unwrap();
+        assert!(store.snapshot(&versions[0], 1).unwrap().is_none(), "the oldest went");
+        for v in &versions[1..] {
+            assert!(store.snapshot(v, 1).unwrap().is_some(), "{v} kept");
+        }
+    }
 
     /// The snapshot's description names the versions of the models that
     /// credit (one fit, not two that could differ).
