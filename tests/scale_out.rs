@@ -477,17 +477,7 @@ fn a_repartitioning_instance_fenced_by_its_twin_stops_and_nothing_repeats() {
 #[test]
 fn two_instances_fit_the_data_driven_models_on_the_same_statistics() {
     let Some(t) = setup("pstats", 4, 300, 41) else { return };
-    let start = |dir: &std::path::Path| {
-        let admin = free_port();
-        let cfg = kafka_config(dir, &t.brokers, admin, &t.prefix, true, "refit_interval = \"3s\"");
-        let text = std::fs::read_to_string(&cfg).unwrap().replace(
-            &format!("models = [{}]", MODELS.split(',').map(|m| format!("\"{m}\"")).collect::<Vec<_>>().join(", ")),
-            r#"models = ["linear", "shapley", "markov"]"#,
-        );
-        assert!(text.contains("shapley"), "{text}");
-        std::fs::write(&cfg, format!("{text}[kafka.properties]\n\"session.timeout.ms\" = \"6000\"\n")).unwrap();
-        wait_ready(Serve::start(&cfg, admin, &dir.join("serve.log")))
-    };
+    let start = |dir: &std::path::Path| data_driven_instance(&t, dir, "3s", 500, "");
     let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
     let mut first = start(a.path());
     let mut second = start(b.path());
@@ -550,4 +540,88 @@ fn fitted_on_every_path(t: &Setup, instances: &[&Serve], logs: &[&std::path::Pat
         );
         std::thread::sleep(Duration::from_secs(1));
     }
+}
+
+/// An instance crediting with linear, shapley and markov, refitted in rounds
+/// of `refit`, `batch` events per batch; `kafka` adds lines to `[kafka]`.
+fn data_driven_instance(t: &Setup, dir: &std::path::Path, refit: &str, batch: usize, kafka: &str) -> Serve {
+    let admin = free_port();
+    let cfg = kafka_config(dir, &t.brokers, admin, &t.prefix, true, &format!("refit_interval = \"{refit}\""));
+    let text = std::fs::read_to_string(&cfg)
+        .unwrap()
+        .replace(
+            &format!("models = [{}]", MODELS.split(',').map(|m| format!("\"{m}\"")).collect::<Vec<_>>().join(", ")),
+            r#"models = ["linear", "shapley", "markov"]"#,
+        )
+        .replace("batch_size = 500", &format!("batch_size = {batch}"));
+    assert!(text.contains("shapley"), "{text}");
+    std::fs::write(&cfg, format!("{text}{kafka}\n[kafka.properties]\n\"session.timeout.ms\" = \"6000\"\n")).unwrap();
+    wait_ready(Serve::start(&cfg, admin, &dir.join("serve.log")))
+}
+
+/// At-least-once delivery with the data-driven models refitted every
+/// second, two instances, one killed (kill -9) mid-stream: its partitions
+/// move to the other, which reads their uncommitted batches again. Each
+/// conversion replay credits is credited, and a row delivered twice is the
+/// same row both times, data-driven credit and model_version included
+/// (docs/contract.md, "Determinism"): the new owner credits a moved
+/// partition's batches with the snapshot the partition committed with,
+/// fitted again from the shared round when its store lacks it.
+///
+/// Ignored: it fails today, in about one run of two (a known fault, left
+/// open in issue 12's notes). A refit takes effect at a partition's next
+/// commit, so which snapshot credits a message depends on where the
+/// commits fell; the new owner re-reads the dead one's uncommitted batch
+/// cut into other batches, adopts its own next snapshot at its own first
+/// commit, and credits the rest of that span with it (seen: the same
+/// credit_id under shapley-beb17.. and shapley-b9def.., on a partition the
+/// dead instance had never committed). The fix is to record an adoption
+/// like the other clock-made decisions (the offset it applies at, persisted
+/// before the output and published with the changelog). Exactly-once
+/// delivery is not affected: the uncommitted batch's rows are aborted.
+/// Run with `cargo test --release -p apportion-e2e -- --ignored data_driven_rows_repeat`.
+#[test]
+#[ignore = "known fault: a snapshot adoption is not pinned to an offset (issue 12 notes)"]
+fn data_driven_rows_repeat_identically_when_a_killed_instance_s_partitions_move() {
+    let Some(t) = setup("ddmove", 4, 1500, 43) else { return };
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let alo = "delivery = \"at_least_once\"";
+    let mut first = data_driven_instance(&t, a.path(), "1s", 50, alo);
+    let mut second = data_driven_instance(&t, b.path(), "1s", 50, alo);
+    t.produce(&t.events);
+    let want: std::collections::HashSet<String> =
+        t.want.iter().map(|r| r["conversion_id"].as_str().unwrap().to_string()).collect();
+    let credit = format!("{}-credit", t.prefix);
+    let _ = consume_until(&t.brokers, &credit, Duration::from_secs(60), |r| r.len() >= want.len());
+    second.signal("KILL");
+    let linear = |rows: &[Value]| -> std::collections::HashSet<String> {
+        rows.iter()
+            .filter(|r| r["model"] == "linear")
+            .map(|r| r["conversion_id"].as_str().unwrap().to_string())
+            .collect()
+    };
+    let got = consume_until(&t.brokers, &credit, Duration::from_secs(180), |r| linear(r).len() >= want.len());
+    let logs = log(&[a.path(), b.path()]);
+    assert_eq!(linear(&got), want, "every conversion replay credits: {logs}");
+    let mut by_id: std::collections::HashMap<&str, &Value> = std::collections::HashMap::new();
+    let mut twice = 0;
+    for r in &got {
+        if let Some(prev) = by_id.insert(r["credit_id"].as_str().unwrap(), r) {
+            let about: Vec<&str> = logs
+                .lines()
+                .filter(|l| l.contains("snapshot") || l.contains("partition assigned") || l.contains("restored"))
+                .collect();
+            assert_eq!(prev, r, "a credit_id delivered twice with two values: {}", about.join("\n"));
+            twice += 1;
+        }
+    }
+    let versions: std::collections::HashSet<&str> = got.iter().filter_map(|r| r["model_version"].as_str()).collect();
+    let refitted = log(&[a.path()]).matches("fitted again from the shared path statistics").count();
+    eprintln!(
+        "data-driven move: {} rows, {twice} delivered twice, {} versions, {refitted} snapshots fitted again",
+        got.len(),
+        versions.len()
+    );
+    assert!(versions.len() > 2, "the models were refitted along the way: {versions:?}");
+    assert_eq!(first.signal("TERM").code(), Some(0));
 }
