@@ -207,7 +207,7 @@ fn a_killed_instance_s_partitions_are_restored_on_another() {
 /// the same row. Every hand-over waits for the commit in flight.
 #[test]
 fn instances_joining_and_leaving_mid_stream_give_the_same_credit() {
-    let Some(t) = setup("join", 4, 3000, 41) else { return };
+    let Some(t) = setup("join", 4, 6000, 41) else { return };
     let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
     t.produce(&t.events);
     let mut first = t.instance(a.path(), 50);
