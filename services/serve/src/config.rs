@@ -328,6 +328,16 @@ impl KafkaConfig {
         format!("{}-repartition", self.transactional_id(store_instance))
     }
 
+    /// The topics the main consumer group reads: the input topics, or the
+    /// repartition topic when the input is not keyed by user.
+    pub fn consumed_topics(&self) -> Vec<String> {
+        if self.input_keyed_by_user {
+            self.input_topics.clone()
+        } else {
+            vec![self.repartition_topic.clone()]
+        }
+    }
+
     /// The topic the instances of the group share path statistics through.
     pub fn path_stats_topic(&self) -> String {
         format!("{}-path-stats", self.group_id)
@@ -473,9 +483,7 @@ impl Config {
                 }
             }
             if k.changelog {
-                let sources =
-                    if k.input_keyed_by_user { k.input_topics.clone() } else { vec![k.repartition_topic.clone()] };
-                for t in &sources {
+                for t in &k.consumed_topics() {
                     let name = k.changelog_topic(t);
                     if let Some(why) = topic_name_problem(&name) {
                         bail!("the changelog topic of {t} would be {name:?}, which {why}; change kafka.group_id or set kafka.changelog = false");

@@ -121,9 +121,8 @@ pub fn run(cfg: Config, shutdown: impl Future<Output = ()> + Send + 'static) -> 
             }
             let plan = cfg.model_plan();
             if let Some(k) = cfg.kafka.as_ref().filter(|k| k.shared_path_stats && plan.data_driven()) {
-                let sources =
-                    if k.input_keyed_by_user { k.input_topics.clone() } else { vec![k.repartition_topic.clone()] };
-                let exchange = crate::kafka::path_stats::KafkaPathStats::new(k, sources, plan.markov_order)?;
+                let exchange =
+                    crate::kafka::path_stats::KafkaPathStats::new(k, k.consumed_topics(), plan.markov_order)?;
                 pipeline.set_stats_exchange(Box::new(exchange));
             }
             let sink = crate::kafka::KafkaSink::new(&cfg, txn)?;
