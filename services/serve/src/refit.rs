@@ -40,8 +40,13 @@ impl Snapshot {
     /// Fits the plan's models on `stats`.
     pub fn fit(plan: &ModelPlan, stats: &PathStats) -> Snapshot {
         let (models, json) = fit(plan, stats);
-        let version = plan.data_driven().then(|| format!("o{}-{}", stats.markov_order(), stats.fingerprint()));
-        Snapshot { version, models, json }
+        Snapshot { version: Snapshot::version_of(plan, stats), models, json }
+    }
+
+    /// The version a fit of `plan` on `stats` would have (`None` without
+    /// data-driven models), without fitting.
+    pub fn version_of(plan: &ModelPlan, stats: &PathStats) -> Option<String> {
+        plan.data_driven().then(|| format!("o{}-{}", stats.markov_order(), stats.fingerprint()))
     }
 
     /// The snapshot's key in the store (`None` without data-driven models).
@@ -126,14 +131,16 @@ impl Refit {
         let stored = store.snapshot(v, self.plan.markov_order)?;
         let stored = match stored {
             Some(stats) => Some(stats),
-            None => match held().into_iter().find(|stats| Snapshot::fit(&self.plan, stats).version() == Some(v)) {
-                Some(stats) => {
-                    tracing::info!(snapshot = v, "a partition names a model snapshot this store did not hold; fitted again from the shared path statistics of its round");
-                    store.save_snapshot(v, &stats)?;
-                    Some(stats)
+            None => {
+                match held().into_iter().find(|stats| Snapshot::version_of(&self.plan, stats).as_deref() == Some(v)) {
+                    Some(stats) => {
+                        tracing::info!(snapshot = v, "a partition names a model snapshot this store did not hold; fitted again from the shared path statistics of its round");
+                        store.save_snapshot(v, &stats)?;
+                        Some(stats)
+                    }
+                    None => None,
                 }
-                None => None,
-            },
+            }
         };
         let Some(stats) = stored else {
             // A partition restored from its changelog names the snapshot
