@@ -125,9 +125,7 @@ impl Rounds {
             }
         }
         let entered = self.current.map(|(_, t)| t).unwrap_or(now);
-        for p in self.exchange.receive()? {
-            self.received.entry(p.part).or_default().insert(p.round, p.stats);
-        }
+        self.read()?;
         // Older rounds are only a fallback: the latest two are enough.
         for rounds in self.received.values_mut() {
             while rounds.len() > 2 && rounds.keys().next().is_some_and(|&r| r < round) {
@@ -162,9 +160,7 @@ impl Rounds {
                 self.published.insert(id.clone(), round);
             }
         }
-        let mut all: Vec<&PartId> = self.partitions.iter().collect();
-        all.extend(open.iter().map(|(id, _)| *id).filter(|id| !self.partitions.contains(id)));
-        all.sort();
+        let all = with_partitions(&self.partitions, open.iter().map(|(id, _)| *id));
         let has_round = |id: &PartId| self.received.get(id).is_some_and(|r| r.contains_key(&round));
         let missing = all.iter().filter(|id| !has_round(id)).count();
         if missing > 0 && now.duration_since(entered) < self.wait {
@@ -193,22 +189,15 @@ impl Rounds {
     /// Reads what the exchange has first; best effort: a round whose fit
     /// went ahead without some partition's value cannot be rebuilt.
     pub fn held_rounds(&mut self, base: &PathStats) -> Vec<PathStats> {
-        match self.exchange.receive() {
-            Ok(got) => {
-                for p in got {
-                    self.received.entry(p.part).or_default().insert(p.round, p.stats);
-                }
-            }
-            Err(e) => tracing::warn!(error = %format!("{e:#}"), "cannot read the shared path statistics"),
+        if let Err(e) = self.read() {
+            tracing::warn!(error = %format!("{e:#}"), "cannot read the shared path statistics");
         }
         if self.partitions.is_empty() {
             if let Ok(p) = self.exchange.partitions() {
                 self.partitions = p;
             }
         }
-        let mut all: Vec<&PartId> = self.partitions.iter().collect();
-        all.extend(self.received.keys().filter(|id| !self.partitions.contains(id)));
-        all.sort();
+        let all = with_partitions(&self.partitions, self.received.keys());
         let rounds: std::collections::BTreeSet<i64> = self.received.values().flat_map(|r| r.keys().copied()).collect();
         let mut held = Vec::new();
         for round in rounds.into_iter().rev() {
@@ -222,6 +211,25 @@ impl Rounds {
         }
         held
     }
+}
+
+impl Rounds {
+    /// Takes what the exchange has since the last read.
+    fn read(&mut self) -> Result<()> {
+        for p in self.exchange.receive()? {
+            self.received.entry(p.part).or_default().insert(p.round, p.stats);
+        }
+        Ok(())
+    }
+}
+
+/// The input partitions and any of `extra` not among them, in partition
+/// order (the order every instance merges in).
+fn with_partitions<'a>(partitions: &'a [PartId], extra: impl Iterator<Item = &'a PartId>) -> Vec<&'a PartId> {
+    let mut all: Vec<&PartId> = partitions.iter().collect();
+    all.extend(extra.filter(|id| !partitions.contains(id)));
+    all.sort();
+    all
 }
 
 /// An exchange in memory, shared by the pipelines of one test as the
