@@ -568,20 +568,15 @@ fn data_driven_instance(t: &Setup, dir: &std::path::Path, refit: &str, batch: us
 /// partition's batches with the snapshot the partition committed with,
 /// fitted again from the shared round when its store lacks it.
 ///
-/// Ignored: it fails today, in about one run of two (a known fault, left
-/// open in issue 12's notes). A refit takes effect at a partition's next
-/// commit, so which snapshot credits a message depends on where the
-/// commits fell; the new owner re-reads the dead one's uncommitted batch
-/// cut into other batches, adopts its own next snapshot at its own first
-/// commit, and credits the rest of that span with it (seen: the same
-/// credit_id under shapley-beb17.. and shapley-b9def.., on a partition the
-/// dead instance had never committed). The fix is to record an adoption
-/// like the other clock-made decisions (the offset it applies at, persisted
-/// before the output and published with the changelog). Exactly-once
-/// delivery is not affected: the uncommitted batch's rows are aborted.
-/// Run with `cargo test --release -p apportion-e2e -- --ignored data_driven_rows_repeat`.
+/// A refit takes effect at a partition's next commit, so which snapshot
+/// credits a message depends on where the commits fell; the new owner
+/// re-reads the dead one's uncommitted batch cut into other batches. It
+/// credits that span with the snapshot the dead one's output mark names
+/// (recorded and published to the changelog before the output was
+/// written), and switches to its own only after it (docs/contract.md,
+/// "Determinism"). Before the marks it failed in about one run of two (the
+/// same credit_id under two shapley versions).
 #[test]
-#[ignore = "known fault: a snapshot adoption is not pinned to an offset (issue 12 notes)"]
 fn data_driven_rows_repeat_identically_when_a_killed_instance_s_partitions_move() {
     let Some(t) = setup("ddmove", 4, 1500, 43) else { return };
     let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());

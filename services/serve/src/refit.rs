@@ -128,7 +128,12 @@ impl Refit {
         if let Some(s) = self.loaded.get(v) {
             return Ok(s.clone());
         }
-        let stored = store.snapshot(v, self.plan.markov_order)?;
+        let empty = self.plan.empty_stats();
+        // The fit on no paths yet (what every instance starts with).
+        let stored = match Snapshot::version_of(&self.plan, &empty).as_deref() == Some(v) {
+            true => Some(empty),
+            false => store.snapshot(v, self.plan.markov_order)?,
+        };
         let stored = match stored {
             Some(stats) => Some(stats),
             None => {

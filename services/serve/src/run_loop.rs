@@ -203,6 +203,18 @@ fn write_batch(
     metrics: &Metrics,
     shared: &Mutex<Shared>,
 ) -> Result<Written> {
+    // The decisions the output depends on reach the changelog before it.
+    match publish_decisions(prepared, stop, metrics) {
+        Ok(true) => {}
+        Ok(false) => {
+            prepared.release();
+            return Ok(Written::Abandoned);
+        }
+        Err(e) => {
+            prepared.release();
+            return Err(e);
+        }
+    }
     let mut backoff = Duration::from_millis(100);
     let written = loop {
         let written = write_sinks(sinks, out, stop, metrics, shared);
@@ -251,18 +263,53 @@ fn write_commit(prepared: &mut PreparedBatch, stop: &AtomicBool, metrics: &Metri
                 tracing::warn!(error = %format!("{e:#}"), "the batch's transaction did not commit; writing the batch again");
                 return Ok(Committed::Aborted);
             }
-            Err(e) if e.is::<crate::pipeline::changelog::PublishError>() => {
-                metrics.changelog_failures.inc();
-                tracing::warn!(error = %format!("{e:#}"), retry_in_ms = backoff.as_millis() as u64, "the changelog did not take the batch's commit; retrying");
-                if !sleep_unless_stopped(backoff, stop, metrics) {
-                    tracing::warn!("shutdown while the changelog was unreachable: the batch is not committed and is delivered again after the restart");
+            Err(e) => {
+                if !wait_to_publish_again(e, "commit", &mut backoff, stop, metrics)? {
                     return Ok(Committed::No);
                 }
-                backoff = (backoff * 2).min(MAX_BACKOFF);
             }
-            Err(e) => return Err(e),
         }
     }
+}
+
+/// Publishes a batch's decisions ahead of its output
+/// ([`PreparedBatch::publish_decisions`]), retried like a commit; false
+/// when shutdown came first (the batch is then not written at all).
+fn publish_decisions(prepared: &mut PreparedBatch, stop: &AtomicBool, metrics: &Metrics) -> Result<bool> {
+    let mut backoff = Duration::from_millis(100);
+    loop {
+        match prepared.publish_decisions() {
+            Ok(()) => return Ok(true),
+            Err(e) => {
+                if !wait_to_publish_again(e, "decisions", &mut backoff, stop, metrics)? {
+                    return Ok(false);
+                }
+            }
+        }
+    }
+}
+
+/// After a publication to the changelog failed with `e`: the error itself
+/// unless the changelog could not be reached; else waits `backoff` (then
+/// doubled) and says whether to try again (false: shutdown came).
+fn wait_to_publish_again(
+    e: anyhow::Error,
+    what: &str,
+    backoff: &mut Duration,
+    stop: &AtomicBool,
+    metrics: &Metrics,
+) -> Result<bool> {
+    if !e.is::<crate::pipeline::changelog::PublishError>() {
+        return Err(e);
+    }
+    metrics.changelog_failures.inc();
+    tracing::warn!(error = %format!("{e:#}"), retry_in_ms = backoff.as_millis() as u64, "the changelog did not take the batch's {what}; retrying");
+    if !sleep_unless_stopped(*backoff, stop, metrics) {
+        tracing::warn!("shutdown while the changelog was unreachable: the batch is not committed and is delivered again after the restart");
+        return Ok(false);
+    }
+    *backoff = (*backoff * 2).min(MAX_BACKOFF);
+    Ok(true)
 }
 
 /// Rows per event of the last batch with input, so that the next batch's

@@ -159,10 +159,11 @@ pub(crate) fn from_ordered_i64(b: &[u8]) -> i64 {
     (u64::from_be_bytes(b.try_into().expect("8 bytes")) ^ (1 << 63)) as i64
 }
 
-/// A decision that depended on processing time, recorded with the input
-/// offset it applies at, so that a redelivery of the same messages makes it
-/// again (docs/contract.md, "Determinism").
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+/// A decision that depended on processing time (or on where a batch
+/// ended), recorded with the input offset it applies at, so that a
+/// redelivery of the same messages makes it again (docs/contract.md,
+/// "Determinism").
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord)]
 pub enum Decision {
     /// The event at `offset` was rejected as too far in the future.
     FutureRejected {
@@ -177,6 +178,16 @@ pub enum Decision {
         /// The new watermark.
         watermark: i64,
     },
+    /// The output of the messages up to `through_offset` was written (or
+    /// about to be) before their commit, credited with the model snapshot
+    /// `snapshot`: a redelivery credits with it up to that offset, so the
+    /// rows it writes again are the same rows.
+    OutputWritten {
+        /// Offset of the batch's last message.
+        through_offset: i64,
+        /// Version of the snapshot the output was credited with.
+        snapshot: String,
+    },
 }
 
 impl Decision {
@@ -185,6 +196,7 @@ impl Decision {
         match *self {
             Decision::FutureRejected { offset } => offset,
             Decision::Advance { after_offset, .. } => after_offset,
+            Decision::OutputWritten { through_offset, .. } => through_offset,
         }
     }
 
@@ -195,6 +207,7 @@ impl Decision {
         k.push(match self {
             Decision::FutureRejected { .. } => b'f',
             Decision::Advance { .. } => b'a',
+            Decision::OutputWritten { .. } => b'w',
         });
         k
     }
@@ -203,6 +216,7 @@ impl Decision {
         match self {
             Decision::FutureRejected { .. } => Vec::new(),
             Decision::Advance { watermark, .. } => watermark.to_be_bytes().to_vec(),
+            Decision::OutputWritten { snapshot, .. } => snapshot.as_bytes().to_vec(),
         }
     }
 
@@ -214,11 +228,45 @@ impl Decision {
         let offset = from_ordered_i64(&key[1..9]);
         match key[9] {
             b'f' => Ok(Decision::FutureRejected { offset }),
+            b'w' => match std::str::from_utf8(value) {
+                Ok(v) if !v.is_empty() => {
+                    Ok(Decision::OutputWritten { through_offset: offset, snapshot: v.to_string() })
+                }
+                _ => Err(corrupt("output mark without a snapshot version")),
+            },
             b'a' => {
                 let w: [u8; 8] = value.try_into().map_err(|_| corrupt("advance without an 8-byte watermark"))?;
                 Ok(Decision::Advance { after_offset: offset, watermark: i64::from_be_bytes(w) })
             }
             _ => Err(corrupt("unknown decision kind")),
         }
+    }
+}
+
+#[cfg(test)]
+mod decision_tests {
+    use super::*;
+
+    /// Every kind reads back as written, and keys sort by offset first
+    /// (a commit forgets the decisions at or before its offset by a range).
+    #[test]
+    fn decisions_read_back_and_sort_by_offset() {
+        let all = [
+            Decision::OutputWritten { through_offset: -1, snapshot: "o1-ab".into() },
+            Decision::FutureRejected { offset: 7 },
+            Decision::Advance { after_offset: 7, watermark: -5 },
+            Decision::OutputWritten { through_offset: 8, snapshot: "o2-cd".into() },
+        ];
+        for d in &all {
+            assert_eq!(&Decision::decode(&d.key(), &d.value()).unwrap(), d);
+        }
+        assert!(Decision::decode(&all[0].key(), &[]).is_err(), "an output mark names its snapshot");
+        let mut keys: Vec<Vec<u8>> = all.iter().rev().map(Decision::key).collect();
+        keys.sort();
+        let offsets: Vec<i64> = keys.iter().map(|k| from_ordered_i64(&k[1..9])).collect();
+        assert_eq!(offsets, [-1, 7, 7, 8]);
+        let mut bad = all[0].key();
+        bad[9] = b'?';
+        assert!(Decision::decode(&bad, &[]).is_err());
     }
 }

@@ -12,7 +12,7 @@
 //! | `s` | largest "as of" time (8 bytes, order-preserving) + sequence (8 bytes) | event-id digests remembered for duplicate detection, one record per commit (format in `seen.rs`) |
 //! | `o` | source name | input offset (8 bytes) |
 //! | `m` | `clock` / `snapshot` / `source` | the partition's clock, active model snapshot and source position (formats in `codec.rs`) |
-//! | `d` | offset + kind | decisions that depended on processing time (`codec::Decision`) |
+//! | `d` | offset + kind (`f` future-dated, `a` idle advance, `w` output mark) | decisions that depended on processing time or on where a batch ended (`codec::Decision`) |
 //! | `p` | `h` / `s` + channel set / `t` + transition | the partition's path statistics as keyed counters, format version 2 ([`STATS_COUNTERS_VERSION`]; layout below) |
 //!
 //! Path statistics (`p`), written per change: a commit writes only the

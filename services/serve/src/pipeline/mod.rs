@@ -116,6 +116,28 @@ impl PreparedBatch {
         Ok(())
     }
 
+    /// With a changelog outside a Kafka transaction (at-least-once), publishes
+    /// the decisions recorded for the batch (a future-dated rejection, an
+    /// idle advance, the end of output written with a data-driven snapshot)
+    /// as a commit of their own. Call before the batch's output is written:
+    /// if the commit never follows, the partition's next owner, restored
+    /// from the changelog, makes the same decisions for the same messages
+    /// (docs/contract.md, "Determinism"). A [`changelog::PublishError`]
+    /// when it fails (nothing is written yet: call again).
+    pub fn publish_decisions(&mut self) -> Result<()> {
+        let Some(log) = self.changelog.as_ref().filter(|l| !l.transactional()) else { return Ok(()) };
+        let sets: Vec<(&PartId, Vec<&apportion_store::ChangeSet>)> =
+            self.parts.iter().filter_map(|(id, p)| p.early_decisions().map(|d| (id, vec![d]))).collect();
+        if sets.is_empty() {
+            return Ok(());
+        }
+        log.publish(&sets)?;
+        for (_, p) in self.parts.iter_mut() {
+            p.decisions_published();
+        }
+        Ok(())
+    }
+
     /// No longer counted as being written (the sink thread is done with
     /// it, written or not: a revocation need not wait for it).
     pub fn release(&mut self) {
@@ -527,7 +549,10 @@ impl Pipeline {
         let part = self.parts.get_mut(id).expect("open partition");
         let models = part.snapshot.models();
         let stats = part.keep_stats.then_some(&mut part.stats);
+        let rows = out.credit.len();
         emit::emit(effects, models, stats, &mut part.arrivals, &self.metrics, &self.hot, out);
+        // With a data-driven model, the rows depend on the snapshot.
+        part.credited |= part.keep_stats && out.credit.len() > rows;
     }
 
     /// Makes every decision recorded in this batch durable. Call before the
@@ -609,9 +634,11 @@ impl Pipeline {
     /// to the next commit; apply prepared batches in the order prepared.
     pub fn prepare_commit(&mut self) -> Result<PreparedBatch> {
         let horizon = self.cfg.dedupe_horizon.ms();
+        // Output a failed commit does not take back (no Kafka transaction).
+        let mark_output = !self.changelog.as_ref().is_some_and(|(log, _)| log.transactional());
         let mut parts = Vec::with_capacity(self.parts.len());
         for (id, p) in self.parts.iter_mut() {
-            parts.push((id.clone(), p.prepare_commit(id, horizon)?));
+            parts.push((id.clone(), p.prepare_commit(id, horizon, mark_output)?));
         }
         self.prepared = true;
         let (changelog, ticket) = match &self.changelog {

@@ -24,6 +24,9 @@ pub struct Decisions {
     pub future: BTreeSet<i64>,
     /// Watermark advances by processing time, after the message at the key.
     pub advances: BTreeMap<i64, i64>,
+    /// Ends of batches whose output was written before their commit, and
+    /// the snapshot it was credited with (see [`Decision::OutputWritten`]).
+    pub written: BTreeMap<i64, String>,
     /// Recorded in memory, not yet durable.
     pub unsaved: Vec<Decision>,
 }
@@ -46,14 +49,34 @@ impl Decisions {
                 let w = self.advances.entry(after_offset).or_insert(watermark);
                 *w = (*w).max(watermark);
             }
+            Decision::OutputWritten { through_offset, snapshot } => {
+                self.written.insert(through_offset, snapshot);
+            }
+        }
+    }
+
+    /// True when output was written for messages after `offset` with the
+    /// committed snapshot: a commit at `offset` keeps that snapshot.
+    pub fn holds_snapshot_at(&self, offset: Option<i64>) -> bool {
+        match (self.written.last_key_value(), offset) {
+            (Some((&w, _)), Some(o)) => w > o,
+            (Some(_), None) => true,
+            (None, _) => false,
         }
     }
 
     /// Records a new decision (durable at the next
     /// [`PartState::persist_decisions`]).
     pub fn record(&mut self, x: Decision) {
-        self.add(x);
+        self.add(x.clone());
         self.unsaved.push(x);
+    }
+
+    /// The snapshot the output written after the last commit was credited
+    /// with, if any was (it is the one the partition committed with, but
+    /// for a partition that never committed).
+    pub fn written_with(&self) -> Option<&str> {
+        self.written.first_key_value().map(|(_, v)| v.as_str())
     }
 
     /// Removes and returns the advances at or before `offset`, in order.
@@ -101,8 +124,12 @@ pub struct PartState {
     pub idle: Option<Idle>,
     /// The models this partition credits with.
     pub snapshot: Arc<Snapshot>,
-    /// A snapshot to switch to at the next commit.
+    /// A snapshot to switch to at the next commit (or the first one after
+    /// the output already written with the current one, see
+    /// [`Decisions::holds_snapshot_at`]).
     pub adopt: Option<Arc<Snapshot>>,
+    /// Data-driven credit was emitted since the last commit.
+    pub credited: bool,
     /// A source position to commit with the next offset.
     pub source_position: Option<Vec<u8>>,
     /// Repartitioned input: the progress of every input partition.
@@ -159,7 +186,9 @@ impl PartState {
         let decisions =
             Decisions::load(part.decisions().with_context(|| format!("reading the decisions of partition {name}"))?);
         let active = part.active_snapshot().with_context(|| format!("reading the snapshot of partition {name}"))?;
-        let snapshot = snapshot(active.as_deref())?;
+        // Output written after the last commit names the snapshot it was
+        // credited with: its redelivery credits with the same one.
+        let snapshot = snapshot(decisions.written_with().or(active.as_deref()))?;
         let sources = match payload {
             Payload::Pseudonymized => match part.source_position()? {
                 Some(b) => serde_json::from_slice(&b)
@@ -181,6 +210,7 @@ impl PartState {
             idle: None,
             snapshot,
             adopt: None,
+            credited: false,
             source_position: None,
             sources,
             arrivals: HashMap::new(),
@@ -213,22 +243,37 @@ impl PartState {
     /// enough have accumulated). The batch is applied, not yet durable: the
     /// caller flushes the store.
     pub fn commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<()> {
-        let prepared = self.prepare_commit(id, dedupe_horizon_ms)?;
+        let prepared = self.prepare_commit(id, dedupe_horizon_ms, false)?;
         self.apply_commit(prepared)
     }
 
     /// The first half of [`PartState::commit`]: stages and collects the
     /// commit without writing it (see [`PartitionStore::prepare`]); events
     /// applied before [`PartState::apply_commit`] belong to the next one.
-    pub fn prepare_commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<PreparedPart> {
+    /// `mark_output`: the batch's output is written before its commit and
+    /// not taken back when the commit fails (at-least-once delivery); when
+    /// it credited with a data-driven model, the end of the batch is
+    /// recorded ([`Decision::OutputWritten`]), so that a redelivery keeps
+    /// the snapshot up to there.
+    pub fn prepare_commit(&mut self, id: &PartId, dedupe_horizon_ms: i64, mark_output: bool) -> Result<PreparedPart> {
+        if std::mem::take(&mut self.credited) && mark_output {
+            if let (Some(o), Some(v)) = (self.pending_offset, self.snapshot.version()) {
+                self.decisions.record(Decision::OutputWritten { through_offset: o, snapshot: v.to_string() });
+            }
+        }
         self.persist_decisions()?;
         let offset = self.pending_offset.take();
+        // Output already written with the current snapshot for messages
+        // after this commit (a redelivery cut into other batches): the
+        // switch waits until the commit passes them.
+        let hold = self.decisions.holds_snapshot_at(offset.or(self.committed));
         if let Some(o) = offset {
             self.store.stage_offset(&id.store_name(), o);
         }
         if let Some(c) = offset.or(self.committed) {
             self.store.stage_forget_decisions(c)?;
             self.decisions.future = self.decisions.future.split_off(&(c.saturating_add(1)));
+            self.decisions.written = self.decisions.written.split_off(&(c.saturating_add(1)));
         }
         if self.clock != self.staged_clock {
             self.store.stage_clock(&self.clock);
@@ -238,8 +283,10 @@ impl PartState {
             // Only the counters this batch changed (nothing when none did).
             self.store.stage_stats(&mut self.stats)?;
         }
-        if let Some(s) = self.adopt.take() {
-            self.snapshot = s;
+        if !hold {
+            if let Some(s) = self.adopt.take() {
+                self.snapshot = s;
+            }
         }
         if let Some(v) = self.snapshot.version() {
             if self.staged_snapshot.as_deref() != Some(v) {
@@ -254,7 +301,7 @@ impl PartState {
             self.store.prune_seen(self.clock.watermark.saturating_sub(dedupe_horizon_ms))?;
         }
         let decisions = std::mem::take(&mut self.unpublished);
-        Ok(PreparedPart { store: self.store.prepare(), offset, decisions })
+        Ok(PreparedPart { store: self.store.prepare(), offset, decisions, decisions_published: false })
     }
 
     /// The second half of [`PartState::commit`]: writes a prepared commit
@@ -278,18 +325,37 @@ pub struct PreparedPart {
     offset: Option<i64>,
     /// Decisions recorded since the last commit (already in the store).
     decisions: ChangeSet,
+    /// The decisions were published ahead of the batch's output
+    /// ([`PreparedPart::early_decisions`]).
+    decisions_published: bool,
 }
 
 impl PreparedPart {
     /// What its changelog publishes, in order: the decisions recorded since
-    /// the last commit, then the commit's writes.
+    /// the last commit (unless published already), then the commit's writes.
     pub fn changes(&self) -> Vec<&ChangeSet> {
-        vec![&self.decisions, self.store.changes()]
+        match self.decisions_published {
+            false => vec![&self.decisions, self.store.changes()],
+            true => vec![self.store.changes()],
+        }
     }
 
     /// True when the commit writes nothing.
     pub fn is_empty(&self) -> bool {
-        self.decisions.is_empty() && self.store.changes().is_empty()
+        self.changes().iter().all(|c| c.is_empty())
+    }
+
+    /// The decisions to publish before the batch's output is written (at
+    /// least once: the output stays when the commit fails, and the
+    /// partition's next owner must make the same decisions); none when
+    /// there are none or they were published.
+    pub fn early_decisions(&self) -> Option<&ChangeSet> {
+        (!self.decisions_published && !self.decisions.is_empty()).then_some(&self.decisions)
+    }
+
+    /// The decisions are in the changelog.
+    pub fn decisions_published(&mut self) {
+        self.decisions_published = true;
     }
 
     /// Records, with the commit, the changelog offset it was published at.
