@@ -326,13 +326,15 @@ kafka_part() {
   # rules-unkeyed: exactly once with input_keyed_by_user = false, so every
   # event crosses the repartition stage (its own transactions) first
   local sets=("rules:$rules" "rules-alo:$rules" "rules-nolog:$rules" "rules-unkeyed:$rules")
-  [ "$dd_serve" = 1 ] && sets+=("seven:$seven")
+  # seven-alo: the seven models at least once (each batch that credits
+  # publishes its output marks to the changelog before its output)
+  [ "$dd_serve" = 1 ] && sets+=("seven:$seven" "seven-alo:$seven")
   local s tag models dir port pid n hwm cfg limit rows_line changelog delivery keyed
   for s in "${sets[@]}"; do
     tag="${s%%:*}"; models="${s#*:}"
     changelog=true; [ "${tag%-nolog}" != "$tag" ] && changelog=false
     delivery=exactly_once
-    if [ "$tag" = rules-alo ] || [ "$tag" = rules-nolog ]; then delivery=at_least_once; fi
+    if [ "$tag" = rules-alo ] || [ "$tag" = rules-nolog ] || [ "$tag" = seven-alo ]; then delivery=at_least_once; fi
     keyed=true
     if [ "$tag" = rules-unkeyed ]; then
       keyed=false
