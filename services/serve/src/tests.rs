@@ -561,6 +561,23 @@ mod redelivery {
     /// Largest arrival delay, = the allowed lateness.
     const JITTER: i64 = 2 * 3600 * SEC;
 
+    /// Processes up to `n` of `events` from index `from` (message `i` at
+    /// offset `i + 1`); their output and the index to go on from.
+    fn deliver_events(p: &mut Pipeline, events: &[Vec<u8>], from: i64, n: usize) -> (OutputBatch, i64) {
+        let upto = (from + n as i64).min(events.len() as i64);
+        let batch: Vec<InMsg> = (from..upto)
+            .map(|o| InMsg {
+                offset: o + 1,
+                payload: events[o as usize].clone(),
+                arrived: Instant::now(),
+                timestamp_ms: PROCESSING_MS,
+            })
+            .collect();
+        let mut out = OutputBatch::default();
+        p.process(&part(), &batch, &mut out).unwrap();
+        (out, upto)
+    }
+
     /// A changelog record: key, and value (`None`: a tombstone).
     type Record = (Vec<u8>, Option<Vec<u8>>);
 
@@ -718,21 +735,7 @@ mod redelivery {
             let committed = p.open_partition(&part(), Payload::Event(Format::Json)).unwrap();
             (p, committed.unwrap_or(0))
         };
-        let total = events.len() as i64;
-        let deliver = |p: &mut Pipeline, from: i64, n: usize| {
-            let upto = (from + n as i64).min(total);
-            let batch: Vec<InMsg> = (from..upto)
-                .map(|o| InMsg {
-                    offset: o + 1,
-                    payload: events[o as usize].clone(),
-                    arrived: Instant::now(),
-                    timestamp_ms: PROCESSING_MS,
-                })
-                .collect();
-            let mut out = OutputBatch::default();
-            p.process(&part(), &batch, &mut out).unwrap();
-            (out, upto)
-        };
+        let deliver = |p: &mut Pipeline, from: i64, n: usize| deliver_events(p, &events, from, n);
         // Every row written, by credit_id.
         let mut written: std::collections::BTreeMap<String, String> = Default::default();
         let mut keep = |out: &OutputBatch| -> Result<(), TestCaseError> {
@@ -820,21 +823,7 @@ mod redelivery {
             let (mut p, mut next) = open(false);
             let mut rows: Vec<String> = Vec::new();
             let mut paths = 0;
-            let total = events.len() as i64;
-            let deliver = |p: &mut Pipeline, from: i64, n: usize| {
-                let upto = (from + n as i64).min(total);
-                let batch: Vec<InMsg> = (from..upto)
-                    .map(|o| InMsg {
-                        offset: o + 1,
-                        payload: events[o as usize].clone(),
-                        arrived: Instant::now(),
-                        timestamp_ms: PROCESSING_MS,
-                    })
-                    .collect();
-                let mut out = OutputBatch::default();
-                p.process(&part(), &batch, &mut out).unwrap();
-                (out, upto)
-            };
+            let deliver = |p: &mut Pipeline, from: i64, n: usize| deliver_events(p, &events, from, n);
             for step in steps {
                 match step {
                     Step::Batch(n) => {
