@@ -447,9 +447,11 @@ impl PartitionStore {
         Ok(out)
     }
 
-    /// Records decisions durably at once (before the output that depends on
-    /// them is written anywhere); returns the writes (for a changelog).
-    pub fn record_decisions(&mut self, decisions: &[Decision]) -> Result<ChangeSet, StoreError> {
+    /// Records decisions at once (before the output that depends on them is
+    /// written anywhere), durably when `flush` (not needed when a changelog
+    /// takes them before that output: after a crash the partition is
+    /// restored from it); returns the writes (for a changelog).
+    pub fn record_decisions(&mut self, decisions: &[Decision], flush: bool) -> Result<ChangeSet, StoreError> {
         let mut changes = ChangeSet::default();
         if decisions.is_empty() {
             return Ok(changes);
@@ -458,7 +460,9 @@ impl PartitionStore {
             changes.set(d.key(), d.value());
         }
         changes.apply(&self.tree)?;
-        self.db.flush()?;
+        if flush {
+            self.db.flush()?;
+        }
         Ok(changes)
     }
 

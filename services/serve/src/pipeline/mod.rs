@@ -555,13 +555,25 @@ impl Pipeline {
         part.credited |= part.keep_stats && out.credit.len() > rows;
     }
 
-    /// Makes every decision recorded in this batch durable. Call before the
-    /// batch's output is written anywhere.
+    /// Writes every decision recorded in this batch to the store (durably,
+    /// or, with a changelog, to be published before the output: see
+    /// [`partition::Recording`]). Call before the batch's output is written
+    /// anywhere.
     pub fn persist_decisions(&mut self) -> Result<()> {
+        let flush = self.recording().flush;
         for p in self.parts.values_mut() {
-            p.persist_decisions()?;
+            p.persist_decisions(flush)?;
         }
         Ok(())
+    }
+
+    /// How decisions are recorded, by where commits go.
+    fn recording(&self) -> partition::Recording {
+        match &self.changelog {
+            None => partition::Recording::LOCAL,
+            // Output a failed commit does not take back (no Kafka transaction).
+            Some((log, _)) => partition::Recording { mark_output: !log.transactional(), flush: false },
+        }
     }
 
     /// Refits the data-driven models when `refit_interval` has passed, on
@@ -634,11 +646,10 @@ impl Pipeline {
     /// to the next commit; apply prepared batches in the order prepared.
     pub fn prepare_commit(&mut self) -> Result<PreparedBatch> {
         let horizon = self.cfg.dedupe_horizon.ms();
-        // Output a failed commit does not take back (no Kafka transaction).
-        let mark_output = !self.changelog.as_ref().is_some_and(|(log, _)| log.transactional());
+        let rec = self.recording();
         let mut parts = Vec::with_capacity(self.parts.len());
         for (id, p) in self.parts.iter_mut() {
-            parts.push((id.clone(), p.prepare_commit(id, horizon, mark_output)?));
+            parts.push((id.clone(), p.prepare_commit(id, horizon, rec)?));
         }
         self.prepared = true;
         let (changelog, ticket) = match &self.changelog {

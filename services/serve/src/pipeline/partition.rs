@@ -87,6 +87,26 @@ impl Decisions {
     }
 }
 
+/// How a partition records its decisions, by where its commits go.
+#[derive(Debug, Clone, Copy)]
+pub struct Recording {
+    /// The batch's output is written before its commit and not taken back
+    /// when the commit fails (at-least-once delivery): output marks are
+    /// recorded.
+    pub mark_output: bool,
+    /// Decisions are flushed to disk when recorded: without a changelog.
+    /// A changelog has them before the output that depends on them is
+    /// written (at least once: [`crate::pipeline::PreparedBatch::publish_decisions`];
+    /// exactly once: in the batch's transaction, which takes that output
+    /// back with them), and a partition that crashed is restored from it.
+    pub flush: bool,
+}
+
+impl Recording {
+    /// No changelog: decisions durable in the store, output marks recorded.
+    pub const LOCAL: Recording = Recording { mark_output: true, flush: true };
+}
+
 /// A caught-up partition's idle clock: since when it has had nothing to
 /// read, and its watermark then.
 #[derive(Debug, Clone, Copy)]
@@ -226,10 +246,11 @@ impl PartState {
         self.pending_offset.or(self.committed)
     }
 
-    /// Makes the recorded decisions durable.
-    pub fn persist_decisions(&mut self) -> Result<()> {
+    /// Writes the recorded decisions to the store, durably when `flush`
+    /// (see [`Recording`]).
+    pub fn persist_decisions(&mut self, flush: bool) -> Result<()> {
         if !self.decisions.unsaved.is_empty() {
-            let written = self.store.record_decisions(&self.decisions.unsaved)?;
+            let written = self.store.record_decisions(&self.decisions.unsaved, flush)?;
             self.unpublished.extend(written);
             self.decisions.unsaved.clear();
         }
@@ -243,25 +264,24 @@ impl PartState {
     /// enough have accumulated). The batch is applied, not yet durable: the
     /// caller flushes the store.
     pub fn commit(&mut self, id: &PartId, dedupe_horizon_ms: i64) -> Result<()> {
-        let prepared = self.prepare_commit(id, dedupe_horizon_ms, false)?;
+        let prepared = self.prepare_commit(id, dedupe_horizon_ms, Recording::LOCAL)?;
         self.apply_commit(prepared)
     }
 
     /// The first half of [`PartState::commit`]: stages and collects the
     /// commit without writing it (see [`PartitionStore::prepare`]); events
     /// applied before [`PartState::apply_commit`] belong to the next one.
-    /// `mark_output`: the batch's output is written before its commit and
-    /// not taken back when the commit fails (at-least-once delivery); when
-    /// it credited with a data-driven model, the end of the batch is
-    /// recorded ([`Decision::OutputWritten`]), so that a redelivery keeps
-    /// the snapshot up to there.
-    pub fn prepare_commit(&mut self, id: &PartId, dedupe_horizon_ms: i64, mark_output: bool) -> Result<PreparedPart> {
-        if std::mem::take(&mut self.credited) && mark_output {
+    /// With `rec.mark_output`, when the batch credited with a data-driven
+    /// model, the end of the batch is recorded
+    /// ([`Decision::OutputWritten`]), so that a redelivery keeps the
+    /// snapshot up to there.
+    pub fn prepare_commit(&mut self, id: &PartId, dedupe_horizon_ms: i64, rec: Recording) -> Result<PreparedPart> {
+        if std::mem::take(&mut self.credited) && rec.mark_output {
             if let (Some(o), Some(v)) = (self.pending_offset, self.snapshot.version()) {
                 self.decisions.record(Decision::OutputWritten { through_offset: o, snapshot: v.to_string() });
             }
         }
-        self.persist_decisions()?;
+        self.persist_decisions(rec.flush)?;
         let offset = self.pending_offset.take();
         // Output already written with the current snapshot for messages
         // after this commit (a redelivery cut into other batches): the
