@@ -203,20 +203,15 @@ fn write_batch(
     metrics: &Metrics,
     shared: &Mutex<Shared>,
 ) -> Result<Written> {
-    // The decisions the output depends on reach the changelog before it.
-    match publish_decisions(prepared, stop, metrics) {
-        Ok(true) => {}
-        Ok(false) => {
-            prepared.release();
-            return Ok(Written::Abandoned);
-        }
-        Err(e) => {
-            prepared.release();
-            return Err(e);
-        }
-    }
     let mut backoff = Duration::from_millis(100);
     let written = loop {
+        // The decisions the output depends on reach the changelog before
+        // it (once: a retry after an aborted transaction has them there).
+        match publish_decisions(prepared, stop, metrics) {
+            Ok(true) => {}
+            Ok(false) => break Ok(Written::Abandoned),
+            Err(e) => break Err(e),
+        }
         let written = write_sinks(sinks, out, stop, metrics, shared);
         let Ok(Written::Done { .. }) = written else { break written };
         break match write_commit(prepared, stop, metrics) {

@@ -249,6 +249,8 @@ mod decision_tests {
 
     /// Every kind reads back as written, and keys sort by offset first
     /// (a commit forgets the decisions at or before its offset by a range).
+    /// Values derived by hand from the key layout in lib.rs (`d` + offset
+    /// + kind).
     #[test]
     fn decisions_read_back_and_sort_by_offset() {
         let all = [
