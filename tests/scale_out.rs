@@ -204,7 +204,8 @@ fn a_killed_instance_s_partitions_are_restored_on_another() {
 
 /// Instance A works alone; B joins mid-stream (the partitions are split);
 /// A leaves; B finishes: the same credit as replay, a repeated row only as
-/// the same row. Every hand-over waits for the commit in flight.
+/// the same row. Every hand-over waits for the commit in flight (the next
+/// owner's committed-offset query waits for its transaction, KIP-447).
 #[test]
 fn instances_joining_and_leaving_mid_stream_give_the_same_credit() {
     let Some(t) = setup("join", 4, 6000, 41) else { return };
@@ -326,6 +327,54 @@ fn crash_loop(delivery: &str) {
     if delivery == "exactly_once" {
         t.assert_each_once(&dirs[0].path().join("serve.log"), &logs);
     }
+}
+
+/// A member that stalls past its session timeout (SIGSTOP: a frozen VM, a
+/// long pause) while it holds a batch it has read and not yet committed,
+/// and then resumes: the group gave its partitions to the other instance,
+/// which restored them and went on. The batch's transaction carries the
+/// input offsets with the consumer group generation the batch was read in
+/// (KIP-447), so the coordinator refuses it and the transaction aborts;
+/// nothing it wrote is read by a read_committed consumer. Three stalls
+/// while the stream is produced; at the end every row replay gives, each
+/// once. Before the offsets went into the transaction, the resumed member
+/// committed its batch after the new owner had restored the partition, and
+/// the new owner wrote the same rows again.
+#[test]
+fn a_member_stalled_past_its_session_timeout_commits_nothing_when_it_resumes() {
+    let Some(t) = setup("stall", 4, 12_000, 59) else { return };
+    let mode = "delivery = \"exactly_once\"";
+    let dirs = [tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap()];
+    let running: Vec<Serve> = dirs.iter().map(|d| instance(d.path(), &t.brokers, &t.prefix, 50, mode)).collect();
+    let stalls = 3;
+    for (i, chunk) in t.events.chunks(t.events.len().div_ceil(3 * stalls)).enumerate() {
+        t.produce(chunk);
+        if i % 3 == 1 {
+            // While the chunk is being worked through: the victim holds a
+            // batch read and not yet in a transaction most of that time.
+            std::thread::sleep(Duration::from_millis(100 + 50 * i as u64));
+            let victim = &running[i / 3 % 2];
+            victim.send_signal("STOP");
+            // Past the 6 s session timeout, and the rebalance that follows.
+            std::thread::sleep(Duration::from_secs(12));
+            victim.send_signal("CONT");
+        }
+        std::thread::sleep(Duration::from_millis(1500));
+    }
+    let logs_of = || log(&[dirs[0].path(), dirs[1].path()]);
+    let (got, repeated) = t.all_credit(&dirs[0].path().join("serve.log"));
+    let logs = logs_of();
+    eprintln!(
+        "{stalls} stalls: {} events, {} rows, {repeated} repeated, {} transactions refused for an old generation",
+        t.events.len(),
+        got.len(),
+        logs.matches("the consumer group moved on").count()
+    );
+    drop(got);
+    for mut s in running {
+        assert_eq!(s.signal("TERM").code(), Some(0), "{}", logs_of());
+    }
+    t.assert_each_once(&dirs[0].path().join("serve.log"), &logs_of());
 }
 
 /// Two instances with the same transactional identity (`kafka.instance_id`):

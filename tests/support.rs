@@ -284,9 +284,14 @@ impl Serve {
         None
     }
 
+    /// Sends a signal (e.g. `STOP`, `CONT`) and returns at once.
+    pub fn send_signal(&self, sig: &str) {
+        Command::new("kill").arg(format!("-{sig}")).arg(self.child.id().to_string()).status().unwrap();
+    }
+
     /// Sends a signal and waits for the exit status.
     pub fn signal(&mut self, sig: &str) -> std::process::ExitStatus {
-        Command::new("kill").arg(format!("-{sig}")).arg(self.child.id().to_string()).status().unwrap();
+        self.send_signal(sig);
         let start = Instant::now();
         loop {
             if let Some(s) = self.child.try_wait().unwrap() {

@@ -66,6 +66,8 @@ pub struct Metrics {
     pub changelog_records: IntCounterVec,
     /// apportion_changelog_publish_failures_total.
     pub changelog_failures: IntCounter,
+    /// apportion_batches_refused_total.
+    pub batches_refused: IntCounter,
     /// apportion_changelog_restoring_partitions.
     pub changelog_restoring: IntGauge,
     /// apportion_changelog_restore_remaining_records.
@@ -330,6 +332,10 @@ impl Metrics {
             changelog_failures: plain_counter(
                 "apportion_changelog_publish_failures_total",
                 "Commits the changelog did not take, or batch transactions aborted (retried with backoff).",
+            ),
+            batches_refused: plain_counter(
+                "apportion_batches_refused_total",
+                "Batches whose transaction the consumer group refused (the group moved on since they were read): rolled back and read again.",
             ),
             changelog_restoring: gauge(
                 "apportion_changelog_restoring_partitions",

@@ -69,6 +69,10 @@ pub enum Written {
     /// Shutdown came while a sink held the batch: it is given up
     /// uncommitted and delivered again after the restart.
     Abandoned,
+    /// Its transaction was refused: the consumer group moved on since the
+    /// batch was read ([`crate::pipeline::changelog::StaleGeneration`]).
+    /// Nothing of it is committed; the loop rolls back and reads again.
+    Refused,
 }
 
 /// Writes `out` to every sink, retrying each with exponential backoff until
@@ -217,6 +221,7 @@ fn write_batch(
         break match write_commit(prepared, stop, metrics) {
             Ok(Committed::Yes) => written,
             Ok(Committed::No) => Ok(Written::Abandoned),
+            Ok(Committed::Refused) => Ok(Written::Refused),
             Err(e) => Err(e),
             Ok(Committed::Aborted) => {
                 // The transaction took the output rows with it: the batch
@@ -243,6 +248,9 @@ enum Committed {
     No,
     /// Its transaction was aborted, with the output sent in it.
     Aborted,
+    /// Its transaction was refused for an old consumer group generation
+    /// (and aborted): not to be written again as it is.
+    Refused,
 }
 
 /// Writes a batch's prepared commit: published to the changelog (if any),
@@ -253,6 +261,11 @@ fn write_commit(prepared: &mut PreparedBatch, stop: &AtomicBool, metrics: &Metri
     loop {
         match prepared.write() {
             Ok(()) => return Ok(Committed::Yes),
+            Err(e) if e.is::<crate::pipeline::changelog::StaleGeneration>() => {
+                metrics.changelog_failures.inc();
+                tracing::warn!(error = %format!("{e:#}"), "the batch's transaction was refused");
+                return Ok(Committed::Refused);
+            }
             Err(e) if e.is::<crate::pipeline::changelog::Aborted>() => {
                 metrics.changelog_failures.inc();
                 tracing::warn!(error = %format!("{e:#}"), "the batch's transaction did not commit; writing the batch again");
@@ -339,6 +352,18 @@ impl OutputRates {
     }
 }
 
+/// What [`run_loop`]'s `finish` made of a batch in flight.
+enum Finished {
+    /// Committed and acknowledged.
+    Committed,
+    /// Shutdown came while a sink held it: the loop stops.
+    Stop,
+    /// Its transaction was refused: every uncommitted change is rolled back
+    /// and the source hands over again from the committed offsets (a batch
+    /// applied meanwhile is dropped with it).
+    Rewound,
+}
+
 /// A batch whose output the sink thread is writing: what is left to do
 /// once it has.
 struct InFlight {
@@ -377,7 +402,7 @@ pub fn run_loop(
             std::thread::Builder::new().name("apportion-sinks".into()).spawn_scoped(scope, move || {
                 for (out, mut prepared) in job_rx {
                     let written = write_batch(sinks_ref, &out, &mut prepared, &stop, &metrics, &shared);
-                    let go_on = matches!(written, Ok(Written::Done { .. }));
+                    let go_on = matches!(written, Ok(Written::Done { .. } | Written::Refused));
                     // At most one batch is in flight, so this never waits.
                     if done_tx.send((out, prepared, written)).is_err() || !go_on {
                         return;
@@ -388,8 +413,8 @@ pub fn run_loop(
         // The batch whose output the sinks are writing.
         let mut in_flight: Option<InFlight> = None;
         // Waits for the sinks to have the batch in flight, then commits it
-        // and acknowledges it. False: shutdown came while a sink held it.
-        let finish = |pipeline: &mut Pipeline, source: &mut Box<dyn Source>, f: InFlight| -> Result<bool> {
+        // and acknowledges it.
+        let finish = |pipeline: &mut Pipeline, source: &mut Box<dyn Source>, f: InFlight| -> Result<Finished> {
             let (out, prepared, written) =
                 done_rx.recv().map_err(|_| anyhow::anyhow!("the sink thread stopped without an answer"))?;
             match written {
@@ -401,7 +426,18 @@ pub fn run_loop(
                 Ok(Written::Abandoned) => {
                     // Nothing of this batch is committed: it is re-delivered.
                     pipeline.rollback()?;
-                    return Ok(false);
+                    return Ok(Finished::Stop);
+                }
+                Ok(Written::Refused) => {
+                    // Nothing of it committed, and a batch applied since
+                    // builds on it: both are read again, for the partitions
+                    // this instance still owns (the source's assignment is
+                    // current after its next poll).
+                    drop(prepared);
+                    pipeline.rollback()?;
+                    source.rewind(pipeline)?;
+                    metrics.batches_refused.inc();
+                    return Ok(Finished::Rewound);
                 }
                 Err(e) => {
                     pipeline.rollback()?;
@@ -415,7 +451,7 @@ pub fn run_loop(
             feed_comparison(&shared, &out);
             source.committed(pipeline, f.statuses)?;
             metrics.batch_duration.observe(f.started.elapsed().as_secs_f64());
-            Ok(true)
+            Ok(Finished::Committed)
         };
         let looped = (|| -> Result<()> {
             while !stop.load(Ordering::SeqCst) {
@@ -424,6 +460,7 @@ pub fn run_loop(
                 metrics.loop_turn.set(crate::pipeline::now_ms() / 1000);
                 let asked = limit.get();
                 let batch = source.poll(&mut pipeline, asked, Duration::from_millis(200))?;
+                let group = source.group();
                 let started = Instant::now();
                 let had_input = !batch.is_empty();
                 let events: usize = batch.iter().map(|(_, m)| m.len()).sum();
@@ -447,8 +484,11 @@ pub fn run_loop(
                 }
                 // The previous batch first: its state is written before this one's.
                 if let Some(f) = in_flight.take() {
-                    if !finish(&mut pipeline, &mut source, f)? {
-                        return Ok(());
+                    match finish(&mut pipeline, &mut source, f)? {
+                        Finished::Committed => {}
+                        Finished::Stop => return Ok(()),
+                        // This batch was rolled back with it.
+                        Finished::Rewound => continue,
                     }
                 }
                 if had_input || !out.is_empty() {
@@ -458,14 +498,19 @@ pub fn run_loop(
                     // A refit takes effect at this commit: the snapshot each
                     // partition credits with is committed with its offsets.
                     let refitted = pipeline.maybe_refit()?;
-                    let prepared = pipeline.prepare_commit()?;
+                    let mut prepared = pipeline.prepare_commit()?;
+                    prepared.set_group(group);
                     job_tx.send((out, prepared)).map_err(|_| anyhow::anyhow!("the sink thread stopped"))?;
                     let f = InFlight { statuses, started, refitted };
                     if events >= asked && !finished {
                         // A backlog: the next batch is applied while the sinks write.
                         in_flight = Some(f);
-                    } else if !finish(&mut pipeline, &mut source, f)? {
-                        return Ok(());
+                    } else {
+                        match finish(&mut pipeline, &mut source, f)? {
+                            Finished::Committed => {}
+                            Finished::Stop => return Ok(()),
+                            Finished::Rewound => continue,
+                        }
                     }
                 } else if pipeline.maybe_refit()? {
                     // Idle: the next commit adopts the new snapshot; the

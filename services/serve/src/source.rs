@@ -5,7 +5,6 @@
 //! hears back when a batch is durable. The Kafka source, the embedded HTTP
 //! and file sources and [`MemorySource`] (tests and the demo) implement it.
 
-use std::collections::VecDeque;
 use std::time::{Duration, Instant};
 
 use anyhow::Result;
@@ -100,6 +99,19 @@ pub trait Source: Send {
     fn lag(&self) -> Option<u64> {
         None
     }
+    /// The consumer group the last batch was read in (Kafka: the consumer's
+    /// group metadata, taken right after the poll), committed with the
+    /// batch's input offsets in its transaction (exactly-once delivery).
+    fn group(&self) -> Option<crate::pipeline::changelog::GroupToken> {
+        None
+    }
+    /// After a rollback (a batch whose transaction was refused, the group
+    /// having moved on since it was read): hands over again, from each
+    /// open partition's committed offset, what was handed over since. A
+    /// source that cannot says so (the loop then stops with the error).
+    fn rewind(&mut self, _pipeline: &Pipeline) -> Result<()> {
+        anyhow::bail!("this source cannot read its input again")
+    }
     /// True once the source has its partitions.
     fn ready(&self) -> bool;
     /// True when the partition has no more input to hand over right now
@@ -125,8 +137,10 @@ pub trait Source: Send {
 pub struct MemorySource {
     part: PartId,
     payload: Payload,
-    pending: VecDeque<Vec<u8>>,
+    /// Every payload; message `i` has offset `i + 1`.
+    payloads: Vec<Vec<u8>>,
     chunk: usize,
+    /// The offset of the next message handed over.
     next_offset: i64,
     opened: bool,
     /// Statuses of every committed message, in order (for tests).
@@ -139,7 +153,7 @@ impl MemorySource {
         MemorySource {
             part,
             payload,
-            pending: payloads.into_iter().collect(),
+            payloads: payloads.into_iter().collect(),
             chunk: chunk.max(1),
             next_offset: 1,
             opened: false,
@@ -153,27 +167,22 @@ impl Source for MemorySource {
         if !self.opened {
             let committed = pipeline.open_partition(&self.part, self.payload)?;
             // Resume after what the store already holds (a reopened store).
-            while committed.is_some_and(|c| self.next_offset <= c) && !self.pending.is_empty() {
-                self.pending.pop_front();
-                self.next_offset += 1;
-            }
+            self.next_offset = self.next_offset.max(committed.map_or(1, |c| c + 1));
             self.opened = true;
         }
-        let n = self.chunk.min(max).min(self.pending.len());
+        let from = (self.next_offset - 1).clamp(0, self.payloads.len() as i64) as usize;
+        let n = self.chunk.min(max).min(self.payloads.len() - from);
         if n == 0 {
             return Ok(Vec::new());
         }
         let now = Instant::now();
         let wall = crate::pipeline::now_ms();
-        let msgs = self
-            .pending
-            .drain(..n)
-            .map(|payload| {
-                let m = InMsg { offset: self.next_offset, payload, arrived: now, timestamp_ms: wall };
-                self.next_offset += 1;
-                m
-            })
+        let msgs = self.payloads[from..from + n]
+            .iter()
+            .zip(self.next_offset..)
+            .map(|(payload, offset)| InMsg { offset, payload: payload.clone(), arrived: now, timestamp_ms: wall })
             .collect();
+        self.next_offset += n as i64;
         Ok(vec![(self.part.clone(), msgs)])
     }
 
@@ -184,16 +193,22 @@ impl Source for MemorySource {
         Ok(())
     }
 
+    fn rewind(&mut self, pipeline: &Pipeline) -> Result<()> {
+        let committed = pipeline.committed_offsets().into_iter().find(|(id, _)| *id == self.part).map(|(_, o)| o);
+        self.next_offset = committed.map_or(1, |c| c + 1);
+        Ok(())
+    }
+
     fn ready(&self) -> bool {
         true
     }
 
     fn exhausted(&self) -> bool {
-        self.opened && self.pending.is_empty()
+        self.opened && self.next_offset > self.payloads.len() as i64
     }
 
     fn caught_up(&self, part: &PartId) -> bool {
-        *part == self.part && self.pending.is_empty()
+        *part == self.part && self.next_offset > self.payloads.len() as i64
     }
 }
 

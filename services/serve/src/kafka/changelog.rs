@@ -12,7 +12,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::{bail, Context, Result};
 use apportion_store::{ChangeSet, Store, COMMIT_MARKER};
-use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::consumer::{BaseConsumer, Consumer, ConsumerGroupMetadata};
 use rdkafka::error::KafkaError;
 use rdkafka::message::Message;
 use rdkafka::producer::{BaseProducer, BaseRecord, DeliveryResult, Producer, ProducerContext};
@@ -22,7 +22,7 @@ use super::base_config;
 use super::txn::Txn;
 use crate::config::KafkaConfig;
 use crate::metrics::Metrics;
-use crate::pipeline::changelog::{Changelog, PublishError};
+use crate::pipeline::changelog::{Changelog, InputPositions, PublishError};
 use crate::source::PartId;
 
 /// The first byte of every changelog value (its format version).
@@ -306,23 +306,55 @@ fn scopeguard<F: FnOnce()>(f: F) -> impl Drop {
     Guard(Some(f))
 }
 
+impl KafkaChangelog {
+    /// Publishes `parts` in this thread's transaction, and `input`'s offsets
+    /// as the consumer group's when it names the group the batch was read
+    /// in; then commits.
+    fn publish_in(
+        &self,
+        txn: &Txn,
+        parts: &[(&PartId, Vec<&ChangeSet>)],
+        input: &InputPositions<'_>,
+    ) -> Result<Vec<i64>> {
+        let mut sent = 0;
+        if !parts.is_empty() {
+            sent = txn.with_open(|p| send_records(p, &self.kafka, parts))?.map_err(|e| {
+                // What was sent is aborted with the rest.
+                let _ = txn.abort();
+                crate::pipeline::changelog::Aborted(e)
+            })?;
+        }
+        let group = input.group.and_then(|g| g.downcast_ref::<ConsumerGroupMetadata>());
+        if let (Some(group), false) = (group, input.offsets.is_empty()) {
+            let mut tpl = TopicPartitionList::new();
+            for (id, through) in &input.offsets {
+                tpl.add_partition_offset(&id.source, id.partition, Offset::Offset(through + 1))?;
+            }
+            if let Err(e) = txn.send_offsets(&tpl, group) {
+                let _ = txn.abort();
+                return Err(e);
+            }
+        }
+        let markers = txn.commit_then(|p| match parts.is_empty() {
+            true => Ok(Vec::new()),
+            false => markers(p),
+        })?;
+        self.metrics.changelog_records.with_label_values(&["published"]).inc_by(sent);
+        markers.map_err(anyhow::Error::msg)
+    }
+}
+
 impl Changelog for KafkaChangelog {
+    fn publish_batch(&self, parts: &[(&PartId, Vec<&ChangeSet>)], input: &InputPositions<'_>) -> Result<Vec<i64>> {
+        match &self.txn {
+            Some(txn) => self.publish_in(txn, parts, input),
+            None => self.publish(parts),
+        }
+    }
+
     fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> Result<Vec<i64>> {
         if let Some(txn) = &self.txn {
-            let mut sent = 0;
-            if !parts.is_empty() {
-                sent = txn.with_open(|p| send_records(p, &self.kafka, parts))?.map_err(|e| {
-                    // What was sent is aborted with the rest.
-                    let _ = txn.abort();
-                    crate::pipeline::changelog::Aborted(e)
-                })?;
-            }
-            let markers = txn.commit_then(|p| match parts.is_empty() {
-                true => Ok(Vec::new()),
-                false => markers(p),
-            })?;
-            self.metrics.changelog_records.with_label_values(&["published"]).inc_by(sent);
-            return markers.map_err(anyhow::Error::msg);
+            return self.publish_in(txn, parts, &InputPositions { offsets: Vec::new(), group: None });
         }
         let mut producer = self.producer.lock().expect("changelog producer");
         let result = publish_with(&producer, &self.kafka, parts);

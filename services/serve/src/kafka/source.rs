@@ -14,19 +14,25 @@ use super::consumer_config;
 use super::repartition::Repartitioner;
 use crate::config::{Config, Format};
 use crate::metrics::Metrics;
-use crate::pipeline::changelog::{Changelog, CommitGate};
+use crate::pipeline::changelog::{Changelog, CommitGate, GroupToken};
 use crate::pipeline::{now_ms, Pipeline};
 use crate::source::ErrorLog;
 use crate::source::{InMsg, MsgStatus, PartId, Payload, Source};
 
-/// How long a revocation waits for the commit being written (within the
-/// default `max.poll.interval.ms` of 5 minutes, so the instance stays in
-/// the group).
-const REVOKE_WAIT: Duration = Duration::from_secs(120);
+/// How long a revocation waits for the commit being written, and how long
+/// a partition's assignment waits for its previous owner's transaction
+/// (within the default `max.poll.interval.ms` of 5 minutes, so the
+/// instance stays in the group).
+const HANDOVER_WAIT: Duration = Duration::from_secs(120);
 
-/// The consumer's rebalance hook: a revocation waits until the commit the
-/// sink thread is writing is in the changelog, so the partitions' next
-/// owners restore every commit this instance made.
+/// The consumer's rebalance hook. At least once with a changelog: a
+/// revocation waits until the commit the sink thread is writing is in the
+/// changelog, so the partitions' next owners restore every commit this
+/// instance made. Exactly once it does not wait (no gate): the commit in
+/// flight carries the input offsets with the generation its batch was read
+/// in, so it is either refused (the group moved on) or pending when the
+/// next owner asks for the partition's committed offset, and that answer
+/// waits for it (KIP-447).
 pub struct RevokeGate {
     gate: Option<CommitGate>,
 }
@@ -36,9 +42,9 @@ impl ClientContext for RevokeGate {}
 impl ConsumerContext for RevokeGate {
     fn pre_rebalance(&self, _consumer: &BaseConsumer<Self>, rebalance: &Rebalance<'_>) {
         if let (Rebalance::Revoke(_), Some(gate)) = (rebalance, &self.gate) {
-            if !gate.wait_idle(REVOKE_WAIT) {
+            if !gate.wait_idle(HANDOVER_WAIT) {
                 tracing::warn!(
-                    waited_s = REVOKE_WAIT.as_secs(),
+                    waited_s = HANDOVER_WAIT.as_secs(),
                     "partitions revoked while a commit is still being written (a sink or the changelog is stalled); their next owner restores the commit before it"
                 );
             }
@@ -63,6 +69,11 @@ pub struct KafkaSource {
     caught_up_at: BTreeMap<PartId, Instant>,
     /// When each partition last handed over a message.
     last_message: BTreeMap<PartId, Instant>,
+    /// Exactly-once delivery: the batch's input offsets go into its
+    /// transaction with the group metadata taken at its poll.
+    exactly_once: bool,
+    /// The consumer's group metadata right after the last poll.
+    group: Option<GroupToken>,
 }
 
 impl KafkaSource {
@@ -80,7 +91,9 @@ impl KafkaSource {
             true => Some((Arc::new(KafkaChangelog::new(k, metrics, txn)?), CommitGate::default())),
             false => None,
         };
-        let context = RevokeGate { gate: changelog.as_ref().map(|(_, g)| g.clone()) };
+        let exactly_once = k.delivery == crate::config::Delivery::ExactlyOnce;
+        let gate = changelog.as_ref().map(|(_, g)| g.clone()).filter(|_| !exactly_once);
+        let context = RevokeGate { gate };
         let consumer: BaseConsumer<RevokeGate> =
             consumer_config(k, &k.group_id).create_with_context(context).context("creating the Kafka consumer")?;
         let mut payloads = BTreeMap::new();
@@ -110,7 +123,34 @@ impl KafkaSource {
             caught_up_at: BTreeMap::new(),
             last_message: BTreeMap::new(),
             metrics: metrics.clone(),
+            exactly_once,
+            group: None,
         })
+    }
+
+    /// Exactly once: waits until no transaction of a partition's previous
+    /// owner still holds input offsets for `new` partitions. Asked with
+    /// `isolation.level = read_committed`, the coordinator answers a
+    /// partition's committed offset only once no transaction holds a
+    /// pending one (librdkafka retries until then; KIP-447), so a commit
+    /// the previous owner sent before the group moved on is in the
+    /// changelog, or aborted, before the partition is restored.
+    fn wait_for_previous_owner(&self, new: &[PartId]) -> Result<()> {
+        if !self.exactly_once || new.is_empty() {
+            return Ok(());
+        }
+        let mut tpl = TopicPartitionList::new();
+        for id in new {
+            tpl.add_partition(&id.source, id.partition);
+        }
+        self.consumer.committed_offsets(tpl, HANDOVER_WAIT).with_context(|| {
+            format!(
+                "waiting {}s for the previous owner's transaction on newly assigned partitions {}",
+                HANDOVER_WAIT.as_secs(),
+                new.iter().map(PartId::store_name).collect::<Vec<_>>().join(", ")
+            )
+        })?;
+        Ok(())
     }
 
     fn sync_assignment(&mut self, pipeline: &mut Pipeline) -> Result<()> {
@@ -121,7 +161,9 @@ impl KafkaSource {
             pipeline.close_partition(&gone)?;
             self.metrics.consumer_lag.remove_label_values(&[&gone.source, &gone.partition.to_string()]).ok();
         }
-        for new in now.difference(&self.assigned).cloned().collect::<Vec<_>>() {
+        let added: Vec<PartId> = now.difference(&self.assigned).cloned().collect();
+        self.wait_for_previous_owner(&added)?;
+        for new in added {
             let payload = *self.payloads.get(&new.source).unwrap_or(&Payload::Event(Format::Json));
             if let (Some((log, _)), false) = (&self.changelog, pipeline.is_open(&new)) {
                 log.prepare_partition(pipeline.store(), &new)
@@ -177,10 +219,19 @@ impl Source for KafkaSource {
         self.sync_assignment(pipeline)?;
         // Messages of partitions no longer assigned belong to their new owner.
         got.retain(|id, _| self.assigned.contains(id));
+        // After the assignment is read: the batch holds only partitions
+        // assigned in this generation (or an older one, then refused).
+        if self.exactly_once {
+            self.group = self.consumer.group_metadata().map(|g| Arc::new(g) as GroupToken);
+        }
         Ok(got.into_iter().collect())
     }
 
     fn committed(&mut self, pipeline: &Pipeline, _statuses: Vec<(PartId, Vec<MsgStatus>)>) -> Result<()> {
+        if self.exactly_once {
+            // Committed in the batch's transaction.
+            return Ok(());
+        }
         let mut tpl = TopicPartitionList::new();
         for (id, off) in pipeline.committed_offsets() {
             if self.assigned.contains(&id) {
@@ -238,6 +289,46 @@ impl Source for KafkaSource {
 
     fn lag(&self) -> Option<u64> {
         self.lag
+    }
+
+    fn group(&self) -> Option<GroupToken> {
+        self.group.clone()
+    }
+
+    /// Points the consumer back at each assigned partition's committed
+    /// offset (the store's; else the group's, else the beginning, where a
+    /// new reader starts). librdkafka drops the messages it fetched before.
+    fn rewind(&mut self, pipeline: &Pipeline) -> Result<()> {
+        let committed: BTreeMap<PartId, i64> = pipeline.committed_offsets().into_iter().collect();
+        let mut group_tpl = TopicPartitionList::new();
+        for id in self.assigned.iter().filter(|id| !committed.contains_key(id)) {
+            group_tpl.add_partition(&id.source, id.partition);
+        }
+        let group = match group_tpl.count() {
+            0 => group_tpl,
+            _ => self
+                .consumer
+                .committed_offsets(group_tpl, HANDOVER_WAIT)
+                .context("reading the group's committed offsets")?,
+        };
+        for id in &self.assigned {
+            let to = match committed.get(id) {
+                Some(o) => Offset::Offset(o + 1),
+                None => match group.find_partition(&id.source, id.partition).map(|e| e.offset()) {
+                    Some(Offset::Offset(o)) => Offset::Offset(o),
+                    _ => Offset::Beginning,
+                },
+            };
+            self.consumer.seek(&id.source, id.partition, to, Duration::from_secs(10)).with_context(|| {
+                format!("reading partition {} again from {to:?} after a refused transaction", id.store_name())
+            })?;
+            self.caught_up_at.remove(id);
+        }
+        tracing::info!(
+            partitions = self.assigned.len(),
+            "the partitions still assigned are read again from their committed offsets"
+        );
+        Ok(())
     }
 
     fn changelog(&self) -> Option<(Arc<dyn Changelog>, CommitGate)> {

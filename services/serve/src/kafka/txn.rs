@@ -2,13 +2,12 @@
 //! "Delivery"): one transactional producer per instance, whose
 //! `transactional.id` is `<group_id>-<instance_id>`. Per batch, the output
 //! sink's rows, then the changelog records (the input offsets among them:
-//! the store's offset record) go into one transaction, committed by the
-//! changelog's publication. The consumer group's offsets are committed
-//! after it, as a fallback, not in the transaction: the store restored from
-//! the changelog is the authority on where a partition continues (with
-//! `send_offsets_to_transaction`, a revocation that waits for the commit in
-//! flight deadlocked against the group's rebalance, docs/contract.md
-//! "Delivery").
+//! the store's offset record), then the input offsets as the consumer
+//! group's (`send_offsets_to_transaction` with the group metadata the batch
+//! was read in, KIP-447) go into one transaction, committed by the
+//! changelog's publication. A member the group has moved on from (a
+//! rebalance since the batch was read, or removed after stalling past its
+//! session timeout) is refused, and its transaction aborts.
 //!
 //! A transaction belongs to the thread that began it until it is committed
 //! or aborted; another thread (a partition's state published on assignment)
@@ -21,11 +20,13 @@ use std::thread::ThreadId;
 use std::time::Duration;
 
 use anyhow::{anyhow, Context, Result};
+use rdkafka::consumer::ConsumerGroupMetadata;
 use rdkafka::producer::{BaseProducer, Producer, ProducerContext};
+use rdkafka::TopicPartitionList;
 
 use super::changelog::{changelog_producer_config, MarkerDelivery};
 use crate::config::KafkaConfig;
-use crate::pipeline::changelog::Aborted;
+use crate::pipeline::changelog::{Aborted, StaleGeneration};
 
 /// How long a transaction call may block.
 pub(crate) const CALL_TIMEOUT: Duration = Duration::from_secs(60);
@@ -88,6 +89,30 @@ impl Txn {
             inner.owner = Some(me);
         }
         Ok(inner)
+    }
+
+    /// Sends `offsets` (each partition's next offset) to this thread's
+    /// transaction as the consumer group's committed offsets, with the group
+    /// metadata `group` the batch was read in (KIP-447). A
+    /// [`StaleGeneration`] error when the group coordinator refuses them
+    /// because the group moved on since (another generation, or this
+    /// member removed); [`Aborted`] for another abortable error; else fatal.
+    /// The caller aborts the transaction on error.
+    pub fn send_offsets(&self, offsets: &TopicPartitionList, group: &ConsumerGroupMetadata) -> Result<()> {
+        let inner = self.own()?;
+        let Err(e) = inner.producer.send_offsets_to_transaction(offsets, group, CALL_TIMEOUT) else {
+            return Ok(());
+        };
+        if let Some(fatal) = self.fatal(&inner) {
+            return Err(fatal);
+        }
+        use rdkafka::types::RDKafkaErrorCode as C;
+        Err(match e.rdkafka_error_code() {
+            Some(C::IllegalGeneration | C::UnknownMemberId | C::FencedInstanceId | C::RebalanceInProgress) => {
+                StaleGeneration(e.to_string()).into()
+            }
+            _ => Aborted(format!("sending the input offsets to the transaction: {e}")).into(),
+        })
     }
 
     /// Commits this thread's transaction; nothing when it has none (no

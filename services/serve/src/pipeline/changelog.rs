@@ -25,6 +25,31 @@ pub struct PublishError(pub String);
 #[error("the batch's Kafka transaction was aborted ({0})")]
 pub struct Aborted(pub String);
 
+/// The batch's Kafka transaction was refused because the consumer group
+/// moved on since the batch was read: another generation (a rebalance), or
+/// this member was removed (it stalled past its session timeout). The
+/// coordinator refuses the input offsets sent with the old generation
+/// (KIP-447) and the transaction aborts: nothing of the batch is committed.
+/// Its partitions are read again from their committed offsets, by this
+/// instance for those it still owns, by their new owner for the others.
+#[derive(Debug, thiserror::Error)]
+#[error("the consumer group moved on since the batch was read ({0}); its transaction was aborted and the batch is read again")]
+pub struct StaleGeneration(pub String);
+
+/// What a source knows of the consumer group a batch was read in (the Kafka
+/// consumer's group metadata: member and generation), opaque here. A
+/// transactional changelog sends the batch's input offsets with it.
+pub type GroupToken = Arc<dyn std::any::Any + Send + Sync>;
+
+/// A batch's input positions: per partition the offset of the last message
+/// the batch covers (committed or new), and the group it was read in.
+pub struct InputPositions<'a> {
+    /// Per partition in the batch's commit, the offset of its last message.
+    pub offsets: Vec<(&'a PartId, i64)>,
+    /// The group the batch was read in, if the source has one.
+    pub group: Option<&'a GroupToken>,
+}
+
 /// A partition's changelog.
 pub trait Changelog: Send + Sync {
     /// Publishes, for every partition listed, the writes of its sets in
@@ -35,6 +60,15 @@ pub trait Changelog: Send + Sync {
     /// batch's transaction with them, all or nothing ([`Aborted`] when
     /// not); the input offsets are among the records (the store's offset).
     fn publish(&self, parts: &[(&PartId, Vec<&ChangeSet>)]) -> Result<Vec<i64>>;
+
+    /// [`Changelog::publish`] for a batch's commit, with the batch's input
+    /// positions: a transactional changelog also commits them to the
+    /// consumer group in the transaction, with the group metadata the batch
+    /// was read in, so that a member the group has moved on from commits
+    /// nothing ([`StaleGeneration`]).
+    fn publish_batch(&self, parts: &[(&PartId, Vec<&ChangeSet>)], _input: &InputPositions<'_>) -> Result<Vec<i64>> {
+        self.publish(parts)
+    }
 
     /// True when [`Changelog::publish`] commits the batch's output with its
     /// records: it is then called for every batch, with or without records.

@@ -39,7 +39,7 @@ use crate::metrics::Metrics;
 use crate::refit::Refit;
 use crate::source::{InMsg, MsgStatus, PartId, Payload};
 use apportion_store::Decision;
-use changelog::{Changelog, CommitGate, GateTicket};
+use changelog::{Changelog, CommitGate, GateTicket, GroupToken};
 use partition::{Idle, PartState};
 use policy::Lateness;
 
@@ -83,6 +83,8 @@ pub struct PreparedBatch {
     published: bool,
     /// Counted as being written until dropped.
     ticket: Option<GateTicket>,
+    /// The consumer group the batch was read in ([`PreparedBatch::set_group`]).
+    group: Option<GroupToken>,
 }
 
 impl PreparedBatch {
@@ -100,7 +102,19 @@ impl PreparedBatch {
                 self.parts.iter().filter(|(_, p)| !p.is_empty()).map(|(id, p)| (id, p.changes())).collect();
             let transactional = log.transactional();
             if !sets.is_empty() || transactional {
-                let offsets = log.publish(&sets)?;
+                // Every partition the commit writes, at the offset it
+                // covers (a partition with changes and no new message too:
+                // its next owner waits for this transaction all the same).
+                let input = changelog::InputPositions {
+                    offsets: self
+                        .parts
+                        .iter()
+                        .filter(|(_, p)| !p.is_empty())
+                        .filter_map(|(id, p)| p.through_offset().map(|o| (id, o)))
+                        .collect(),
+                    group: self.group.as_ref(),
+                };
+                let offsets = log.publish_batch(&sets, &input)?;
                 for ((_, p), o) in self.parts.iter_mut().filter(|(_, p)| !p.is_empty()).zip(offsets) {
                     p.set_changelog_offset(o);
                 }
@@ -136,6 +150,13 @@ impl PreparedBatch {
             p.decisions_published();
         }
         Ok(())
+    }
+
+    /// The consumer group the batch was read in (the source's
+    /// [`crate::source::Source::group`] at the batch's poll): with Kafka
+    /// transactions, the batch's input offsets are committed with it.
+    pub fn set_group(&mut self, group: Option<GroupToken>) {
+        self.group = group;
     }
 
     /// No longer counted as being written (the sink thread is done with
@@ -656,7 +677,15 @@ impl Pipeline {
             Some((log, gate)) => (Some(log.clone()), Some(gate.enter())),
             None => (None, None),
         };
-        Ok(PreparedBatch { parts, store: self.store.clone(), durable: false, changelog, published: false, ticket })
+        Ok(PreparedBatch {
+            parts,
+            store: self.store.clone(),
+            durable: false,
+            changelog,
+            published: false,
+            ticket,
+            group: None,
+        })
     }
 
     /// The second half of [`Pipeline::commit`]: writes a prepared batch and

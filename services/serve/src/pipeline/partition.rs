@@ -321,7 +321,13 @@ impl PartState {
             self.store.prune_seen(self.clock.watermark.saturating_sub(dedupe_horizon_ms))?;
         }
         let decisions = std::mem::take(&mut self.unpublished);
-        Ok(PreparedPart { store: self.store.prepare(), offset, decisions, decisions_published: false })
+        Ok(PreparedPart {
+            store: self.store.prepare(),
+            offset,
+            through: offset.or(self.committed),
+            decisions,
+            decisions_published: false,
+        })
     }
 
     /// The second half of [`PartState::commit`]: writes a prepared commit
@@ -343,6 +349,9 @@ impl PartState {
 pub struct PreparedPart {
     store: apportion_store::Prepared,
     offset: Option<i64>,
+    /// The offset of the last message the commit covers (its new offset,
+    /// else the one committed before).
+    through: Option<i64>,
     /// Decisions recorded since the last commit (already in the store).
     decisions: ChangeSet,
     /// The decisions were published ahead of the batch's output
@@ -358,6 +367,11 @@ impl PreparedPart {
             false => vec![&self.decisions, self.store.changes()],
             true => vec![self.store.changes()],
         }
+    }
+
+    /// The offset of the last message the commit covers, if any.
+    pub fn through_offset(&self) -> Option<i64> {
+        self.through
     }
 
     /// True when the commit writes nothing.
