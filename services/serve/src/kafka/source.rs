@@ -74,6 +74,8 @@ pub struct KafkaSource {
     exactly_once: bool,
     /// The consumer's group metadata right after the last poll.
     group: Option<GroupToken>,
+    /// The offset of the last message each partition handed over.
+    handed: BTreeMap<PartId, i64>,
 }
 
 impl KafkaSource {
@@ -125,6 +127,7 @@ impl KafkaSource {
             metrics: metrics.clone(),
             exactly_once,
             group: None,
+            handed: BTreeMap::new(),
         })
     }
 
@@ -219,6 +222,12 @@ impl Source for KafkaSource {
         self.sync_assignment(pipeline)?;
         // Messages of partitions no longer assigned belong to their new owner.
         got.retain(|id, _| self.assigned.contains(id));
+        self.handed.retain(|id, _| self.assigned.contains(id));
+        for (id, msgs) in &got {
+            if let Some(m) = msgs.last() {
+                self.handed.insert(id.clone(), m.offset);
+            }
+        }
         // After the assignment is read: the batch holds only partitions
         // assigned in this generation (or an older one, then refused).
         if self.exactly_once {
@@ -295,13 +304,22 @@ impl Source for KafkaSource {
         self.group.clone()
     }
 
-    /// Points the consumer back at each assigned partition's committed
-    /// offset (the store's; else the group's, else the beginning, where a
-    /// new reader starts). librdkafka drops the messages it fetched before.
+    /// Points the consumer back at the committed offset (the store's; else
+    /// the group's, else the beginning, where a new reader starts) of each
+    /// assigned partition that handed over messages past it. librdkafka
+    /// drops the messages it fetched before. A partition that handed over
+    /// nothing since is left alone (one just assigned may not take a seek
+    /// yet).
     fn rewind(&mut self, pipeline: &Pipeline) -> Result<()> {
         let committed: BTreeMap<PartId, i64> = pipeline.committed_offsets().into_iter().collect();
+        let behind: Vec<PartId> = self
+            .assigned
+            .iter()
+            .filter(|id| self.handed.get(*id).is_some_and(|h| committed.get(*id).is_none_or(|c| h > c)))
+            .cloned()
+            .collect();
         let mut group_tpl = TopicPartitionList::new();
-        for id in self.assigned.iter().filter(|id| !committed.contains_key(id)) {
+        for id in behind.iter().filter(|id| !committed.contains_key(id)) {
             group_tpl.add_partition(&id.source, id.partition);
         }
         let group = match group_tpl.count() {
@@ -311,7 +329,7 @@ impl Source for KafkaSource {
                 .committed_offsets(group_tpl, HANDOVER_WAIT)
                 .context("reading the group's committed offsets")?,
         };
-        for id in &self.assigned {
+        for id in &behind {
             let to = match committed.get(id) {
                 Some(o) => Offset::Offset(o + 1),
                 None => match group.find_partition(&id.source, id.partition).map(|e| e.offset()) {
@@ -323,9 +341,10 @@ impl Source for KafkaSource {
                 format!("reading partition {} again from {to:?} after a refused transaction", id.store_name())
             })?;
             self.caught_up_at.remove(id);
+            self.handed.remove(id);
         }
         tracing::info!(
-            partitions = self.assigned.len(),
+            partitions = behind.len(),
             "the partitions still assigned are read again from their committed offsets"
         );
         Ok(())
