@@ -212,17 +212,16 @@ fn sorted_rows(rows: &[apportion_contract::CreditRow]) -> Vec<String> {
     v
 }
 
-/// The run loop over a finite source writes the rows replay writes for the
-/// same time-ordered events (docs/contract.md, "Determinism").
-#[test]
-fn run_loop_over_a_finite_source_equals_replay() {
+/// Runs the run loop through `p` over [`twenty_users`] (7 messages per
+/// poll, one test sink); what the sink got, what replay gives for the same
+/// lines under `cfg` (rule models), and the loop's metrics.
+fn run_twenty_users(p: Pipeline, cfg: &Config) -> (OutputBatch, apportion_engine::replay::ReplayResult, Metrics) {
     let lines = twenty_users();
-    let cfg = Config { models: ModelId::RULES.to_vec(), ..config() };
     let sink = Collect::default();
     let source = MemorySource::new(part(), Payload::Event(Format::Json), lines.clone(), 7);
     let metrics = Metrics::new(prometheus::Registry::new());
     run_loop(
-        pipeline(cfg.clone(), Store::temporary().unwrap()),
+        p,
         Box::new(source),
         vec![Box::new(sink.clone())],
         Arc::new(AtomicBool::new(false)),
@@ -230,14 +229,23 @@ fn run_loop_over_a_finite_source_equals_replay() {
         Arc::new(Mutex::new(Shared::default())),
     )
     .unwrap();
+    let text: Vec<String> = lines.iter().map(|l| String::from_utf8(l.clone()).unwrap()).collect();
+    let refs: Vec<&str> = text.iter().map(String::as_str).collect();
+    let want = replay_lines(&refs, cfg.rules(), &Pseudonymizer::new(KEY), &ModelPlan::rules());
+    let got = std::mem::take(&mut *sink.0.lock().unwrap());
+    (got, want, metrics)
+}
+
+/// The run loop over a finite source writes the rows replay writes for the
+/// same time-ordered events (docs/contract.md, "Determinism").
+#[test]
+fn run_loop_over_a_finite_source_equals_replay() {
+    let cfg = Config { models: ModelId::RULES.to_vec(), ..config() };
+    let (got, want, metrics) = run_twenty_users(pipeline(cfg.clone(), Store::temporary().unwrap()), &cfg);
     // The loop showed it was alive, just now (docs/telemetry.md,
     // apportion_processing_last_turn_timestamp_seconds).
     let turned = metrics.loop_turn.get();
     assert!((crate::pipeline::now_ms() / 1000 - turned).abs() <= 60, "last turn at {turned}");
-    let text: Vec<String> = lines.iter().map(|l| String::from_utf8(l.clone()).unwrap()).collect();
-    let refs: Vec<&str> = text.iter().map(String::as_str).collect();
-    let want = replay_lines(&refs, cfg.rules(), &Pseudonymizer::new(KEY), &ModelPlan::rules());
-    let got = sink.0.lock().unwrap();
     assert!(!want.rows.is_empty());
     assert_eq!(sorted_rows(&got.credit), sorted_rows(&want.rows));
     assert_eq!(got.paths.len(), want.paths.len());
@@ -652,28 +660,13 @@ mod redelivery {
     /// batches' rows are there twice: the same rows), and nothing else.
     #[test]
     fn run_loop_reads_again_what_a_refused_transaction_held() {
-        let lines = twenty_users();
         let cfg = Config { models: ModelId::RULES.to_vec(), batch_size: 7, max_batch_size: 7, ..config() };
         let mut p = pipeline(cfg.clone(), Store::temporary().unwrap());
         let refusing = Refusing { inner: MemChangelog::default(), batches: Default::default(), refuse: vec![1, 4, 5] };
         p.set_changelog(Arc::new(refusing), CommitGate::default());
-        let sink = Collect::default();
-        let source = MemorySource::new(part(), Payload::Event(Format::Json), lines.clone(), 7);
-        let metrics = Metrics::new(prometheus::Registry::new());
-        run_loop(
-            p,
-            Box::new(source),
-            vec![Box::new(sink.clone())],
-            Arc::new(AtomicBool::new(false)),
-            metrics.clone(),
-            Arc::new(Mutex::new(Shared::default())),
-        )
-        .unwrap();
+        let (got, want, metrics) = run_twenty_users(p, &cfg);
         assert_eq!(metrics.batches_refused.get(), 3);
-        let text: Vec<String> = lines.iter().map(|l| String::from_utf8(l.clone()).unwrap()).collect();
-        let refs: Vec<&str> = text.iter().map(String::as_str).collect();
-        let want = replay_lines(&refs, cfg.rules(), &Pseudonymizer::new(KEY), &ModelPlan::rules());
-        let mut got = sorted_rows(&sink.0.lock().unwrap().credit);
+        let mut got = sorted_rows(&got.credit);
         got.dedup();
         assert!(!want.rows.is_empty());
         assert_eq!(got, sorted_rows(&want.rows));
