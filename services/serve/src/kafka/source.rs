@@ -264,8 +264,11 @@ impl Source for KafkaSource {
         let mut total = 0u64;
         let now = Instant::now();
         // Before a partition's first message the position is unknown: the
-        // group's committed offset is where reading starts.
-        let committed = self.consumer.committed(Duration::from_secs(2)).ok();
+        // group's committed offset is where reading starts. Asked only then:
+        // read_committed, the answer waits while a batch transaction of this
+        // instance holds pending offsets (KIP-447).
+        let unknown = positions.elements().iter().any(|e| !matches!(e.offset(), Offset::Offset(_)));
+        let committed = if unknown { self.consumer.committed(Duration::from_secs(2)).ok() } else { None };
         for e in positions.elements() {
             let id = PartId::new(e.topic(), e.partition());
             let Ok((low, high)) = self.probe.fetch_watermarks(e.topic(), e.partition(), Duration::from_secs(1)) else {
