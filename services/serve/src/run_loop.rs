@@ -396,15 +396,23 @@ pub fn run_loop(
     let sinks_ref = &mut sinks;
     let result = std::thread::scope(|scope| -> Result<()> {
         let (job_tx, job_rx) = std::sync::mpsc::sync_channel::<(OutputBatch, PreparedBatch)>(1);
-        let (done_tx, done_rx) = std::sync::mpsc::sync_channel::<(OutputBatch, PreparedBatch, Result<Written>)>(1);
+        let (done_tx, done_rx) = std::sync::mpsc::sync_channel::<(PreparedBatch, Result<Written>)>(1);
         {
             let (stop, metrics, shared) = (stop.clone(), metrics.clone(), shared.clone());
             std::thread::Builder::new().name("apportion-sinks".into()).spawn_scoped(scope, move || {
                 for (out, mut prepared) in job_rx {
                     let written = write_batch(sinks_ref, &out, &mut prepared, &stop, &metrics, &shared);
+                    if let Ok(Written::Done { .. }) = written {
+                        // Committed (output and state written): counted in the
+                        // running comparison here, off the processing thread.
+                        feed_comparison(&shared, &out);
+                    }
                     let go_on = matches!(written, Ok(Written::Done { .. } | Written::Refused));
                     // At most one batch is in flight, so this never waits.
-                    if done_tx.send((out, prepared, written)).is_err() || !go_on {
+                    // The output is dropped here too (its memory freed off
+                    // the processing thread).
+                    drop(out);
+                    if done_tx.send((prepared, written)).is_err() || !go_on {
                         return;
                     }
                 }
@@ -415,7 +423,7 @@ pub fn run_loop(
         // Waits for the sinks to have the batch in flight, then commits it
         // and acknowledges it.
         let finish = |pipeline: &mut Pipeline, source: &mut Box<dyn Source>, f: InFlight| -> Result<Finished> {
-            let (out, prepared, written) =
+            let (prepared, written) =
                 done_rx.recv().map_err(|_| anyhow::anyhow!("the sink thread stopped without an answer"))?;
             match written {
                 Ok(Written::Done { stalled }) => {
@@ -448,7 +456,6 @@ pub fn run_loop(
             if f.refitted {
                 publish_models(pipeline, &shared);
             }
-            feed_comparison(&shared, &out);
             source.committed(pipeline, f.statuses)?;
             metrics.batch_duration.observe(f.started.elapsed().as_secs_f64());
             Ok(Finished::Committed)
