@@ -160,6 +160,11 @@ impl MemorySource {
             statuses: Vec::new(),
         }
     }
+
+    /// Every payload handed over (since the last rewind).
+    fn drained(&self) -> bool {
+        self.next_offset > self.payloads.len() as i64
+    }
 }
 
 impl Source for MemorySource {
@@ -204,11 +209,11 @@ impl Source for MemorySource {
     }
 
     fn exhausted(&self) -> bool {
-        self.opened && self.next_offset > self.payloads.len() as i64
+        self.opened && self.drained()
     }
 
     fn caught_up(&self, part: &PartId) -> bool {
-        *part == self.part && self.next_offset > self.payloads.len() as i64
+        *part == self.part && self.drained()
     }
 }
 

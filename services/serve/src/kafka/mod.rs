@@ -83,6 +83,30 @@ pub fn consumer_config(k: &KafkaConfig, group: &str) -> ClientConfig {
     c
 }
 
+/// Where a reader of `parts` in `consumer`'s group starts: each partition's
+/// committed offset, else its beginning (`auto.offset.reset = earliest`,
+/// [`consumer_config`]). Read-committed, the answer waits while a
+/// transaction holds a pending offset for a partition (KIP-447).
+pub(crate) fn group_starts<C: rdkafka::consumer::ConsumerContext>(
+    consumer: &BaseConsumer<C>,
+    parts: rdkafka::TopicPartitionList,
+    timeout: std::time::Duration,
+) -> rdkafka::error::KafkaResult<Vec<(String, i32, rdkafka::Offset)>> {
+    use rdkafka::consumer::Consumer;
+    let committed = consumer.committed_offsets(parts, timeout)?;
+    Ok(committed
+        .elements()
+        .iter()
+        .map(|e| {
+            let to = match e.offset() {
+                rdkafka::Offset::Offset(o) => rdkafka::Offset::Offset(o),
+                _ => rdkafka::Offset::Beginning,
+            };
+            (e.topic().to_string(), e.partition(), to)
+        })
+        .collect())
+}
+
 /// A client that only asks the brokers where partitions begin and end
 /// (`fetch_watermarks`), for the lag and caught-up readings. A group
 /// consumer's own query waits on its broker connection behind the fetch in

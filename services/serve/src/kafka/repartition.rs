@@ -344,13 +344,9 @@ impl Repartitioner {
     /// messages of a failed pump are read again.
     fn rewind(&mut self) {
         let Ok(assigned) = self.consumer.assignment() else { return };
-        let Ok(committed) = self.consumer.committed_offsets(assigned, Duration::from_secs(10)) else { return };
-        for e in committed.elements() {
-            let to = match e.offset() {
-                Offset::Offset(o) => Offset::Offset(o),
-                _ => Offset::Beginning,
-            };
-            if let Err(err) = self.consumer.seek(e.topic(), e.partition(), to, Duration::from_secs(10)) {
+        let Ok(starts) = super::group_starts(&self.consumer, assigned, Duration::from_secs(10)) else { return };
+        for (topic, partition, to) in starts {
+            if let Err(err) = self.consumer.seek(&topic, partition, to, Duration::from_secs(10)) {
                 self.errors.report("cannot rewind the repartition consumer", &err);
             }
         }

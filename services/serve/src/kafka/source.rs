@@ -325,20 +325,18 @@ impl Source for KafkaSource {
         for id in behind.iter().filter(|id| !committed.contains_key(id)) {
             group_tpl.add_partition(&id.source, id.partition);
         }
-        let group = match group_tpl.count() {
-            0 => group_tpl,
-            _ => self
-                .consumer
-                .committed_offsets(group_tpl, HANDOVER_WAIT)
-                .context("reading the group's committed offsets")?,
+        let group: BTreeMap<PartId, Offset> = match group_tpl.count() {
+            0 => BTreeMap::new(),
+            _ => super::group_starts(&self.consumer, group_tpl, HANDOVER_WAIT)
+                .context("reading the group's committed offsets")?
+                .into_iter()
+                .map(|(topic, partition, to)| (PartId::new(&topic, partition), to))
+                .collect(),
         };
         for id in &behind {
             let to = match committed.get(id) {
                 Some(o) => Offset::Offset(o + 1),
-                None => match group.find_partition(&id.source, id.partition).map(|e| e.offset()) {
-                    Some(Offset::Offset(o)) => Offset::Offset(o),
-                    _ => Offset::Beginning,
-                },
+                None => group.get(id).copied().unwrap_or(Offset::Beginning),
             };
             self.consumer.seek(&id.source, id.partition, to, Duration::from_secs(10)).with_context(|| {
                 format!("reading partition {} again from {to:?} after a refused transaction", id.store_name())

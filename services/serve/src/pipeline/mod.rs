@@ -98,20 +98,17 @@ impl PreparedBatch {
     pub fn write(&mut self) -> Result<()> {
         if let (Some(log), false) = (&self.changelog, self.published) {
             // A partition with nothing new publishes nothing.
+            let written: Vec<&(PartId, partition::PreparedPart)> =
+                self.parts.iter().filter(|(_, p)| !p.is_empty()).collect();
             let sets: Vec<(&PartId, Vec<&apportion_store::ChangeSet>)> =
-                self.parts.iter().filter(|(_, p)| !p.is_empty()).map(|(id, p)| (id, p.changes())).collect();
+                written.iter().map(|(id, p)| (id, p.changes())).collect();
             let transactional = log.transactional();
             if !sets.is_empty() || transactional {
                 // Every partition the commit writes, at the offset it
                 // covers (a partition with changes and no new message too:
                 // its next owner waits for this transaction all the same).
                 let input = changelog::InputPositions {
-                    offsets: self
-                        .parts
-                        .iter()
-                        .filter(|(_, p)| !p.is_empty())
-                        .filter_map(|(id, p)| p.through_offset().map(|o| (id, o)))
-                        .collect(),
+                    offsets: written.iter().filter_map(|(id, p)| p.through_offset().map(|o| (id, o))).collect(),
                     group: self.group.as_ref(),
                 };
                 let offsets = log.publish_batch(&sets, &input)?;
