@@ -665,6 +665,7 @@ mod redelivery {
         let refusing = Refusing { inner: MemChangelog::default(), batches: Default::default(), refuse: vec![1, 4, 5] };
         p.set_changelog(Arc::new(refusing), CommitGate::default());
         let (got, want, metrics) = run_twenty_users(p, &cfg);
+        // Derived by hand: the three batches `refuse` names, each counted once.
         assert_eq!(metrics.batches_refused.get(), 3);
         let mut got = sorted_rows(&got.credit);
         got.dedup();
